@@ -1,0 +1,122 @@
+//! Batch benchmarks on a synthetic 0.5° global cycle (361 x 720, 37 isobaric levels, float32):
+//! the whole `hypsogrid compute` process, and its read / compute / write parts in-process,
+//! so that the parts can be compared as ratios measured in one run.
+//!
+//! Run with `cargo bench --bench compute`. The synthetic file is generated once into
+//! `target/bench-data/`. The peak resident memory of the child processes is printed at the
+//! end (getrusage, RUSAGE_CHILDREN), with the bytes of input fields and output for scale.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::Duration;
+
+use criterion::{criterion_group, criterion_main, Criterion};
+
+use hypsogrid::compute::{compute_heights, ComputeConfig};
+use hypsogrid::demo::{write_synthetic_global, SyntheticGlobal};
+use hypsogrid::ingest::{read_cycle, IngestConfig};
+use hypsogrid::model::Layer;
+use hypsogrid::output::{write_heights, OutputOptions};
+
+const ROWS: usize = 361;
+const COLS: usize = 720;
+const LEVELS: usize = 37;
+
+fn bench_dir() -> PathBuf {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-data");
+    std::fs::create_dir_all(&dir).expect("creating target/bench-data");
+    dir
+}
+
+fn input(name: &str, deflate_level: Option<i32>) -> PathBuf {
+    let path = bench_dir().join(name);
+    if !path.exists() {
+        let spec = SyntheticGlobal {
+            rows: ROWS,
+            cols: COLS,
+            levels: LEVELS,
+            times: 1,
+            deflate_level,
+        };
+        write_synthetic_global(&path, &spec).expect("writing the synthetic global cycle");
+    }
+    path
+}
+
+fn layers() -> Vec<Layer> {
+    vec![
+        Layer { bottom_pa: 100000.0, top_pa: 50000.0 },
+        Layer { bottom_pa: 100000.0, top_pa: 85000.0 },
+        Layer { bottom_pa: 85000.0, top_pa: 70000.0 },
+    ]
+}
+
+fn peak_child_rss_bytes() -> u64 {
+    // SAFETY: getrusage only writes into the struct we pass.
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    let rc = unsafe { libc::getrusage(libc::RUSAGE_CHILDREN, &mut usage) };
+    if rc == 0 {
+        usage.ru_maxrss as u64 * 1024
+    } else {
+        0
+    }
+}
+
+fn whole_process(c: &mut Criterion) {
+    let exe = env!("CARGO_BIN_EXE_hypsogrid");
+    let plain = input("global_0p5deg.nc", None);
+    let zipped = input("global_0p5deg_zlib.nc", Some(1));
+    let out = bench_dir().join("global_0p5deg_heights.nc");
+    let mut group = c.benchmark_group("compute_whole_process_0p5deg");
+    group.sample_size(10).measurement_time(Duration::from_secs(12));
+    for (label, file) in [("uncompressed", &plain), ("zlib1", &zipped)] {
+        group.bench_function(label, |b| {
+            b.iter(|| {
+                let status = Command::new(exe)
+                    .arg("compute")
+                    .arg(file)
+                    .arg("--output")
+                    .arg(&out)
+                    .status()
+                    .expect("running hypsogrid compute");
+                assert!(status.success(), "hypsogrid compute failed");
+            })
+        });
+    }
+    group.finish();
+    let field_bytes = (ROWS * COLS * LEVELS * 4) as f64;
+    eprintln!(
+        "peak resident memory of a compute process: {:.0} MB (input T and q: {:.0} MB, output heights: {:.0} MB)",
+        peak_child_rss_bytes() as f64 / 1e6,
+        2.0 * field_bytes / 1e6,
+        field_bytes / 1e6,
+    );
+}
+
+fn parts(c: &mut Criterion) {
+    let plain = input("global_0p5deg.nc", None);
+    let out = bench_dir().join("global_0p5deg_heights_inprocess.nc");
+    let config = ComputeConfig {
+        layers: layers(),
+        ..ComputeConfig::default()
+    };
+    let cycle = read_cycle(&plain, &IngestConfig::default()).expect("reading the cycle");
+    let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
+    let mut group = c.benchmark_group("compute_parts_0p5deg");
+    group.sample_size(10).measurement_time(Duration::from_secs(8));
+    group.bench_function("read", |b| {
+        b.iter(|| read_cycle(&plain, &IngestConfig::default()).expect("reading"))
+    });
+    group.bench_function("kernel", |b| {
+        b.iter(|| compute_heights(&cycle, &config, &|_| {}).expect("computing"))
+    });
+    group.bench_function("write", |b| {
+        b.iter(|| {
+            write_heights(&cycle, &heights, &out, &OutputOptions::default()).expect("writing")
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, parts, whole_process);
+criterion_main!(benches);

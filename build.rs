@@ -1,0 +1,22 @@
+//! Compiles the protobuf API with a pure-Rust compiler (`protox`), so that no system `protoc`
+//! is needed, and writes the encoded descriptor set to `OUT_DIR` for server reflection.
+
+use std::{env, fs, path::PathBuf};
+
+fn main() -> Result<(), Box<dyn std::error::Error>> {
+    let protos = ["proto/hypsogrid/v1/cycle.proto"];
+    for p in &protos {
+        println!("cargo:rerun-if-changed={p}");
+    }
+    let fds = protox::compile(protos, ["proto"])?;
+    let out = PathBuf::from(env::var("OUT_DIR")?);
+    fs::write(
+        out.join("hypsogrid_descriptor.bin"),
+        prost::Message::encode_to_vec(&fds),
+    )?;
+    tonic_prost_build::configure()
+        .build_server(false)
+        .build_client(false)
+        .compile_fds(fds)?;
+    Ok(())
+}

@@ -1,0 +1,96 @@
+//! `hypsogrid compute`: one NetCDF cycle in, heights and thicknesses out.
+
+use std::io::IsTerminal;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result};
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+
+use hypsogrid::compute::compute_heights;
+use hypsogrid::ingest::read_cycle;
+use hypsogrid::output::{write_heights, OutputOptions};
+
+use super::ComputeArgs;
+
+/// A progress bar on stderr that appears only on a terminal and only once the job has taken
+/// more than a moment, so quick runs and pipes stay quiet.
+pub(crate) struct Progress {
+    bar: ProgressBar,
+    started: Instant,
+    visible: bool,
+}
+
+impl Progress {
+    pub(crate) fn new(total: u64) -> Self {
+        let bar = ProgressBar::with_draw_target(Some(total), ProgressDrawTarget::hidden());
+        if let Ok(style) =
+            ProgressStyle::with_template("{msg:>10} [{bar:40}] {pos}/{len} steps, {elapsed}")
+        {
+            bar.set_style(style.progress_chars("=> "));
+        }
+        Self {
+            bar,
+            started: Instant::now(),
+            visible: false,
+        }
+    }
+
+    pub(crate) fn phase(&mut self, message: &'static str) {
+        self.bar.set_message(message);
+        self.maybe_show();
+    }
+
+    pub(crate) fn set(&self, done: u64) {
+        self.bar.set_position(done);
+    }
+
+    pub(crate) fn maybe_show(&mut self) {
+        if !self.visible
+            && self.started.elapsed() > Duration::from_millis(300)
+            && std::io::stderr().is_terminal()
+        {
+            self.bar.set_draw_target(ProgressDrawTarget::stderr());
+            self.visible = true;
+        }
+    }
+
+    pub(crate) fn finish(self) {
+        self.bar.finish_and_clear();
+    }
+}
+
+pub(super) fn run(args: ComputeArgs) -> Result<()> {
+    let ingest = args.read.ingest_config()?;
+    let config = args.read.compute_config(&ingest);
+    let mut progress = Progress::new(1);
+    progress.phase("reading");
+    let cycle = read_cycle(&args.input, &ingest)?;
+    for note in &cycle.notes {
+        tracing::info!("{}: {note}", args.input.display());
+    }
+    let steps = (cycle.members * cycle.lead_times_s.len()) as u64;
+    progress.bar.set_length(steps.max(1));
+    progress.phase("computing");
+    let show = std::sync::Mutex::new(&mut progress);
+    let heights = compute_heights(&cycle, &config, &|done| {
+        if let Ok(mut p) = show.lock() {
+            p.maybe_show();
+            p.set(done as u64);
+        }
+    })
+    .with_context(|| format!("computing '{}'", args.input.display()))?;
+    progress.phase("writing");
+    let options = OutputOptions {
+        history: history_line(),
+        deflate_level: args.deflate,
+    };
+    write_heights(&cycle, &heights, &args.output, &options)?;
+    progress.finish();
+    Ok(())
+}
+
+/// The command line as run, for the output's `history` attribute.
+fn history_line() -> String {
+    let args: Vec<String> = std::env::args().collect();
+    format!("hypsogrid {}: {}", env!("CARGO_PKG_VERSION"), args.join(" "))
+}

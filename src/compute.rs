@@ -1,0 +1,402 @@
+//! The grid kernel: heights and layer thickness for every column of a cycle, in parallel.
+//!
+//! Work is split by latitude row (rayon), each row walks its columns with one reused
+//! [`ColumnNodes`] scratch buffer, so the inner loop allocates nothing. Fields are `f32`;
+//! every column is gathered into `f64`, integrated in `f64`, and scattered back as `f32`.
+//! A missing input masks what depends on it in that column only: nothing crosses columns.
+
+use ndarray::{s, Array5, ArrayView2, ArrayView3, ArrayViewMut2, Axis};
+use rayon::prelude::*;
+
+use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
+use crate::physics::column::{thickness_between, ColumnAnchor, ColumnNodes};
+use crate::physics::humidity::{
+    saturation_vapour_pressure, specific_humidity_from_vapour_pressure,
+    vapour_pressure_from_dewpoint, virtual_temperature_from_mixing_ratio,
+    virtual_temperature_from_specific_humidity, RelativeHumidityPhase, SaturationFormula,
+};
+use crate::physics::standard_atmosphere::us_standard_atmosphere_height_at_pressure;
+use crate::physics::Constants;
+
+/// How heights are tied to the ground when a cycle has no surface pressure and height.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub enum NoSurfaceReference {
+    /// The file's own geopotential height at the lowest level where that column has one;
+    /// falls back to [`NoSurfaceReference::StandardAtmosphere`] when the file carries none.
+    #[default]
+    FileHeightAtLowestLevel,
+    /// The file's own geopotential height at the level nearest this pressure, Pa.
+    FileHeightAt {
+        /// Pressure of the reference level, Pa.
+        pressure_pa: f64,
+    },
+    /// The U.S. Standard Atmosphere 1976 height of the lowest level, the same at every
+    /// column: thicknesses are right, absolute heights are only indicative.
+    StandardAtmosphere,
+}
+
+/// Settings of one computation.
+#[derive(Clone, Debug, Default)]
+pub struct ComputeConfig {
+    /// Layers whose thickness is wanted.
+    pub layers: Vec<Layer>,
+    /// Reference for cycles without surface fields.
+    pub no_surface_reference: NoSurfaceReference,
+    /// Saturation vapour pressure formula for relative humidity and dewpoint.
+    pub saturation_formula: SaturationFormula,
+    /// Phase that relative humidity refers to.
+    pub rh_phase: RelativeHumidityPhase,
+}
+
+/// Why a computation could not start.
+#[derive(Debug, thiserror::Error)]
+pub enum ComputeError {
+    /// A layer whose bottom is not below its top.
+    #[error("layer {bottom_hpa} hPa to {top_hpa} hPa: the bottom pressure must be greater than the top pressure")]
+    InvertedLayer {
+        /// Bottom pressure, hPa.
+        bottom_hpa: f64,
+        /// Top pressure, hPa.
+        top_hpa: f64,
+    },
+    /// Hybrid levels need the ground.
+    #[error("'{file}' is on hybrid levels but has no surface pressure and surface geopotential: both are needed to place the levels")]
+    HybridWithoutSurface {
+        /// The source file.
+        file: String,
+    },
+    /// The reference level asked for does not exist in the file's heights.
+    #[error("'{file}' carries no geopotential height to anchor the columns at {pressure_hpa} hPa: give surface fields or use the standard-atmosphere reference")]
+    NoFileHeights {
+        /// The source file.
+        file: String,
+        /// The requested reference level, hPa.
+        pressure_hpa: f64,
+    },
+}
+
+/// Computes geopotential height on every level and the thickness of every requested layer.
+///
+/// `progress` is called once per finished (member, time) step with the number finished so
+/// far; the total is `members * times`.
+///
+/// # Method
+/// Virtual temperature from whatever humidity the cycle carries (dry where a humidity level is
+/// missing from the file), then per column [`ColumnNodes::isobaric`] or
+/// [`ColumnNodes::hybrid`] (constant-lapse-rate layers; Simmons & Burridge 1981 on hybrid
+/// levels), and thickness by [`thickness_between`] on the same column.
+pub fn compute_heights(
+    cycle: &Cycle,
+    config: &ComputeConfig,
+    progress: &(dyn Fn(usize) + Sync),
+) -> Result<Heights, ComputeError> {
+    for layer in &config.layers {
+        if !(layer.bottom_pa > layer.top_pa) {
+            return Err(ComputeError::InvertedLayer {
+                bottom_hpa: layer.bottom_pa / 100.0,
+                top_hpa: layer.top_pa / 100.0,
+            });
+        }
+    }
+    let (members, times, levels, rows, cols) = cycle.temperature.dim();
+    let file = cycle.source.display().to_string();
+    if matches!(cycle.vertical, Vertical::Hybrid { .. }) && cycle.surface.is_none() {
+        return Err(ComputeError::HybridWithoutSurface { file });
+    }
+    let reference = resolve_reference(cycle, config.no_surface_reference)?;
+
+    let mut height = Array5::<f32>::from_elem((members, times, levels, rows, cols), f32::NAN);
+    let mut below = Array5::<u8>::zeros((members, times, levels, rows, cols));
+    let nlayers = config.layers.len();
+    let mut thick = Array5::<f32>::from_elem((members, times, nlayers, rows, cols), f32::NAN);
+    let mut thick_below = Array5::<u8>::zeros((members, times, nlayers, rows, cols));
+    let c = cycle.constants;
+    let mut done = 0usize;
+    let mut dry_levels = vec![false; levels];
+    if let Some(h) = &cycle.humidity {
+        for &k in &h.missing_levels {
+            if let Some(d) = dry_levels.get_mut(k) {
+                *d = true;
+            }
+        }
+    }
+
+    for m in 0..members {
+        for t in 0..times {
+            let step = Step {
+                cycle,
+                config,
+                reference,
+                temperature: cycle.temperature.slice(s![m, t, .., .., ..]),
+                humidity: cycle
+                    .humidity
+                    .as_ref()
+                    .map(|h| (h.kind, h.values.slice(s![m, t, .., .., ..]), &dry_levels[..])),
+                surface: cycle.surface.as_ref().map(|sf| {
+                    (
+                        sf.pressure_pa.slice(s![m, t, .., ..]),
+                        sf.height_m.slice(s![m, t, .., ..]),
+                    )
+                }),
+                file_heights: cycle
+                    .file_heights
+                    .as_ref()
+                    .map(|z| z.slice(s![m, t, .., .., ..])),
+                constants: c,
+            };
+            let mut z_mt = height.slice_mut(s![m, t, .., .., ..]);
+            let mut b_mt = below.slice_mut(s![m, t, .., .., ..]);
+            let mut th_mt = thick.slice_mut(s![m, t, .., .., ..]);
+            let mut tb_mt = thick_below.slice_mut(s![m, t, .., .., ..]);
+            z_mt.axis_iter_mut(Axis(1))
+                .into_par_iter()
+                .zip(b_mt.axis_iter_mut(Axis(1)).into_par_iter())
+                .zip(th_mt.axis_iter_mut(Axis(1)).into_par_iter())
+                .zip(tb_mt.axis_iter_mut(Axis(1)).into_par_iter())
+                .enumerate()
+                .for_each_init(
+                    || RowScratch::new(levels),
+                    |scratch, (row, (((z_row, b_row), th_row), tb_row))| {
+                        step.row(row, scratch, z_row, b_row, th_row, tb_row);
+                    },
+                );
+            done += 1;
+            progress(done);
+        }
+    }
+
+    let thickness = config
+        .layers
+        .iter()
+        .enumerate()
+        .map(|(l, layer)| LayerThickness {
+            layer: *layer,
+            values: thick.slice(s![.., .., l, .., ..]).to_owned(),
+            below_ground: thick_below.slice(s![.., .., l, .., ..]).to_owned(),
+        })
+        .collect();
+    Ok(Heights {
+        geopotential_height: height,
+        below_ground: below,
+        thickness,
+        constants: c,
+        method: method_sentence(cycle, reference),
+    })
+}
+
+/// The reference actually used for a cycle without surface fields.
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Reference {
+    Surface,
+    /// The file's height at this level index, or the lowest finite one when `None`.
+    FileHeight(Option<usize>),
+    StandardAtmosphere(f64),
+}
+
+fn resolve_reference(cycle: &Cycle, wanted: NoSurfaceReference) -> Result<Reference, ComputeError> {
+    if cycle.surface.is_some() {
+        return Ok(Reference::Surface);
+    }
+    let lowest_pressure = match &cycle.vertical {
+        Vertical::Isobaric { pressure_pa } => pressure_pa.first().copied().unwrap_or(f64::NAN),
+        Vertical::Hybrid { .. } => f64::NAN,
+    };
+    let standard = Reference::StandardAtmosphere(us_standard_atmosphere_height_at_pressure(
+        lowest_pressure,
+    ));
+    match (wanted, &cycle.file_heights, &cycle.vertical) {
+        (NoSurfaceReference::StandardAtmosphere, _, _) => Ok(standard),
+        (NoSurfaceReference::FileHeightAtLowestLevel, None, _) => Ok(standard),
+        (NoSurfaceReference::FileHeightAtLowestLevel, Some(_), _) => {
+            Ok(Reference::FileHeight(None))
+        }
+        (NoSurfaceReference::FileHeightAt { pressure_pa }, Some(_), Vertical::Isobaric { pressure_pa: levels }) => {
+            let nearest = levels
+                .iter()
+                .enumerate()
+                .min_by(|a, b| (a.1 - pressure_pa).abs().total_cmp(&(b.1 - pressure_pa).abs()))
+                .map(|(k, _)| k);
+            Ok(Reference::FileHeight(nearest))
+        }
+        (NoSurfaceReference::FileHeightAt { pressure_pa }, _, _) => Err(ComputeError::NoFileHeights {
+            file: cycle.source.display().to_string(),
+            pressure_hpa: pressure_pa / 100.0,
+        }),
+    }
+}
+
+fn method_sentence(cycle: &Cycle, reference: Reference) -> String {
+    let humidity = match &cycle.humidity {
+        Some(h) => format!("virtual temperature from {}", h.kind.standard_name()),
+        None => "no humidity in the file: temperature used as virtual temperature".to_string(),
+    };
+    let vertical = match cycle.vertical {
+        Vertical::Isobaric { .. } => {
+            "hypsometric equation with a constant lapse rate in each layer (logarithmic-mean virtual temperature)"
+        }
+        Vertical::Hybrid { .. } => {
+            "hydrostatic integration on hybrid sigma-pressure levels (Simmons and Burridge 1981)"
+        }
+    };
+    let anchor = match reference {
+        Reference::Surface => "integrated from surface pressure and surface height; below ground, temperature extrapolated at 6.5 K/km from the surface".to_string(),
+        Reference::FileHeight(Some(k)) => format!("anchored to the file's own geopotential height at level index {k} (no surface fields)"),
+        Reference::FileHeight(None) => "anchored to the file's own geopotential height at the lowest level that has one (no surface fields)".to_string(),
+        Reference::StandardAtmosphere(z) => format!("anchored at the lowest level to its U.S. Standard Atmosphere 1976 height, {z:.1} m (no surface fields, no file heights): absolute heights indicative only"),
+    };
+    format!("{vertical}; {humidity}; {anchor}")
+}
+
+/// Per-thread scratch for one row.
+struct RowScratch {
+    nodes: ColumnNodes,
+    tv: Vec<f64>,
+    p_full: Vec<f64>,
+    z: Vec<f64>,
+    z_half: Vec<f64>,
+    below: Vec<bool>,
+}
+
+impl RowScratch {
+    fn new(levels: usize) -> Self {
+        Self {
+            nodes: ColumnNodes::with_capacity(levels + 2),
+            tv: vec![0.0; levels],
+            p_full: vec![0.0; levels],
+            z: vec![0.0; levels],
+            z_half: vec![0.0; levels + 1],
+            below: vec![false; levels],
+        }
+    }
+}
+
+/// Everything one (member, time) step reads.
+struct Step<'a> {
+    cycle: &'a Cycle,
+    config: &'a ComputeConfig,
+    reference: Reference,
+    temperature: ArrayView3<'a, f32>,
+    /// Humidity kind and values, and per level whether the file lacked that humidity level.
+    humidity: Option<(HumidityKind, ArrayView3<'a, f32>, &'a [bool])>,
+    surface: Option<(ArrayView2<'a, f32>, ArrayView2<'a, f32>)>,
+    file_heights: Option<ArrayView3<'a, f32>>,
+    constants: Constants,
+}
+
+impl Step<'_> {
+    fn row(
+        &self,
+        row: usize,
+        s: &mut RowScratch,
+        mut z_row: ArrayViewMut2<'_, f32>,
+        mut b_row: ArrayViewMut2<'_, u8>,
+        mut th_row: ArrayViewMut2<'_, f32>,
+        mut tb_row: ArrayViewMut2<'_, u8>,
+    ) {
+        let c = &self.constants;
+        let levels = s.tv.len();
+        let cols = z_row.dim().1;
+        for col in 0..cols {
+            let surface = self
+                .surface
+                .map(|(ps, zs)| (f64::from(ps[[row, col]]), f64::from(zs[[row, col]])));
+            // Pressure of each level in this column.
+            match &self.cycle.vertical {
+                Vertical::Isobaric { pressure_pa } => s.p_full.copy_from_slice(pressure_pa),
+                Vertical::Hybrid { a_half_pa, b_half } => {
+                    let ps = surface.map_or(f64::NAN, |(ps, _)| ps);
+                    for k in 0..levels {
+                        let lower = a_half_pa[k] + b_half[k] * ps;
+                        let upper = a_half_pa[k + 1] + b_half[k + 1] * ps;
+                        s.p_full[k] = 0.5 * (lower + upper);
+                    }
+                }
+            }
+            for k in 0..levels {
+                let t = f64::from(self.temperature[[k, row, col]]);
+                s.tv[k] = match self.humidity {
+                    None => t,
+                    Some((_, _, dry)) if dry[k] => t,
+                    Some((kind, values, _)) => {
+                        let h = f64::from(values[[k, row, col]]);
+                        self.virtual_temperature(kind, t, h, s.p_full[k])
+                    }
+                };
+            }
+            match &self.cycle.vertical {
+                Vertical::Isobaric { pressure_pa } => {
+                    let anchor = self.anchor(surface, row, col, pressure_pa);
+                    s.nodes.isobaric(pressure_pa, &s.tv, anchor, c, &mut s.z, &mut s.below);
+                }
+                Vertical::Hybrid { a_half_pa, b_half } => {
+                    let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));
+                    s.nodes.hybrid(a_half_pa, b_half, &s.tv, ps, zs, c, &mut s.z, &mut s.z_half);
+                    s.below.iter_mut().for_each(|b| *b = false);
+                }
+            }
+            for k in 0..levels {
+                z_row[[k, col]] = s.z[k] as f32;
+                b_row[[k, col]] = u8::from(s.below[k]);
+            }
+            for (l, layer) in self.config.layers.iter().enumerate() {
+                th_row[[l, col]] = thickness_between(&s.nodes, layer.bottom_pa, layer.top_pa, c)
+                    .map_or(f32::NAN, |v| v as f32);
+                tb_row[[l, col]] = u8::from(surface.is_some_and(|(ps, _)| layer.bottom_pa > ps));
+            }
+        }
+    }
+
+    fn virtual_temperature(&self, kind: HumidityKind, t: f64, h: f64, p: f64) -> f64 {
+        let eps = self.constants.molar_mass_ratio;
+        match kind {
+            HumidityKind::SpecificHumidity => virtual_temperature_from_specific_humidity(t, h, eps),
+            HumidityKind::MixingRatio => virtual_temperature_from_mixing_ratio(t, h, eps),
+            HumidityKind::RelativeHumidity => {
+                let e = h * saturation_vapour_pressure(t, self.config.saturation_formula, self.config.rh_phase);
+                let q = specific_humidity_from_vapour_pressure(e, p, eps);
+                virtual_temperature_from_specific_humidity(t, q, eps)
+            }
+            HumidityKind::DewPoint => {
+                let e = vapour_pressure_from_dewpoint(h, self.config.saturation_formula);
+                let q = specific_humidity_from_vapour_pressure(e, p, eps);
+                virtual_temperature_from_specific_humidity(t, q, eps)
+            }
+        }
+    }
+
+    fn anchor(
+        &self,
+        surface: Option<(f64, f64)>,
+        row: usize,
+        col: usize,
+        pressure_pa: &[f64],
+    ) -> ColumnAnchor {
+        match (self.reference, surface) {
+            (Reference::Surface, Some((ps, zs))) => ColumnAnchor::Surface {
+                pressure_pa: ps,
+                height_m: zs,
+            },
+            (Reference::FileHeight(level), _) => {
+                let heights = self.file_heights;
+                let at = |k: usize| heights.map_or(f64::NAN, |z| f64::from(z[[k, row, col]]));
+                let level = level.unwrap_or_else(|| {
+                    (0..pressure_pa.len()).find(|&k| at(k).is_finite()).unwrap_or(0)
+                });
+                ColumnAnchor::LevelHeight {
+                    level,
+                    height_m: at(level),
+                }
+            }
+            (Reference::StandardAtmosphere(z), _) => ColumnAnchor::LevelHeight {
+                level: 0,
+                height_m: z,
+            },
+            // Unreachable by construction (Surface is chosen only when the cycle has surface
+            // fields); a masked column is the safe answer.
+            (Reference::Surface, None) => ColumnAnchor::LevelHeight {
+                level: 0,
+                height_m: f64::NAN,
+            },
+        }
+    }
+}

@@ -1,0 +1,21 @@
+//! hypsogrid: geopotential heights and layer thickness on forecast grids, column by column,
+//! by the hypsometric equation.
+//!
+//! Start with [`ingest::read_cycle`] (a NetCDF file to a [`model::Cycle`]), then
+//! [`compute::compute_heights`] (a cycle to heights and thicknesses), then
+//! [`output::write_heights`] (back to CF NetCDF). DEVELOPERS.md has the architecture.
+#![warn(missing_docs, rust_2018_idioms, unreachable_pub)]
+
+pub mod compute;
+pub mod demo;
+pub mod grid;
+pub mod ingest;
+pub mod model;
+pub mod output;
+pub mod physics;
+
+/// Generated protobuf types of the `hypsogrid.v1` package (wire types only).
+#[allow(missing_docs, unreachable_pub, clippy::all)]
+pub mod pb {
+    include!(concat!(env!("OUT_DIR"), "/hypsogrid.v1.rs"));
+}
