@@ -1,0 +1,1192 @@
+//! Writes computed heights and layer thicknesses as a CF NetCDF-4 file.
+//!
+//! The file keeps the input's grid and the input's level order, carries a `below_ground` flag
+//! beside every field, and names the constants and the method that made it. The write is
+//! atomic: everything goes into `<path>.partial-<pid>` beside the target and is renamed over
+//! `path` only when complete, so a failed run never leaves a half-written output behind.
+//!
+//! Fields are stored as `f32` (as in [`crate::model`]); non-finite values become the
+//! `_FillValue` on the way out, one pass per variable into one reused buffer, and every
+//! variable is written with a single call.
+
+use std::path::{Path, PathBuf};
+
+use ndarray::{s, Array4, Array5, ArrayView2};
+use rayon::prelude::*;
+
+use crate::model::{Cycle, Heights, Layer, Vertical};
+
+/// `_FillValue` of every float variable: the netCDF default fill for `float` (`NC_FILL_FLOAT`
+/// in netcdf.h), so that readers which ignore the attribute still see a recognisable value.
+pub const FLOAT_FILL_VALUE: f32 = 9.969_21e36;
+
+/// CF standard name of layer thickness (CF standard name table).
+const THICKNESS_STANDARD_NAME: &str =
+    "atmosphere_layer_thickness_expressed_as_geopotential_height_difference";
+
+/// Meanings of the flag values 0 and 1 of every below-ground flag (CF §3.5 flags).
+const BELOW_GROUND_FLAG_MEANINGS: &str = "above_ground below_ground";
+
+/// How to write.
+#[derive(Clone, Debug, Default)]
+pub struct OutputOptions {
+    /// Line for the global `history` attribute (the command line that made the file).
+    pub history: String,
+    /// zlib deflate level 1-9 for NetCDF-4 output; None = uncompressed.
+    pub deflate_level: Option<i32>,
+}
+
+/// Why an output file could not be written. Every variant names the target file.
+#[derive(Debug, thiserror::Error)]
+pub enum OutputError {
+    /// The directory the file should go into does not exist.
+    #[error("cannot write '{path}': directory '{dir}' does not exist")]
+    MissingDirectory {
+        /// The output file.
+        path: PathBuf,
+        /// Its parent directory.
+        dir: PathBuf,
+    },
+    /// The path ends in `..` or `/` and so names no file.
+    #[error("cannot write '{path}': the path names no file")]
+    NoFileName {
+        /// The output path.
+        path: PathBuf,
+    },
+    /// A deflate level outside 1–9.
+    #[error("cannot write '{path}': deflate level {level} is out of range: expected 1 to 9")]
+    DeflateLevel {
+        /// The output file.
+        path: PathBuf,
+        /// The level asked for.
+        level: i32,
+    },
+    /// The cycle has an empty axis, so there is nothing to write.
+    #[error("cannot write '{path}': the cycle has no {axis}")]
+    EmptyAxis {
+        /// The output file.
+        path: PathBuf,
+        /// Which axis is empty (`times`, `levels`, `latitudes`, ...).
+        axis: &'static str,
+    },
+    /// An array of the heights does not match the cycle's shape.
+    #[error(
+        "cannot write '{path}': {what} has shape {found:?}, expected {expected:?} from the cycle"
+    )]
+    Shape {
+        /// The output file.
+        path: PathBuf,
+        /// Which array.
+        what: String,
+        /// Shape implied by the cycle.
+        expected: Vec<usize>,
+        /// Shape found.
+        found: Vec<usize>,
+    },
+    /// Two layers would get the same variable name.
+    #[error("cannot write '{path}': layer {label} hPa is listed twice (variable '{variable}')")]
+    DuplicateLayer {
+        /// The output file.
+        path: PathBuf,
+        /// The layer's label in hPa.
+        label: String,
+        /// The variable name both layers map to.
+        variable: String,
+    },
+    /// The cycle's reference time is not an RFC 3339 date-time.
+    #[error(
+        "cannot write '{path}': reference time '{value}' is not rfc 3339: expected e.g. 2030-01-15T00:00:00Z"
+    )]
+    ReferenceTime {
+        /// The output file.
+        path: PathBuf,
+        /// The text found.
+        value: String,
+    },
+    /// The netCDF library refused an operation.
+    #[error("cannot write '{path}': {context}: {source}")]
+    Netcdf {
+        /// The output file.
+        path: PathBuf,
+        /// What was being done (names the variable or attribute).
+        context: String,
+        /// The library's error.
+        #[source]
+        source: netcdf::Error,
+    },
+    /// A file-system operation failed.
+    #[error("cannot write '{path}': {context}: {source}")]
+    Io {
+        /// The output file.
+        path: PathBuf,
+        /// What was being done.
+        context: String,
+        /// The operating system's error.
+        #[source]
+        source: std::io::Error,
+    },
+}
+
+/// Writes `heights` computed from `cycle` to `path` as CF-1.8 NetCDF-4.
+///
+/// Layout: coordinates `latitude`, `longitude` (file order), the vertical coordinate in the
+/// input file's order (`air_pressure` in Pa for isobaric input, `model_level_number` counted
+/// from 1 at the model top for hybrid input), `time` (seconds since the reference time, with
+/// `forecast_reference_time` and `forecast_period` when the reference time is known) and
+/// `realization` when the cycle has more than one member. Data: `geopotential_height` and its
+/// `below_ground` flag, and per layer `thickness_<bottom>_<top>` (hPa, `p` for a decimal
+/// point) with `<name>_below_ground`.
+///
+/// The write goes to `<path>.partial-<pid>` and is renamed over `path` when complete; on any
+/// error the partial file is removed. An existing file at `path` is replaced.
+pub fn write_heights(
+    cycle: &Cycle,
+    heights: &Heights,
+    path: &Path,
+    options: &OutputOptions,
+) -> Result<(), OutputError> {
+    let plan = Plan::new(cycle, heights, path, options)?;
+    let partial = PartialFile::new(path)?;
+    write_file(&plan, cycle, heights, options, partial.path())?;
+    partial.commit()
+}
+
+/// The variable name of a layer's thickness: `thickness_<bottom>_<top>` in hPa, with `p`
+/// standing for a decimal point (`thickness_1000_500`, `thickness_1000_512p5`).
+pub fn thickness_variable_name(layer: &Layer) -> String {
+    let label = layer.label_hpa().replace('-', "_").replace('.', "p");
+    format!("thickness_{label}")
+}
+
+/// Everything checked and derived before the file is created, so that input errors never
+/// touch the file system.
+struct Plan {
+    path: PathBuf,
+    members: usize,
+    times: usize,
+    levels: usize,
+    rows: usize,
+    cols: usize,
+    /// Time units, `seconds since ...`, when the reference time is known.
+    time_units: Option<String>,
+    thickness_names: Vec<String>,
+}
+
+impl Plan {
+    fn new(
+        cycle: &Cycle,
+        heights: &Heights,
+        path: &Path,
+        options: &OutputOptions,
+    ) -> Result<Self, OutputError> {
+        let path_buf = path.to_path_buf();
+        if let Some(level) = options.deflate_level {
+            if !(1..=9).contains(&level) {
+                return Err(OutputError::DeflateLevel {
+                    path: path_buf,
+                    level,
+                });
+            }
+        }
+        let members = cycle.members;
+        let times = cycle.lead_times_s.len();
+        let levels = cycle.vertical.levels();
+        let rows = cycle.grid.rows();
+        let cols = cycle.grid.cols();
+        for (n, axis) in [
+            (members, "members"),
+            (times, "times"),
+            (levels, "levels"),
+            (rows, "latitudes"),
+            (cols, "longitudes"),
+        ] {
+            if n == 0 {
+                return Err(OutputError::EmptyAxis {
+                    path: path_buf,
+                    axis,
+                });
+            }
+        }
+        if let Vertical::Hybrid { a_half_pa, b_half } = &cycle.vertical {
+            check_shape(
+                path,
+                "the hybrid b coefficients",
+                &[a_half_pa.len()],
+                &[b_half.len()],
+            )?;
+        }
+        let shape5 = vec![members, times, levels, rows, cols];
+        let shape4 = vec![members, times, rows, cols];
+        check_shape(
+            path,
+            "geopotential_height",
+            &shape5,
+            heights.geopotential_height.shape(),
+        )?;
+        check_shape(path, "below_ground", &shape5, heights.below_ground.shape())?;
+        let mut thickness_names: Vec<String> = Vec::with_capacity(heights.thickness.len());
+        for layer in &heights.thickness {
+            let name = thickness_variable_name(&layer.layer);
+            if thickness_names.contains(&name) {
+                return Err(OutputError::DuplicateLayer {
+                    path: path_buf,
+                    label: layer.layer.label_hpa(),
+                    variable: name,
+                });
+            }
+            check_shape(path, &name, &shape4, layer.values.shape())?;
+            check_shape(
+                path,
+                &format!("{name}_below_ground"),
+                &shape4,
+                layer.below_ground.shape(),
+            )?;
+            thickness_names.push(name);
+        }
+        let time_units = match &cycle.reference_time {
+            Some(value) => Some(format!(
+                "seconds since {}",
+                udunits_time_from_rfc3339(value).ok_or_else(|| OutputError::ReferenceTime {
+                    path: path_buf.clone(),
+                    value: value.clone(),
+                })?
+            )),
+            None => None,
+        };
+        Ok(Self {
+            path: path_buf,
+            members,
+            times,
+            levels,
+            rows,
+            cols,
+            time_units,
+            thickness_names,
+        })
+    }
+
+    /// Dimension names of a 3-D field, outermost first.
+    fn dims5(&self, level_dim: &'static str) -> Vec<&'static str> {
+        let mut dims = Vec::with_capacity(5);
+        if self.members > 1 {
+            dims.push("realization");
+        }
+        dims.extend(["time", level_dim, "latitude", "longitude"]);
+        dims
+    }
+
+    /// Dimension names of a 2-D field, outermost first.
+    fn dims4(&self) -> Vec<&'static str> {
+        let mut dims = Vec::with_capacity(4);
+        if self.members > 1 {
+            dims.push("realization");
+        }
+        dims.extend(["time", "latitude", "longitude"]);
+        dims
+    }
+
+    /// Chunk shape for compressed variables: one latitude-longitude plane per chunk, the unit
+    /// that map tools read.
+    fn plane_chunks(&self, ndims: usize) -> Vec<usize> {
+        let mut chunks = vec![1; ndims];
+        chunks[ndims - 2] = self.rows;
+        chunks[ndims - 1] = self.cols;
+        chunks
+    }
+
+    fn nc_error(&self, context: impl Into<String>) -> impl FnOnce(netcdf::Error) -> OutputError {
+        let path = self.path.clone();
+        let context = context.into();
+        move |source| OutputError::Netcdf {
+            path,
+            context,
+            source,
+        }
+    }
+}
+
+fn check_shape(
+    path: &Path,
+    what: &str,
+    expected: &[usize],
+    found: &[usize],
+) -> Result<(), OutputError> {
+    if expected == found {
+        Ok(())
+    } else {
+        Err(OutputError::Shape {
+            path: path.to_path_buf(),
+            what: what.to_string(),
+            expected: expected.to_vec(),
+            found: found.to_vec(),
+        })
+    }
+}
+
+/// Turns an RFC 3339 date-time (`2030-01-15T06:00:00Z`, `2030-01-15 06:00:00+02:00`) into
+/// the UDUNITS form CF time units use (`2030-01-15 06:00:00`, `2030-01-15 06:00:00 +02:00`).
+/// Returns `None` when the text is not of that shape.
+fn udunits_time_from_rfc3339(value: &str) -> Option<String> {
+    let value = value.trim();
+    let (date, rest) = value.split_at_checked(10)?;
+    let d: Vec<&str> = date.split('-').collect();
+    let date_ok = d.len() == 3
+        && d[0].len() == 4
+        && d[1].len() == 2
+        && d[2].len() == 2
+        && d.iter().all(|p| p.bytes().all(|b| b.is_ascii_digit()))
+        && (1..=12).contains(&d[1].parse::<u32>().ok()?)
+        && (1..=31).contains(&d[2].parse::<u32>().ok()?);
+    if !date_ok {
+        return None;
+    }
+    let rest = rest.strip_prefix(['T', 't', ' '])?;
+    // Split the clock from the zone: `Z`, `+hh:mm` or `-hh:mm`.
+    let (clock, zone) = if let Some(clock) = rest.strip_suffix(['Z', 'z']) {
+        (clock, None)
+    } else if rest.len() > 6 && matches!(rest.as_bytes()[rest.len() - 6], b'+' | b'-') {
+        let (clock, zone) = rest.split_at(rest.len() - 6);
+        (clock, Some(zone))
+    } else {
+        return None;
+    };
+    let t: Vec<&str> = clock.split(':').collect();
+    let digits = |x: &str| !x.is_empty() && x.bytes().all(|b| b.is_ascii_digit());
+    let seconds_ok = t.len() == 3 && {
+        let (whole, fraction) = t[2].split_once('.').unwrap_or((t[2], "0"));
+        whole.len() == 2 && digits(whole) && digits(fraction)
+    };
+    if !seconds_ok || t[0].len() != 2 || t[1].len() != 2 || !digits(t[0]) || !digits(t[1]) {
+        return None;
+    }
+    let hour: u32 = t[0].parse().ok()?;
+    let minute: u32 = t[1].parse().ok()?;
+    let second: f64 = t[2].parse().ok()?;
+    if hour > 23 || minute > 59 || !(0.0..61.0).contains(&second) {
+        return None;
+    }
+    match zone {
+        None => Some(format!("{date} {clock}")),
+        Some(zone) => {
+            let z = zone.as_bytes();
+            let zone_ok = z[1..3].iter().all(u8::is_ascii_digit)
+                && z[3] == b':'
+                && z[4..6].iter().all(u8::is_ascii_digit);
+            if !zone_ok {
+                None
+            } else if &zone[1..] == "00:00" {
+                Some(format!("{date} {clock}"))
+            } else {
+                Some(format!("{date} {clock} {zone}"))
+            }
+        }
+    }
+}
+
+/// The partial file beside the target; removed on drop unless committed, so every early
+/// return (and a panic) cleans up.
+struct PartialFile {
+    target: PathBuf,
+    partial: PathBuf,
+    committed: bool,
+}
+
+impl PartialFile {
+    fn new(target: &Path) -> Result<Self, OutputError> {
+        let file_name = target.file_name().ok_or_else(|| OutputError::NoFileName {
+            path: target.to_path_buf(),
+        })?;
+        let dir = match target.parent() {
+            Some(dir) if !dir.as_os_str().is_empty() => dir.to_path_buf(),
+            _ => PathBuf::from("."),
+        };
+        if !dir.is_dir() {
+            return Err(OutputError::MissingDirectory {
+                path: target.to_path_buf(),
+                dir,
+            });
+        }
+        let mut partial_name = file_name.to_os_string();
+        partial_name.push(format!(".partial-{}", std::process::id()));
+        Ok(Self {
+            target: target.to_path_buf(),
+            partial: dir.join(partial_name),
+            committed: false,
+        })
+    }
+
+    fn path(&self) -> &Path {
+        &self.partial
+    }
+
+    fn commit(mut self) -> Result<(), OutputError> {
+        std::fs::rename(&self.partial, &self.target).map_err(|source| OutputError::Io {
+            path: self.target.clone(),
+            context: format!("renaming '{}' into place", self.partial.display()),
+            source,
+        })?;
+        self.committed = true;
+        Ok(())
+    }
+}
+
+impl Drop for PartialFile {
+    fn drop(&mut self) {
+        if !self.committed {
+            // The partial file may not exist yet (the error came before creation); there is
+            // nothing more to do when removal fails.
+            let _ = std::fs::remove_file(&self.partial);
+        }
+    }
+}
+
+/// Reused conversion buffers, sized for the largest variable.
+#[derive(Default)]
+struct Buffers {
+    floats: Vec<f32>,
+    flags: Vec<i8>,
+}
+
+fn write_file(
+    plan: &Plan,
+    cycle: &Cycle,
+    heights: &Heights,
+    options: &OutputOptions,
+    partial: &Path,
+) -> Result<(), OutputError> {
+    let mut file = netcdf::create_with(partial, netcdf::Options::NETCDF4)
+        .map_err(plan.nc_error(format!("creating '{}'", partial.display())))?;
+
+    write_global_attributes(&mut file, plan, cycle, heights, options)?;
+    write_coordinates(&mut file, plan, cycle)?;
+    let level_dim = level_dimension_name(&cycle.vertical);
+    let reverse = cycle.levels_top_down_in_file;
+    let mut buffers = Buffers::default();
+
+    // Geopotential height and its flag.
+    let dims5 = plan.dims5(level_dim);
+    {
+        let name = "geopotential_height";
+        let mut var = file
+            .add_variable::<f32>(name, &dims5)
+            .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+        prepare_float_variable(&mut var, plan, name, options, dims5.len())?;
+        put_text(&mut var, plan, name, "standard_name", "geopotential_height")?;
+        put_text(&mut var, plan, name, "long_name", "geopotential height")?;
+        put_text(&mut var, plan, name, "units", "m")?;
+        put_text(&mut var, plan, name, "ancillary_variables", "below_ground")?;
+        put_text(
+            &mut var,
+            plan,
+            name,
+            "comment",
+            &format!(
+                "geopotential metres of g0 = {} m s-2; heights of levels below the ground are \
+                 extrapolated (see below_ground)",
+                heights.constants.standard_gravity
+            ),
+        )?;
+        put_coordinates_attribute(&mut var, plan, name)?;
+        copy_5d(
+            &heights.geopotential_height,
+            reverse,
+            &mut buffers.floats,
+            to_file_value,
+        );
+        var.put_values(&buffers.floats, ..)
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    }
+    {
+        let name = "below_ground";
+        let mut var = file
+            .add_variable::<i8>(name, &dims5)
+            .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+        prepare_flag_variable(&mut var, plan, name, options, dims5.len())?;
+        put_text(
+            &mut var,
+            plan,
+            name,
+            "long_name",
+            "pressure level lies below the ground",
+        )?;
+        put_text(
+            &mut var,
+            plan,
+            name,
+            "comment",
+            "1 where the level lies below the model surface: there geopotential_height is \
+             extrapolated downward from the surface with temperature increasing at 6.5 K/km \
+             (common practice, as in sea-level pressure reduction); mask these points where \
+             only physical heights are wanted",
+        )?;
+        copy_5d(
+            &heights.below_ground,
+            reverse,
+            &mut buffers.flags,
+            to_file_flag,
+        );
+        var.put_values(&buffers.flags, ..)
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    }
+
+    // One thickness variable and flag per layer.
+    let dims4 = plan.dims4();
+    for (layer, name) in heights.thickness.iter().zip(&plan.thickness_names) {
+        let flag_name = format!("{name}_below_ground");
+        let label = layer.layer.label_hpa();
+        {
+            let mut var = file
+                .add_variable::<f32>(name, &dims4)
+                .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+            prepare_float_variable(&mut var, plan, name, options, dims4.len())?;
+            put_text(
+                &mut var,
+                plan,
+                name,
+                "standard_name",
+                THICKNESS_STANDARD_NAME,
+            )?;
+            put_text(
+                &mut var,
+                plan,
+                name,
+                "long_name",
+                &format!("thickness of the {label} hPa layer"),
+            )?;
+            put_text(&mut var, plan, name, "units", "m")?;
+            put_attr(
+                &mut var,
+                plan,
+                name,
+                "layer_bottom_pressure",
+                layer.layer.bottom_pa,
+            )?;
+            put_attr(
+                &mut var,
+                plan,
+                name,
+                "layer_top_pressure",
+                layer.layer.top_pa,
+            )?;
+            put_text(&mut var, plan, name, "layer_pressure_units", "Pa")?;
+            put_text(&mut var, plan, name, "ancillary_variables", &flag_name)?;
+            put_coordinates_attribute(&mut var, plan, name)?;
+            copy_4d(&layer.values, &mut buffers.floats, to_file_value);
+            var.put_values(&buffers.floats, ..)
+                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        }
+        {
+            let mut var = file
+                .add_variable::<i8>(&flag_name, &dims4)
+                .map_err(plan.nc_error(format!("defining variable '{flag_name}'")))?;
+            prepare_flag_variable(&mut var, plan, &flag_name, options, dims4.len())?;
+            put_text(
+                &mut var,
+                plan,
+                &flag_name,
+                "long_name",
+                &format!("bottom of the {label} hPa layer lies below the ground"),
+            )?;
+            put_text(
+                &mut var,
+                plan,
+                &flag_name,
+                "comment",
+                &format!(
+                    "1 where the layer bottom lies below the model surface: there {name} \
+                     rests on heights extrapolated downward from the surface at 6.5 K/km \
+                     (common practice)"
+                ),
+            )?;
+            copy_4d(&layer.below_ground, &mut buffers.flags, to_file_flag);
+            var.put_values(&buffers.flags, ..)
+                .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
+        }
+    }
+
+    file.close()
+        .map_err(plan.nc_error(format!("closing '{}'", partial.display())))
+}
+
+fn level_dimension_name(vertical: &Vertical) -> &'static str {
+    match vertical {
+        Vertical::Isobaric { .. } => "air_pressure",
+        Vertical::Hybrid { .. } => "model_level_number",
+    }
+}
+
+fn write_global_attributes(
+    file: &mut netcdf::FileMut,
+    plan: &Plan,
+    cycle: &Cycle,
+    heights: &Heights,
+    options: &OutputOptions,
+) -> Result<(), OutputError> {
+    let mut references = String::from(
+        "hypsometric equation: Wallace, J. M. and Hobbs, P. V. (2006), Atmospheric Science, \
+         2nd ed., section 3.2",
+    );
+    if matches!(cycle.vertical, Vertical::Hybrid { .. }) {
+        references.push_str(
+            "; hybrid-level geopotential: Simmons, A. J. and Burridge, D. M. (1981), \
+             Mon. Wea. Rev. 109, 758-766",
+        );
+    }
+    let texts: [(&str, String); 6] = [
+        ("Conventions", "CF-1.8".to_string()),
+        (
+            "title",
+            "geopotential height and layer thickness by the hypsometric equation".to_string(),
+        ),
+        ("history", options.history.clone()),
+        ("source", cycle.source.display().to_string()),
+        ("method", heights.method.clone()),
+        ("references", references),
+    ];
+    for (name, value) in texts {
+        file.add_attribute(name, value)
+            .map_err(plan.nc_error(format!("writing global attribute '{name}'")))?;
+    }
+    let numbers = [
+        (
+            "dry_air_gas_constant",
+            heights.constants.dry_air_gas_constant,
+        ),
+        ("standard_gravity", heights.constants.standard_gravity),
+        ("molar_mass_ratio", heights.constants.molar_mass_ratio),
+    ];
+    for (name, value) in numbers {
+        file.add_attribute(name, value)
+            .map_err(plan.nc_error(format!("writing global attribute '{name}'")))?;
+    }
+    file.add_attribute(
+        "constants_units",
+        "dry_air_gas_constant: J kg-1 K-1; standard_gravity: m s-2; molar_mass_ratio: 1",
+    )
+    .map_err(plan.nc_error("writing global attribute 'constants_units'"))?;
+    if !cycle.notes.is_empty() {
+        file.add_attribute("ingest_notes", cycle.notes.join("\n"))
+            .map_err(plan.nc_error("writing global attribute 'ingest_notes'"))?;
+    }
+    Ok(())
+}
+
+fn write_coordinates(
+    file: &mut netcdf::FileMut,
+    plan: &Plan,
+    cycle: &Cycle,
+) -> Result<(), OutputError> {
+    let level_dim = level_dimension_name(&cycle.vertical);
+    let mut dims: Vec<(&str, usize)> = Vec::with_capacity(5);
+    if plan.members > 1 {
+        dims.push(("realization", plan.members));
+    }
+    dims.extend([
+        ("time", plan.times),
+        (level_dim, plan.levels),
+        ("latitude", plan.rows),
+        ("longitude", plan.cols),
+    ]);
+    for (name, len) in dims {
+        file.add_dimension(name, len)
+            .map_err(plan.nc_error(format!("defining dimension '{name}'")))?;
+    }
+
+    if plan.members > 1 {
+        let name = "realization";
+        let mut var = file
+            .add_variable::<i32>(name, &[name])
+            .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+        put_text(&mut var, plan, name, "standard_name", "realization")?;
+        put_text(
+            &mut var,
+            plan,
+            name,
+            "long_name",
+            "ensemble member, counted from 0 in the order of the input",
+        )?;
+        let values: Vec<i32> = (0..plan.members)
+            .map(|m| i32::try_from(m).unwrap_or(i32::MAX))
+            .collect();
+        var.put_values(&values, ..)
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    }
+
+    write_time(file, plan, cycle)?;
+    write_vertical(file, plan, cycle, level_dim)?;
+
+    for (name, standard_name, units, axis, values) in [
+        (
+            "latitude",
+            "latitude",
+            "degrees_north",
+            "Y",
+            &cycle.grid.latitudes,
+        ),
+        (
+            "longitude",
+            "longitude",
+            "degrees_east",
+            "X",
+            &cycle.grid.longitudes,
+        ),
+    ] {
+        let mut var = file
+            .add_variable::<f64>(name, &[name])
+            .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+        put_text(&mut var, plan, name, "standard_name", standard_name)?;
+        put_text(&mut var, plan, name, "long_name", standard_name)?;
+        put_text(&mut var, plan, name, "units", units)?;
+        put_text(&mut var, plan, name, "axis", axis)?;
+        var.put_values(values, ..)
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    }
+    Ok(())
+}
+
+fn write_time(file: &mut netcdf::FileMut, plan: &Plan, cycle: &Cycle) -> Result<(), OutputError> {
+    // Lead times are whole seconds, far inside the range f64 holds exactly.
+    let leads: Vec<f64> = cycle.lead_times_s.iter().map(|&s| s as f64).collect();
+    match &plan.time_units {
+        Some(units) => {
+            {
+                let name = "time";
+                let mut var = file
+                    .add_variable::<f64>(name, &[name])
+                    .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+                put_text(&mut var, plan, name, "standard_name", "time")?;
+                put_text(&mut var, plan, name, "long_name", "validity time")?;
+                put_text(&mut var, plan, name, "units", units)?;
+                put_text(&mut var, plan, name, "calendar", "standard")?;
+                put_text(&mut var, plan, name, "axis", "T")?;
+                var.put_values(&leads, ..)
+                    .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+            }
+            {
+                let name = "forecast_reference_time";
+                let mut var = file
+                    .add_variable::<f64>(name, &[])
+                    .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+                put_text(&mut var, plan, name, "standard_name", name)?;
+                put_text(&mut var, plan, name, "long_name", "forecast reference time")?;
+                put_text(&mut var, plan, name, "units", units)?;
+                put_text(&mut var, plan, name, "calendar", "standard")?;
+                var.put_value(0.0_f64, ())
+                    .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+            }
+            {
+                let name = "forecast_period";
+                let mut var = file
+                    .add_variable::<f64>(name, &["time"])
+                    .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+                put_text(&mut var, plan, name, "standard_name", name)?;
+                put_text(&mut var, plan, name, "long_name", "lead time")?;
+                put_text(&mut var, plan, name, "units", "s")?;
+                var.put_values(&leads, ..)
+                    .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+            }
+        }
+        None => {
+            // Without a reference time the validity times are unknown: the axis can only
+            // say how long after the (unknown) start each step is, which CF calls the
+            // forecast period.
+            let name = "time";
+            let mut var = file
+                .add_variable::<f64>(name, &[name])
+                .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+            put_text(&mut var, plan, name, "standard_name", "forecast_period")?;
+            put_text(
+                &mut var,
+                plan,
+                name,
+                "long_name",
+                "lead time (the input named no forecast reference time)",
+            )?;
+            put_text(&mut var, plan, name, "units", "s")?;
+            put_text(&mut var, plan, name, "axis", "T")?;
+            var.put_values(&leads, ..)
+                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        }
+    }
+    Ok(())
+}
+
+fn write_vertical(
+    file: &mut netcdf::FileMut,
+    plan: &Plan,
+    cycle: &Cycle,
+    level_dim: &'static str,
+) -> Result<(), OutputError> {
+    let reverse = cycle.levels_top_down_in_file;
+    let in_file_order = |mut v: Vec<f64>| {
+        if reverse {
+            v.reverse();
+        }
+        v
+    };
+    let name = level_dim;
+    match &cycle.vertical {
+        Vertical::Isobaric { pressure_pa } => {
+            let mut var = file
+                .add_variable::<f64>(name, &[name])
+                .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+            put_text(&mut var, plan, name, "standard_name", "air_pressure")?;
+            put_text(&mut var, plan, name, "long_name", "pressure")?;
+            put_text(&mut var, plan, name, "units", "Pa")?;
+            put_text(&mut var, plan, name, "positive", "down")?;
+            put_text(&mut var, plan, name, "axis", "Z")?;
+            let values = in_file_order(pressure_pa.clone());
+            var.put_values(&values, ..)
+                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        }
+        Vertical::Hybrid { a_half_pa, b_half } => {
+            let n = plan.levels;
+            // Full-level pressure is the mean of the bounding half-level pressures, so its
+            // coefficients are the means of theirs (Simmons and Burridge 1981, as in the IFS
+            // documentation, Part III).
+            let a_full: Vec<f64> = (0..n)
+                .map(|k| 0.5 * (a_half_pa[k] + a_half_pa[k + 1]))
+                .collect();
+            let b_full: Vec<f64> = (0..n).map(|k| 0.5 * (b_half[k] + b_half[k + 1])).collect();
+            // Bottom-up index k is level number n - k counted from 1 at the model top.
+            let numbers: Vec<i32> = (0..n)
+                .map(|k| i32::try_from(n - k).unwrap_or(i32::MAX))
+                .collect();
+            let numbers: Vec<i32> = if reverse {
+                numbers.into_iter().rev().collect()
+            } else {
+                numbers
+            };
+            let mut var = file
+                .add_variable::<i32>(name, &[name])
+                .map_err(plan.nc_error(format!("defining variable '{name}'")))?;
+            put_text(&mut var, plan, name, "standard_name", "model_level_number")?;
+            put_text(&mut var, plan, name, "long_name", "model full level number")?;
+            put_text(&mut var, plan, name, "units", "1")?;
+            put_text(&mut var, plan, name, "positive", "down")?;
+            put_text(&mut var, plan, name, "axis", "Z")?;
+            put_attr(&mut var, plan, name, "full_level_a", in_file_order(a_full))?;
+            put_attr(&mut var, plan, name, "full_level_b", in_file_order(b_full))?;
+            put_attr(
+                &mut var,
+                plan,
+                name,
+                "half_level_a",
+                in_file_order(a_half_pa.clone()),
+            )?;
+            put_attr(
+                &mut var,
+                plan,
+                name,
+                "half_level_b",
+                in_file_order(b_half.clone()),
+            )?;
+            put_text(
+                &mut var,
+                plan,
+                name,
+                "comment",
+                "hybrid sigma-pressure levels, numbered from 1 at the model top; full-level \
+                 pressure = full_level_a + full_level_b * surface_air_pressure (Pa), where \
+                 full_level_a (Pa) and full_level_b (1) are the means of the coefficients of \
+                 the half levels above and below; half_level_a (Pa) and half_level_b (1) give \
+                 the half-level pressures the same way; all listed in the order of this \
+                 coordinate",
+            )?;
+            var.put_values(&numbers, ..)
+                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        }
+    }
+    Ok(())
+}
+
+fn put_text(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    variable: &str,
+    name: &str,
+    value: &str,
+) -> Result<(), OutputError> {
+    put_attr(var, plan, variable, name, value)
+}
+
+fn put_attr<T: Into<netcdf::AttributeValue>>(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    variable: &str,
+    name: &str,
+    value: T,
+) -> Result<(), OutputError> {
+    var.put_attribute(name, value)
+        .map(|_| ())
+        .map_err(plan.nc_error(format!(
+            "writing attribute '{name}' of variable '{variable}'"
+        )))
+}
+
+fn put_coordinates_attribute(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    variable: &str,
+) -> Result<(), OutputError> {
+    if plan.time_units.is_some() {
+        put_text(
+            var,
+            plan,
+            variable,
+            "coordinates",
+            "forecast_period forecast_reference_time",
+        )?;
+    }
+    Ok(())
+}
+
+/// Fill value, deflate and chunking of a float data variable; all before any data is written.
+fn prepare_float_variable(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    name: &str,
+    options: &OutputOptions,
+    ndims: usize,
+) -> Result<(), OutputError> {
+    var.set_fill_value(FLOAT_FILL_VALUE)
+        .map_err(plan.nc_error(format!("setting _FillValue of variable '{name}'")))?;
+    set_compression(var, plan, name, options, ndims)
+}
+
+/// Flag attributes, deflate and chunking of a below-ground flag variable.
+fn prepare_flag_variable(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    name: &str,
+    options: &OutputOptions,
+    ndims: usize,
+) -> Result<(), OutputError> {
+    put_attr(var, plan, name, "flag_values", vec![0_i8, 1_i8])?;
+    put_text(var, plan, name, "flag_meanings", BELOW_GROUND_FLAG_MEANINGS)?;
+    put_attr(var, plan, name, "valid_range", vec![0_i8, 1_i8])?;
+    set_compression(var, plan, name, options, ndims)
+}
+
+fn set_compression(
+    var: &mut netcdf::VariableMut<'_>,
+    plan: &Plan,
+    name: &str,
+    options: &OutputOptions,
+    ndims: usize,
+) -> Result<(), OutputError> {
+    if let Some(level) = options.deflate_level {
+        var.set_chunking(&plan.plane_chunks(ndims))
+            .map_err(plan.nc_error(format!("setting chunking of variable '{name}'")))?;
+        var.set_compression(level, true)
+            .map_err(plan.nc_error(format!("setting compression of variable '{name}'")))?;
+    }
+    Ok(())
+}
+
+/// The value written for one stored value: non-finite values become the fill value.
+#[inline]
+fn to_file_value(v: f32) -> f32 {
+    if v.is_finite() {
+        v
+    } else {
+        FLOAT_FILL_VALUE
+    }
+}
+
+/// The byte written for one below-ground flag: any non-zero value becomes 1.
+#[inline]
+fn to_file_flag(v: u8) -> i8 {
+    i8::from(v != 0)
+}
+
+/// Copies one latitude-longitude plane into `out` through `convert`.
+fn copy_plane<S: Copy, D>(src: ArrayView2<'_, S>, out: &mut [D], convert: impl Fn(S) -> D) {
+    match src.as_slice() {
+        Some(values) => {
+            for (o, &v) in out.iter_mut().zip(values) {
+                *o = convert(v);
+            }
+        }
+        None => {
+            for (o, &v) in out.iter_mut().zip(src.iter()) {
+                *o = convert(v);
+            }
+        }
+    }
+}
+
+/// Copies a 3-D field into `buf` in the file's order (levels reversed when `reverse`),
+/// converting each value: one parallel pass, one latitude-longitude plane per task.
+fn copy_5d<S, D>(
+    field: &Array5<S>,
+    reverse: bool,
+    buf: &mut Vec<D>,
+    convert: impl Fn(S) -> D + Sync,
+) where
+    S: Copy + Sync,
+    D: Copy + Default + Send,
+{
+    let (_, times, levels, rows, cols) = field.dim();
+    let plane = rows * cols;
+    buf.clear();
+    buf.resize(field.len(), D::default());
+    if plane == 0 {
+        return;
+    }
+    buf.par_chunks_mut(plane).enumerate().for_each(|(i, out)| {
+        let k_file = i % levels;
+        let t = (i / levels) % times;
+        let m = i / (levels * times);
+        let k = if reverse { levels - 1 - k_file } else { k_file };
+        copy_plane(field.slice(s![m, t, k, .., ..]), out, &convert);
+    });
+}
+
+/// Copies a 2-D field into `buf` in memory order, converting each value.
+fn copy_4d<S, D>(field: &Array4<S>, buf: &mut Vec<D>, convert: impl Fn(S) -> D + Sync)
+where
+    S: Copy + Sync,
+    D: Copy + Default + Send,
+{
+    let (_, times, rows, cols) = field.dim();
+    let plane = rows * cols;
+    buf.clear();
+    buf.resize(field.len(), D::default());
+    if plane == 0 {
+        return;
+    }
+    buf.par_chunks_mut(plane).enumerate().for_each(|(i, out)| {
+        copy_plane(field.slice(s![i / times, i % times, .., ..]), out, &convert);
+    });
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::ShapeBuilder;
+    use proptest::prelude::*;
+
+    #[test]
+    fn thickness_names_use_hpa_and_p_for_the_point() {
+        let layer = |b: f64, t: f64| Layer {
+            bottom_pa: b,
+            top_pa: t,
+        };
+        assert_eq!(
+            thickness_variable_name(&layer(100_000.0, 50_000.0)),
+            "thickness_1000_500"
+        );
+        assert_eq!(
+            thickness_variable_name(&layer(100_000.0, 51_250.0)),
+            "thickness_1000_512p5"
+        );
+        assert_eq!(
+            thickness_variable_name(&layer(85_000.0, 70_000.0)),
+            "thickness_850_700"
+        );
+    }
+
+    #[test]
+    fn rfc3339_reference_times_become_udunits_times() {
+        assert_eq!(
+            udunits_time_from_rfc3339("2030-01-15T06:00:00Z").as_deref(),
+            Some("2030-01-15 06:00:00")
+        );
+        assert_eq!(
+            udunits_time_from_rfc3339("2030-01-15 06:00:00+00:00").as_deref(),
+            Some("2030-01-15 06:00:00")
+        );
+        assert_eq!(
+            udunits_time_from_rfc3339("2030-01-15T06:30:00.5-03:00").as_deref(),
+            Some("2030-01-15 06:30:00.5 -03:00")
+        );
+        for bad in [
+            "",
+            "2030-01-15",
+            "2030-13-15T00:00:00Z",
+            "2030-01-15T25:00:00Z",
+            "2030-01-15T00:00:00",
+            "yesterday at noon",
+            "2030-01-15T00:00:00+0100",
+            "2030-01-15T00:00:-1Z",
+            "2030-01-15T+1:00:00Z",
+            "2030-01-15T00:00:1e1Z",
+            "2030-01-15T00:00:infZ",
+            "2030-01-15T00:00:00.Z",
+            "2030-01-15T00:00:00é00:00",
+        ] {
+            assert_eq!(udunits_time_from_rfc3339(bad), None, "{bad}");
+        }
+    }
+
+    #[test]
+    fn flags_become_bytes_and_reverse_only_the_level_axis() {
+        // One member, two times, three levels of one row of two values.
+        let flags: Vec<u8> = vec![0, 1, 1, 1, 0, 0, 1, 0, 0, 0, 1, 7];
+        let field = Array5::from_shape_vec((1, 2, 3, 1, 2), flags).unwrap();
+        let mut buf = Vec::new();
+        copy_5d(&field, true, &mut buf, to_file_flag);
+        assert_eq!(buf, vec![0, 0, 1, 1, 0, 1, 1, 1, 0, 0, 1, 0]);
+        copy_5d(&field, false, &mut buf, to_file_flag);
+        assert_eq!(buf, vec![0, 1, 1, 1, 0, 0, 1, 0, 0, 0, 1, 1]);
+    }
+
+    #[test]
+    fn non_standard_layouts_are_copied_in_logical_order() {
+        let field = Array5::from_shape_fn((1, 1, 2, 2, 3), |(_, _, k, r, c)| {
+            (100 * k + 10 * r + c) as f32
+        });
+        // A transposed view: the last two axes swapped, then made owned in Fortran order.
+        let swapped = field.view().permuted_axes([0, 1, 2, 4, 3]);
+        let fortran = {
+            let mut a = Array5::<f32>::zeros(swapped.raw_dim().f());
+            a.assign(&swapped);
+            a
+        };
+        let mut buf = Vec::new();
+        copy_5d(&fortran, false, &mut buf, to_file_value);
+        let expected: Vec<f32> = swapped.iter().copied().collect();
+        assert_eq!(buf, expected);
+    }
+
+    proptest! {
+        #[test]
+        fn float_copy_reverses_levels_and_only_replaces_non_finite_values(
+            values in proptest::collection::vec(
+                prop_oneof![Just(f32::NAN), Just(f32::INFINITY), -1.0e4_f32..1.0e5_f32],
+                2 * 2 * 3 * 2 * 3,
+            ),
+            reverse in any::<bool>(),
+        ) {
+            let field = Array5::from_shape_vec((2, 2, 3, 2, 3), values).unwrap();
+            let mut buf = Vec::new();
+            copy_5d(&field, reverse, &mut buf, to_file_value);
+            let file = Array5::from_shape_vec((2, 2, 3, 2, 3), buf).unwrap();
+            for ((m, t, k, r, c), &v) in field.indexed_iter() {
+                let k_file = if reverse { 2 - k } else { k };
+                let w = file[[m, t, k_file, r, c]];
+                if v.is_finite() {
+                    prop_assert_eq!(w, v);
+                } else {
+                    prop_assert_eq!(w, FLOAT_FILL_VALUE);
+                }
+            }
+        }
+
+        #[test]
+        fn flag_copy_matches_the_float_copy_order(
+            flags in proptest::collection::vec(0_u8..2, 3 * 4 * 2 * 2),
+            reverse in any::<bool>(),
+        ) {
+            let field = Array5::from_shape_vec((1, 3, 4, 2, 2), flags).unwrap();
+            let as_float = field.mapv(f32::from);
+            let mut floats = Vec::new();
+            copy_5d(&as_float, reverse, &mut floats, to_file_value);
+            let mut bytes = Vec::new();
+            copy_5d(&field, reverse, &mut bytes, to_file_flag);
+            let back: Vec<f32> = bytes.iter().map(|&b| f32::from(b)).collect();
+            prop_assert_eq!(back, floats);
+        }
+    }
+}
