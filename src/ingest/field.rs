@@ -1,0 +1,599 @@
+//! Reading one NetCDF variable into an `f32` buffer in SI units: raw values, masking of
+//! `_FillValue` / `missing_value` / `valid_range`, unpacking (`scale_factor`, `add_offset`),
+//! unit conversion, a plausibility scan, then the canonical axis order.
+//!
+//! # Memory
+//! A float variable (or an integer one of 16 bits or fewer) is read in one call straight into
+//! the buffer that becomes the final array; masking, unpacking and conversion happen in place,
+//! and so does the reversal of a top-down level axis. Wider types (double, 32- and 64-bit
+//! integers) are read as `f64` a slab at a time, so the transient copy is one slab. Only a file
+//! whose dimensions are not in member, time, level, latitude, longitude order costs one
+//! transient copy of the field (the permutation).
+
+use netcdf::types::{FloatType, IntType, NcVariableType};
+use netcdf::{AttributeValue, Extent, Variable};
+
+use super::units::Linear;
+use super::IngestError;
+
+/// Position of each canonical axis (member, time, level, latitude, longitude) among the
+/// variable's dimensions, `None` where the variable lacks that axis.
+pub(crate) type AxisPositions = [Option<usize>; 5];
+
+/// A plausibility range applied after conversion to SI units.
+#[derive(Clone, Copy, Debug)]
+pub(crate) struct Plausible {
+    /// Lowest plausible value.
+    pub(crate) lo: f64,
+    /// Highest plausible value.
+    pub(crate) hi: f64,
+    /// Values in `[lo - clamp, lo)` are set to `lo` (packing noise below zero humidity).
+    pub(crate) clamp_below: f64,
+    /// Units of `lo`/`hi` for the message.
+    pub(crate) units: &'static str,
+    /// What to say when the range is broken.
+    pub(crate) hint: &'static str,
+}
+
+/// [`Plausible`] in `f32`, for the decoding loop.
+#[derive(Clone, Copy, Debug)]
+pub(crate) struct Limits {
+    lo: f32,
+    hi: f32,
+    floor: f32,
+}
+
+impl Limits {
+    fn of(p: &Plausible) -> Limits {
+        Limits {
+            lo: p.lo as f32,
+            hi: p.hi as f32,
+            floor: (p.lo - p.clamp_below) as f32,
+        }
+    }
+
+    /// Clamp a value a little below `lo` up to `lo`; false when the value is implausible.
+    /// `NaN` (missing) passes.
+    #[inline]
+    fn admit(self, v: &mut f32) -> bool {
+        if *v < self.lo {
+            if *v >= self.floor {
+                *v = self.lo;
+                return true;
+            }
+            return false;
+        }
+        v.is_nan() || *v <= self.hi
+    }
+}
+
+/// What to read and how to convert it.
+pub(crate) struct FieldRequest<'a, 'v> {
+    /// The file, for error messages.
+    pub(crate) file: &'a str,
+    /// The variable.
+    pub(crate) var: &'a Variable<'v>,
+    /// Where each canonical axis sits among the variable's dimensions.
+    pub(crate) axes: AxisPositions,
+    /// Reverse the level axis (top-down in the file).
+    pub(crate) reverse_levels: bool,
+    /// Conversion from the unpacked file units to SI.
+    pub(crate) to_si: Linear,
+    /// Plausibility range, if any.
+    pub(crate) check: Option<Plausible>,
+}
+
+/// A field in canonical order `[member, time, level, lat, lon]` (absent axes have length 1).
+pub(crate) struct Canonical {
+    pub(crate) shape: [usize; 5],
+    pub(crate) data: Vec<f32>,
+}
+
+/// Numeric attribute values as `f64`, `None` for a missing or non-numeric attribute.
+pub(crate) fn attr_numbers(var: &Variable<'_>, name: &str) -> Option<Vec<f64>> {
+    let value = var.attribute_value(name)?.ok()?;
+    numbers_of(value)
+}
+
+fn numbers_of(value: AttributeValue) -> Option<Vec<f64>> {
+    use AttributeValue as A;
+    Some(match value {
+        A::Uchar(x) => vec![f64::from(x)],
+        A::Uchars(x) => x.into_iter().map(f64::from).collect(),
+        A::Schar(x) => vec![f64::from(x)],
+        A::Schars(x) => x.into_iter().map(f64::from).collect(),
+        A::Ushort(x) => vec![f64::from(x)],
+        A::Ushorts(x) => x.into_iter().map(f64::from).collect(),
+        A::Short(x) => vec![f64::from(x)],
+        A::Shorts(x) => x.into_iter().map(f64::from).collect(),
+        A::Uint(x) => vec![f64::from(x)],
+        A::Uints(x) => x.into_iter().map(f64::from).collect(),
+        A::Int(x) => vec![f64::from(x)],
+        A::Ints(x) => x.into_iter().map(f64::from).collect(),
+        A::Ulonglong(x) => vec![x as f64],
+        A::Ulonglongs(x) => x.into_iter().map(|v| v as f64).collect(),
+        A::Longlong(x) => vec![x as f64],
+        A::Longlongs(x) => x.into_iter().map(|v| v as f64).collect(),
+        A::Float(x) => vec![f64::from(x)],
+        A::Floats(x) => x.into_iter().map(f64::from).collect(),
+        A::Double(x) => vec![x],
+        A::Doubles(x) => x,
+        A::Str(_) | A::Strs(_) => return None,
+    })
+}
+
+/// Whether an attribute is stored as a floating-point type.
+fn attr_is_float(var: &Variable<'_>, name: &str) -> bool {
+    matches!(
+        var.attribute_value(name).and_then(Result::ok),
+        Some(
+            AttributeValue::Float(_)
+                | AttributeValue::Floats(_)
+                | AttributeValue::Double(_)
+                | AttributeValue::Doubles(_)
+        )
+    )
+}
+
+/// A text attribute (a list of strings is joined with blanks).
+pub(crate) fn attr_text(var: &Variable<'_>, name: &str) -> Option<String> {
+    match var.attribute_value(name)?.ok()? {
+        AttributeValue::Str(s) => Some(s),
+        AttributeValue::Strs(v) => Some(v.join(" ")),
+        _ => None,
+    }
+}
+
+/// How the raw values of a variable are stored.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(crate) enum Storage {
+    /// Read directly as `f32` without loss (f32, and integers of 16 bits or fewer).
+    Narrow { is_f32: bool, is_integer: bool },
+    /// Read as `f64` a slab at a time (f64, 32- and 64-bit integers).
+    Wide { is_integer: bool },
+}
+
+pub(crate) fn storage_of(
+    file: &str,
+    var: &Variable<'_>,
+) -> Result<(Storage, Option<f64>), IngestError> {
+    // The netCDF default fill value of each type applies when `_FillValue` is absent
+    // (NetCDF User Guide, "Attribute Conventions"; values from netcdf.h). Byte types have no
+    // default fill by that convention.
+    let t = var.vartype();
+    Ok(match t {
+        NcVariableType::Float(FloatType::F32) => (
+            Storage::Narrow {
+                is_f32: true,
+                is_integer: false,
+            },
+            Some(f64::from(9.969_21e36_f32)),
+        ),
+        NcVariableType::Float(FloatType::F64) => (
+            Storage::Wide { is_integer: false },
+            Some(9.969_209_968_386_869e36),
+        ),
+        NcVariableType::Int(i) => {
+            let (narrow, fill) = match i {
+                IntType::I8 | IntType::U8 => (true, None),
+                IntType::I16 => (true, Some(-32767.0)),
+                IntType::U16 => (true, Some(65535.0)),
+                IntType::I32 => (false, Some(-2_147_483_647.0)),
+                IntType::U32 => (false, Some(4_294_967_295.0)),
+                IntType::I64 => (false, Some(-9_223_372_036_854_775_806.0)),
+                IntType::U64 => (false, Some(18_446_744_073_709_551_614.0)),
+            };
+            if narrow {
+                (
+                    Storage::Narrow {
+                        is_f32: false,
+                        is_integer: true,
+                    },
+                    fill,
+                )
+            } else {
+                (Storage::Wide { is_integer: true }, fill)
+            }
+        }
+        _ => {
+            return Err(IngestError::Layout {
+                file: file.to_string(),
+                variable: var.name(),
+                detail: "has a non-numeric type: expected a float or integer variable".into(),
+            })
+        }
+    })
+}
+
+/// Masking and unpacking rules of one variable, all in raw (packed) units.
+#[derive(Clone, Debug)]
+pub(crate) struct Decoder {
+    fills: Vec<f64>,
+    raw_min: Option<f64>,
+    raw_max: Option<f64>,
+    compare_as_f32: bool,
+    linear: Linear,
+}
+
+impl Decoder {
+    /// Build from the variable's attributes.
+    ///
+    /// # Method
+    /// CF conventions §2.5.1 and §8.1: values equal to `_FillValue` or `missing_value`, or
+    /// outside `valid_range` / `valid_min` / `valid_max`, are missing; the rest are unpacked
+    /// as `raw * scale_factor + add_offset`. The valid limits are compared with the raw values
+    /// when they have the variable's own (packed) type; when a packed integer variable gives
+    /// them as floats they are taken as unpacked values (NetCDF User Guide convention) and
+    /// packed before comparing.
+    pub(crate) fn new(
+        file: &str,
+        var: &Variable<'_>,
+        storage: Storage,
+        default_fill: Option<f64>,
+        to_si: Linear,
+    ) -> Result<Decoder, IngestError> {
+        let single = |name: &str| -> Result<Option<f64>, IngestError> {
+            match attr_numbers(var, name) {
+                None => Ok(None),
+                Some(v) => match v.as_slice() {
+                    [x] if x.is_finite() => Ok(Some(*x)),
+                    _ => Err(IngestError::Attribute {
+                        file: file.to_string(),
+                        variable: var.name(),
+                        attribute: name.to_string(),
+                        detail: "expected one finite number".into(),
+                    }),
+                },
+            }
+        };
+        let scale = single("scale_factor")?.unwrap_or(1.0);
+        let offset = single("add_offset")?.unwrap_or(0.0);
+        if scale == 0.0 {
+            return Err(IngestError::Attribute {
+                file: file.to_string(),
+                variable: var.name(),
+                attribute: "scale_factor".into(),
+                detail: "is zero".into(),
+            });
+        }
+        let mut fills = Vec::new();
+        match attr_numbers(var, "_FillValue") {
+            Some(v) => fills.extend(v),
+            None => fills.extend(default_fill),
+        }
+        if let Some(v) = attr_numbers(var, "missing_value") {
+            fills.extend(v);
+        }
+        let is_integer = match storage {
+            Storage::Narrow { is_integer, .. } | Storage::Wide { is_integer } => is_integer,
+        };
+        let to_raw = |x: f64, name: &str| -> f64 {
+            if is_integer && attr_is_float(var, name) && (scale != 1.0 || offset != 0.0) {
+                (x - offset) / scale
+            } else {
+                x
+            }
+        };
+        let (mut raw_min, mut raw_max) = (None, None);
+        if let Some(r) = attr_numbers(var, "valid_range") {
+            match r.as_slice() {
+                [lo, hi] if lo <= hi => {
+                    let (a, b) = (to_raw(*lo, "valid_range"), to_raw(*hi, "valid_range"));
+                    raw_min = Some(a.min(b));
+                    raw_max = Some(a.max(b));
+                }
+                _ => {
+                    return Err(IngestError::Attribute {
+                        file: file.to_string(),
+                        variable: var.name(),
+                        attribute: "valid_range".into(),
+                        detail: "expected two numbers, low then high".into(),
+                    })
+                }
+            }
+        }
+        if let Some(lo) = single("valid_min")? {
+            raw_min = Some(to_raw(lo, "valid_min"));
+        }
+        if let Some(hi) = single("valid_max")? {
+            raw_max = Some(to_raw(hi, "valid_max"));
+        }
+        let compare_as_f32 = matches!(storage, Storage::Narrow { is_f32: true, .. });
+        Ok(Decoder {
+            fills,
+            raw_min,
+            raw_max,
+            compare_as_f32,
+            linear: Linear { scale, offset }.then(to_si),
+        })
+    }
+
+    /// Decode raw values read as `f32` (f32 variables and integers of 16 bits or fewer, all
+    /// exact in `f32`) in place: one tight pass, no allocation.
+    /// With `limits`, also checks plausibility in the same pass and returns the first
+    /// implausible index (decoding stops there).
+    pub(crate) fn decode_narrow_in_place(
+        &self,
+        data: &mut [f32],
+        limits: Option<Limits>,
+    ) -> Option<usize> {
+        let fills: Vec<f32> = self.fills.iter().map(|&f| f as f32).collect();
+        let has_range = self.raw_min.is_some() || self.raw_max.is_some();
+        let (min, max) = (
+            self.raw_min.unwrap_or(f64::NEG_INFINITY),
+            self.raw_max.unwrap_or(f64::INFINITY),
+        );
+        let identity = self.linear == Linear::IDENTITY;
+        let (scale, offset) = (self.linear.scale, self.linear.offset);
+        for (i, v) in data.iter_mut().enumerate() {
+            let r = *v;
+            let missing = !r.is_finite()
+                || fills.contains(&r)
+                || (has_range && (f64::from(r) < min || f64::from(r) > max));
+            *v = if missing {
+                f32::NAN
+            } else if identity {
+                r
+            } else {
+                (f64::from(r) * scale + offset) as f32
+            };
+            if let Some(l) = limits {
+                if !l.admit(v) {
+                    return Some(i);
+                }
+            }
+        }
+        None
+    }
+
+    /// One raw value to SI, `NaN` when missing.
+    #[inline]
+    pub(crate) fn decode(&self, raw: f64) -> f32 {
+        if !raw.is_finite() {
+            return f32::NAN;
+        }
+        if self.compare_as_f32 {
+            let r = raw as f32;
+            if self.fills.iter().any(|&f| r == f as f32) {
+                return f32::NAN;
+            }
+        } else if self.fills.contains(&raw) {
+            return f32::NAN;
+        }
+        if self.raw_min.is_some_and(|m| raw < m) || self.raw_max.is_some_and(|m| raw > m) {
+            return f32::NAN;
+        }
+        self.linear.apply(raw) as f32
+    }
+}
+
+fn read_error(file: &str, var: &Variable<'_>, e: netcdf::Error) -> IngestError {
+    IngestError::Read {
+        file: file.to_string(),
+        variable: var.name(),
+        detail: e.to_string().to_lowercase(),
+    }
+}
+
+/// Read and decode a whole variable in file order.
+/// A variable read and decoded in file order.
+struct Decoded {
+    /// The variable's shape in the file.
+    shape: Vec<usize>,
+    /// SI values, file order.
+    data: Vec<f32>,
+    /// The first implausible flat index, if any (decoding stopped there).
+    bad: Option<usize>,
+}
+
+/// Read and decode.
+fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
+    let var = req.var;
+    let shape: Vec<usize> = var.dimensions().iter().map(|d| d.len()).collect();
+    let total = shape
+        .iter()
+        .try_fold(1usize, |acc, &n| acc.checked_mul(n))
+        .ok_or_else(|| IngestError::Layout {
+            file: req.file.to_string(),
+            variable: var.name(),
+            detail: "is too large to address".into(),
+        })?;
+    let (storage, default_fill) = storage_of(req.file, var)?;
+    let decoder = Decoder::new(req.file, var, storage, default_fill, req.to_si)?;
+    let mut data = vec![0f32; total];
+    let limits = req.check.as_ref().map(Limits::of);
+    let mut bad: Option<usize> = None;
+    match storage {
+        Storage::Narrow { .. } => {
+            var.get_values_into::<f32, _>(&mut data, ..)
+                .map_err(|e| read_error(req.file, var, e))?;
+            bad = decoder.decode_narrow_in_place(&mut data, limits);
+        }
+        Storage::Wide { .. } => {
+            // Leading dimensions are iterated one index at a time until the slab is at most
+            // a quarter of the field (or only the last two dimensions are left).
+            let mut lead = 0usize;
+            let mut slabs = 1usize;
+            while lead + 2 < shape.len() && slabs < 4 {
+                slabs *= shape.get(lead).copied().unwrap_or(1);
+                lead += 1;
+            }
+            let slab_len: usize = shape.iter().skip(lead).product();
+            let mut slab = vec![0f64; slab_len];
+            let lead_shape: Vec<usize> = shape.iter().take(lead).copied().collect();
+            for (s, chunk) in data.chunks_mut(slab_len.max(1)).enumerate() {
+                let mut rem = s;
+                let mut idx = vec![0usize; lead];
+                for (k, n) in lead_shape.iter().enumerate().rev() {
+                    if let Some(slot) = idx.get_mut(k) {
+                        *slot = rem % n.max(&1);
+                    }
+                    rem /= n.max(&1);
+                }
+                let mut extents: Vec<Extent> =
+                    idx.iter().map(|&i| Extent::from(i..i + 1)).collect();
+                extents.extend(std::iter::repeat_n(Extent::from(..), shape.len() - lead));
+                var.get_values_into::<f64, _>(&mut slab, extents)
+                    .map_err(|e| read_error(req.file, var, e))?;
+                for (j, (out, raw)) in chunk.iter_mut().zip(slab.iter()).enumerate() {
+                    *out = decoder.decode(*raw);
+                    if let Some(l) = limits {
+                        if !l.admit(out) {
+                            bad = Some(s * slab_len + j);
+                            break;
+                        }
+                    }
+                }
+                if bad.is_some() {
+                    break;
+                }
+            }
+        }
+    }
+    Ok(Decoded { shape, data, bad })
+}
+
+/// The error for the implausible value at flat index `i` (file order).
+fn implausible(req: &FieldRequest<'_, '_>, shape: &[usize], data: &[f32], i: usize) -> IngestError {
+    let names: Vec<String> = req.var.dimensions().iter().map(|d| d.name()).collect();
+    let mut rem = i;
+    let mut idx = vec![0usize; shape.len()];
+    for (k, n) in shape.iter().enumerate().rev() {
+        if let Some(slot) = idx.get_mut(k) {
+            *slot = rem % (*n).max(1);
+        }
+        rem /= (*n).max(1);
+    }
+    let index = names
+        .iter()
+        .zip(idx.iter())
+        .map(|(n, i)| format!("{n}={i}"))
+        .collect::<Vec<_>>()
+        .join(", ");
+    let (lo, hi, units, hint) = match &req.check {
+        Some(c) => (c.lo, c.hi, c.units, c.hint),
+        None => (f64::NAN, f64::NAN, "", ""),
+    };
+    IngestError::Implausible {
+        file: req.file.to_string(),
+        variable: req.var.name(),
+        found: Box::new(super::Implausibility {
+            value: data.get(i).map(|&v| f64::from(v)).unwrap_or(f64::NAN),
+            units,
+            index: format!("[{index}]"),
+            range: format!("{lo}-{hi} {units}"),
+            hint,
+        }),
+    }
+}
+
+/// Reverse axis of length `n` between `outer` leading and `inner` trailing elements, in
+/// place.
+pub(crate) fn reverse_axis_in_place<T>(data: &mut [T], outer: usize, n: usize, inner: usize) {
+    if n < 2 || inner == 0 {
+        return;
+    }
+    for o in 0..outer {
+        let Some(block) = data.get_mut(o * n * inner..(o + 1) * n * inner) else {
+            return;
+        };
+        for k in 0..n / 2 {
+            let (head, tail) = block.split_at_mut((n - 1 - k) * inner);
+            if let (Some(a), Some(b)) = (
+                head.get_mut(k * inner..(k + 1) * inner),
+                tail.get_mut(..inner),
+            ) {
+                a.swap_with_slice(b);
+            }
+        }
+    }
+}
+
+/// Read a variable into canonical order, SI units, bottom-up.
+pub(crate) fn read_canonical(req: &FieldRequest<'_, '_>) -> Result<Canonical, IngestError> {
+    let Decoded {
+        shape: file_shape,
+        mut data,
+        bad,
+    } = read_decoded(req)?;
+    if let Some(i) = bad {
+        return Err(implausible(req, &file_shape, &data, i));
+    }
+    let mut shape = [1usize; 5];
+    for (c, pos) in req.axes.iter().enumerate() {
+        if let (Some(p), Some(slot)) = (pos, shape.get_mut(c)) {
+            *slot = file_shape.get(*p).copied().unwrap_or(1);
+        }
+    }
+    // The axes present, in file order; other dimensions have length 1 and drop out.
+    let present: Vec<(usize, usize)> = {
+        let mut v: Vec<(usize, usize)> = req
+            .axes
+            .iter()
+            .enumerate()
+            .filter_map(|(c, p)| p.map(|p| (p, c)))
+            .collect();
+        v.sort_unstable();
+        v
+    };
+    let in_order = present.windows(2).all(|w| match w {
+        [(_, a), (_, b)] => a < b,
+        _ => true,
+    });
+    if !in_order {
+        let file_dims: Vec<usize> = present
+            .iter()
+            .map(|&(_, c)| shape.get(c).copied().unwrap_or(1))
+            .collect();
+        let arr =
+            ndarray::ArrayViewD::from_shape(ndarray::IxDyn(&file_dims), &data).map_err(|e| {
+                IngestError::Layout {
+                    file: req.file.to_string(),
+                    variable: req.var.name(),
+                    detail: format!("cannot arrange its dimensions: {e}"),
+                }
+            })?;
+        // Axis order that lists the present canonical axes in canonical order.
+        let mut perm: Vec<usize> = (0..present.len()).collect();
+        perm.sort_by_key(|&i| present.get(i).map(|&(_, c)| c).unwrap_or(usize::MAX));
+        let permuted = arr.permuted_axes(ndarray::IxDyn(&perm));
+        data = permuted.iter().copied().collect();
+    }
+    if req.reverse_levels {
+        let [m, t, z, y, x] = shape;
+        reverse_axis_in_place(&mut data, m * t, z, y * x);
+    }
+    Ok(Canonical { shape, data })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn reverse_axis_reverses_only_that_axis() {
+        // outer 2, axis 3, inner 2
+        let mut v: Vec<i32> = (0..12).collect();
+        reverse_axis_in_place(&mut v, 2, 3, 2);
+        assert_eq!(v, vec![4, 5, 2, 3, 0, 1, 10, 11, 8, 9, 6, 7]);
+        let mut w: Vec<i32> = (0..8).collect();
+        reverse_axis_in_place(&mut w, 1, 4, 2);
+        assert_eq!(w, vec![6, 7, 4, 5, 2, 3, 0, 1]);
+        let mut one = vec![1, 2];
+        reverse_axis_in_place(&mut one, 2, 1, 1);
+        assert_eq!(one, vec![1, 2]);
+    }
+
+    #[test]
+    fn attribute_numbers_convert_every_numeric_type() {
+        assert_eq!(
+            numbers_of(AttributeValue::Short(-32767)),
+            Some(vec![-32767.0])
+        );
+        assert_eq!(
+            numbers_of(AttributeValue::Floats(vec![0.5, 1.5])),
+            Some(vec![0.5, 1.5])
+        );
+        assert_eq!(numbers_of(AttributeValue::Str("1".into())), None);
+    }
+}

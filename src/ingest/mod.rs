@@ -1,0 +1,382 @@
+//! NetCDF ingest: one file (NetCDF-3 classic or NetCDF-4, CF conventions) to one
+//! [`Cycle`] in SI units, bottom-up, `[member, time, level, lat, lon]`.
+//!
+//! The only module that opens data files. Variables are found by CF `standard_name` first,
+//! then through the [`NameMap`] (built-in: `config/names.toml`); every decision is written to
+//! [`Cycle::notes`]. Nothing a file contains can make this module panic: every shape, index
+//! and attribute is checked and refused with an [`IngestError`] that names the file and the
+//! variable.
+
+/// The data extent of a NetCDF-3 header, to refuse truncated files.
+/// HDF5 error printing, kept off on every reading thread.
+mod hdf5;
+pub mod classic;
+/// Reading one variable: masking, unpacking, conversion, axis order.
+mod field;
+/// The name map and the dataset config file.
+pub mod names;
+/// Finding variables and reading them into a cycle.
+mod reader;
+/// CF time units and RFC 3339 formatting.
+pub mod time;
+/// Units strings to linear conversions.
+pub mod units;
+/// Vertical axes: formula terms, level order, half levels, matching by pressure.
+pub mod vertical;
+
+use std::io::Read;
+use std::path::Path;
+
+pub use names::{load_config, NameMap, Role};
+
+use crate::model::Cycle;
+
+/// Settings for reading one cycle.
+#[derive(Clone, Debug, Default)]
+pub struct IngestConfig {
+    /// Name map for files that lack CF standard names (built-in default: config/names.toml).
+    pub names: NameMap,
+    /// Phase convention of relative humidity in the file (WMO default: water).
+    pub rh_phase: crate::physics::humidity::RelativeHumidityPhase,
+    /// Constants to compute with: the dataset's own (from the config file's [constants]) or the default.
+    pub constants: crate::physics::Constants,
+}
+
+/// Why a file could not be read. Each message is one lowercase line that names the file and,
+/// where it applies, the variable and the first offending index, with a hint where one exists.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum IngestError {
+    /// The file (or a config file) could not be read from disk.
+    #[error("cannot read '{file}': {source}")]
+    Io {
+        /// The file.
+        file: String,
+        /// The operating system's error.
+        #[source]
+        source: std::io::Error,
+    },
+    /// The file does not start with a NetCDF-3 or HDF5 signature.
+    #[error("'{file}' is not a netcdf file: {detail}")]
+    NotNetcdf {
+        /// The file.
+        file: String,
+        /// What was found instead.
+        detail: String,
+    },
+    /// The NetCDF library refused to open the file.
+    #[error("cannot open '{file}' as netcdf ({detail}): the file may be truncated or damaged")]
+    Damaged {
+        /// The file.
+        file: String,
+        /// The library's message.
+        detail: String,
+    },
+    /// Reading a variable's values failed.
+    #[error("cannot read variable '{variable}' in '{file}' ({detail}): the file may be truncated or damaged")]
+    Read {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// The library's message.
+        detail: String,
+    },
+    /// No air temperature anywhere in the file.
+    #[error("no air temperature in '{file}': looked for {looked_for}")]
+    NoTemperature {
+        /// The file.
+        file: String,
+        /// What was looked for.
+        looked_for: String,
+    },
+    /// A temperature was found, but not on a vertical axis this reader understands.
+    #[error("variable '{variable}' in '{file}' has no vertical axis this reader understands: looked for {looked_for}")]
+    NoVerticalAxis {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// What was looked for.
+        looked_for: String,
+    },
+    /// Units that ingest does not know for this quantity.
+    #[error("variable '{variable}' in '{file}' has units '{units}': expected {expected}")]
+    Units {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// The units as written.
+        units: String,
+        /// The accepted units.
+        expected: String,
+    },
+    /// A coordinate that must be strictly monotonic is not.
+    #[error("variable '{variable}' in '{file}' is not strictly monotonic at index {index} ({detail}): levels must strictly increase or decrease")]
+    NonMonotonic {
+        /// The file.
+        file: String,
+        /// The coordinate variable.
+        variable: String,
+        /// First index that breaks the order.
+        index: usize,
+        /// The values around it.
+        detail: String,
+    },
+    /// A value outside the plausible range after conversion to SI units.
+    #[error("variable '{variable}' in '{file}' has {found}")]
+    Implausible {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// The value, where it is, and what probably went wrong.
+        found: Box<Implausibility>,
+    },
+    /// Dimensions or shapes that do not fit together.
+    #[error("variable '{variable}' in '{file}' {detail}")]
+    Layout {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// What does not fit (a phrase that follows the variable's name).
+        detail: String,
+    },
+    /// An attribute that cannot be used.
+    #[error("attribute '{attribute}' of variable '{variable}' in '{file}' {detail}")]
+    Attribute {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+        /// The attribute.
+        attribute: String,
+        /// What is wrong (a phrase that follows the attribute's name).
+        detail: String,
+    },
+    /// A hybrid coordinate without half-level coefficients.
+    #[error("variable '{variable}' in '{file}' is a hybrid sigma-pressure coordinate without half-level coefficients: {hint}")]
+    MissingHalfLevels {
+        /// The file.
+        file: String,
+        /// The coordinate variable.
+        variable: String,
+        /// How to supply them.
+        hint: String,
+    },
+    /// A variable that another one refers to, or that the vertical coordinate needs, is absent.
+    #[error("variable '{variable}' needed by {needed_by} is missing from '{file}'")]
+    MissingVariable {
+        /// The file.
+        file: String,
+        /// The missing variable (or role).
+        variable: String,
+        /// Who needs it.
+        needed_by: String,
+    },
+    /// A quantity that another part of the file needs is absent.
+    #[error("no {what} in '{file}': needed by {needed_by}")]
+    MissingField {
+        /// The file.
+        file: String,
+        /// What is missing, in CF terms.
+        what: String,
+        /// Who needs it.
+        needed_by: String,
+    },
+    /// A config file that cannot be used.
+    #[error("config '{file}': {detail}")]
+    Config {
+        /// The config file.
+        file: String,
+        /// What is wrong.
+        detail: String,
+    },
+}
+
+/// An implausible value found by the plausibility scan (boxed in [`IngestError`] to keep the
+/// error small).
+#[derive(Debug, Clone, PartialEq)]
+pub struct Implausibility {
+    /// The offending value, SI units.
+    pub value: f64,
+    /// Its units.
+    pub units: &'static str,
+    /// The first offending index, in the file's own dimension order, `[dim=i, ...]`.
+    pub index: String,
+    /// The plausible range.
+    pub range: String,
+    /// What probably went wrong.
+    pub hint: &'static str,
+}
+
+impl std::fmt::Display for Implausibility {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "value {} {} at {}, outside the plausible range {}: {}",
+            // f32 is the precision the value was stored in; its shortest form reads best.
+            self.value as f32,
+            self.units,
+            self.index,
+            self.range,
+            self.hint
+        )
+    }
+}
+
+/// Read one cycle from a NetCDF file.
+///
+/// Fills [`Cycle`] as documented in [`crate::model`]: SI units, `f32`, `NaN` for missing,
+/// bottom-up levels, `[member, time, level, lat, lon]`, humidity aligned onto the temperature
+/// levels by pressure value, surface fields broadcast to every member and time step.
+pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestError> {
+    hdf5::quiet_on_this_thread();
+    let label = path.display().to_string();
+    if check_signature(path, &label)? {
+        check_classic_length(path, &label)?;
+    }
+    let file = netcdf::open(path).map_err(|e| IngestError::Damaged {
+        file: label.clone(),
+        detail: e.to_string().to_lowercase(),
+    })?;
+    reader::Reader::new(&file, label, config).read(path)
+}
+
+/// The NetCDF library opens a truncated NetCDF-3 file and reads zeros where bytes are
+/// missing; compare the length the header describes with the file's.
+fn check_classic_length(path: &Path, label: &str) -> Result<(), IngestError> {
+    let io = |source| IngestError::Io {
+        file: label.to_string(),
+        source,
+    };
+    let len = std::fs::metadata(path).map_err(io)?.len();
+    let mut f = std::fs::File::open(path).map_err(io)?;
+    let mut buf: Vec<u8> = Vec::new();
+    let mut want: u64 = 64 * 1024;
+    loop {
+        let target = want.min(len);
+        let have = buf.len() as u64;
+        if target > have {
+            (&mut f)
+                .take(target - have)
+                .read_to_end(&mut buf)
+                .map_err(io)?;
+        }
+        match classic::data_extent(&buf) {
+            Ok(classic::Extent::EndsAt(end, last)) if end > len => {
+                let whose = last
+                    .map(|v| format!("the data of variable '{v}' end at byte {end}"))
+                    .unwrap_or_else(|| format!("its header describes {end} bytes"));
+                return Err(IngestError::Damaged {
+                    file: label.to_string(),
+                    detail: format!("{whose} but the file has {len} bytes"),
+                });
+            }
+            Ok(classic::Extent::EndsAt(..)) | Ok(classic::Extent::Unknown) => return Ok(()),
+            Ok(classic::Extent::NeedMore) if (buf.len() as u64) < len => {
+                want = want.saturating_mul(4)
+            }
+            Ok(classic::Extent::NeedMore) => {
+                return Err(IngestError::Damaged {
+                    file: label.to_string(),
+                    detail: "the header ends before its declared contents".into(),
+                })
+            }
+            Err(detail) => {
+                return Err(IngestError::Damaged {
+                    file: label.to_string(),
+                    detail: format!("malformed netcdf-3 header: {detail}"),
+                })
+            }
+        }
+    }
+}
+
+/// NetCDF-3 files start with `CDF` and a version byte (1, 2 or 5); NetCDF-4 files are HDF5,
+/// whose signature sits at byte 0, 512, 1024, ... (HDF5 File Format Specification, §2.2).
+/// Returns true for NetCDF-3.
+fn check_signature(path: &Path, label: &str) -> Result<bool, IngestError> {
+    let io = |source| IngestError::Io {
+        file: label.to_string(),
+        source,
+    };
+    let mut f = std::fs::File::open(path).map_err(io)?;
+    let mut head = [0u8; 8];
+    let mut got = 0;
+    while got < head.len() {
+        let n = f.read(&mut head[got..]).map_err(io)?;
+        if n == 0 {
+            break;
+        }
+        got += n;
+    }
+    const HDF5: [u8; 8] = [0x89, b'H', b'D', b'F', b'\r', b'\n', 0x1a, b'\n'];
+    if got >= 4 && &head[..3] == b"CDF" && matches!(head[3], 1 | 2 | 5) {
+        return Ok(true);
+    }
+    if got == 8 && head == HDF5 {
+        return Ok(false);
+    }
+    // An HDF5 signature may follow a user block; look at the usual offsets.
+    let len = std::fs::metadata(path).map_err(io)?.len();
+    let mut offset = 512u64;
+    while offset + 8 <= len && offset <= 1 << 20 {
+        use std::io::Seek;
+        f.seek(std::io::SeekFrom::Start(offset)).map_err(io)?;
+        let mut sig = [0u8; 8];
+        if f.read_exact(&mut sig).is_ok() && sig == HDF5 {
+            return Ok(false);
+        }
+        offset *= 2;
+    }
+    let detail = if got == 0 {
+        "the file is empty".to_string()
+    } else {
+        let shown: String = head[..got]
+            .iter()
+            .map(|&b| {
+                if b.is_ascii_graphic() || b == b' ' {
+                    (b as char).to_string()
+                } else {
+                    format!("\\x{b:02x}")
+                }
+            })
+            .collect();
+        format!("it starts with '{shown}', not a netcdf-3 ('CDF') or netcdf-4 (hdf5) signature")
+    };
+    Err(IngestError::NotNetcdf {
+        file: label.to_string(),
+        detail,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn signature_check_refuses_text_and_empty_files() {
+        let dir = std::env::temp_dir().join(format!("hypsogrid-sig-{}", std::process::id()));
+        let _ = std::fs::create_dir_all(&dir);
+        let text = dir.join("notes.txt");
+        let empty = dir.join("empty.nc");
+        let _ = std::fs::write(&text, "hello, this is text\n");
+        let _ = std::fs::write(&empty, "");
+        for (p, want) in [(&text, "starts with 'hello, t'"), (&empty, "empty")] {
+            let msg = check_signature(p, &p.display().to_string())
+                .map(|_| String::new())
+                .unwrap_or_else(|e| e.to_string());
+            assert!(
+                msg.contains(want) && msg.contains("not a netcdf file"),
+                "{msg}"
+            );
+        }
+        let classic = dir.join("c.nc");
+        let _ = std::fs::write(&classic, b"CDF\x01\0\0\0\0");
+        assert!(check_signature(&classic, "c.nc").is_ok());
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+}
