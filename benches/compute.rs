@@ -45,9 +45,18 @@ fn input(name: &str, deflate_level: Option<i32>) -> PathBuf {
 
 fn layers() -> Vec<Layer> {
     vec![
-        Layer { bottom_pa: 100000.0, top_pa: 50000.0 },
-        Layer { bottom_pa: 100000.0, top_pa: 85000.0 },
-        Layer { bottom_pa: 85000.0, top_pa: 70000.0 },
+        Layer {
+            bottom_pa: 100000.0,
+            top_pa: 50000.0,
+        },
+        Layer {
+            bottom_pa: 100000.0,
+            top_pa: 85000.0,
+        },
+        Layer {
+            bottom_pa: 85000.0,
+            top_pa: 70000.0,
+        },
     ]
 }
 
@@ -68,7 +77,9 @@ fn whole_process(c: &mut Criterion) {
     let zipped = input("global_0p5deg_zlib.nc", Some(1));
     let out = bench_dir().join("global_0p5deg_heights.nc");
     let mut group = c.benchmark_group("compute_whole_process_0p5deg");
-    group.sample_size(10).measurement_time(Duration::from_secs(12));
+    group
+        .sample_size(10)
+        .measurement_time(Duration::from_secs(12));
     for (label, file) in [("uncompressed", &plain), ("zlib1", &zipped)] {
         group.bench_function(label, |b| {
             b.iter(|| {
@@ -103,7 +114,9 @@ fn parts(c: &mut Criterion) {
     let cycle = read_cycle(&plain, &IngestConfig::default()).expect("reading the cycle");
     let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
     let mut group = c.benchmark_group("compute_parts_0p5deg");
-    group.sample_size(10).measurement_time(Duration::from_secs(8));
+    group
+        .sample_size(10)
+        .measurement_time(Duration::from_secs(8));
     group.bench_function("read", |b| {
         b.iter(|| read_cycle(&plain, &IngestConfig::default()).expect("reading"))
     });

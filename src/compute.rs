@@ -91,7 +91,9 @@ pub fn compute_heights(
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Heights, ComputeError> {
     for layer in &config.layers {
-        if !(layer.bottom_pa > layer.top_pa) {
+        let ordered =
+            layer.bottom_pa.partial_cmp(&layer.top_pa) == Some(std::cmp::Ordering::Greater);
+        if !ordered {
             return Err(ComputeError::InvertedLayer {
                 bottom_hpa: layer.bottom_pa / 100.0,
                 top_hpa: layer.top_pa / 100.0,
@@ -99,51 +101,19 @@ pub fn compute_heights(
         }
     }
     let (members, times, levels, rows, cols) = cycle.temperature.dim();
-    let file = cycle.source.display().to_string();
-    if matches!(cycle.vertical, Vertical::Hybrid { .. }) && cycle.surface.is_none() {
-        return Err(ComputeError::HybridWithoutSurface { file });
-    }
-    let reference = resolve_reference(cycle, config.no_surface_reference)?;
+    // Validates the cycle against the settings once, before any allocation.
+    let reference = StepColumns::new(cycle, config, 0, 0)?.reference;
 
     let mut height = Array5::<f32>::from_elem((members, times, levels, rows, cols), f32::NAN);
     let mut below = Array5::<u8>::zeros((members, times, levels, rows, cols));
     let nlayers = config.layers.len();
     let mut thick = Array5::<f32>::from_elem((members, times, nlayers, rows, cols), f32::NAN);
     let mut thick_below = Array5::<u8>::zeros((members, times, nlayers, rows, cols));
-    let c = cycle.constants;
     let mut done = 0usize;
-    let mut dry_levels = vec![false; levels];
-    if let Some(h) = &cycle.humidity {
-        for &k in &h.missing_levels {
-            if let Some(d) = dry_levels.get_mut(k) {
-                *d = true;
-            }
-        }
-    }
 
     for m in 0..members {
         for t in 0..times {
-            let step = Step {
-                cycle,
-                config,
-                reference,
-                temperature: cycle.temperature.slice(s![m, t, .., .., ..]),
-                humidity: cycle
-                    .humidity
-                    .as_ref()
-                    .map(|h| (h.kind, h.values.slice(s![m, t, .., .., ..]), &dry_levels[..])),
-                surface: cycle.surface.as_ref().map(|sf| {
-                    (
-                        sf.pressure_pa.slice(s![m, t, .., ..]),
-                        sf.height_m.slice(s![m, t, .., ..]),
-                    )
-                }),
-                file_heights: cycle
-                    .file_heights
-                    .as_ref()
-                    .map(|z| z.slice(s![m, t, .., .., ..])),
-                constants: c,
-            };
+            let step = StepColumns::new(cycle, config, m, t)?;
             let mut z_mt = height.slice_mut(s![m, t, .., .., ..]);
             let mut b_mt = below.slice_mut(s![m, t, .., .., ..]);
             let mut th_mt = thick.slice_mut(s![m, t, .., .., ..]);
@@ -155,7 +125,7 @@ pub fn compute_heights(
                 .zip(tb_mt.axis_iter_mut(Axis(1)).into_par_iter())
                 .enumerate()
                 .for_each_init(
-                    || RowScratch::new(levels),
+                    || ColumnScratch::new(levels),
                     |scratch, (row, (((z_row, b_row), th_row), tb_row))| {
                         step.row(row, scratch, z_row, b_row, th_row, tb_row);
                     },
@@ -179,7 +149,7 @@ pub fn compute_heights(
         geopotential_height: height,
         below_ground: below,
         thickness,
-        constants: c,
+        constants: cycle.constants,
         method: method_sentence(cycle, reference),
     })
 }
@@ -201,27 +171,38 @@ fn resolve_reference(cycle: &Cycle, wanted: NoSurfaceReference) -> Result<Refere
         Vertical::Isobaric { pressure_pa } => pressure_pa.first().copied().unwrap_or(f64::NAN),
         Vertical::Hybrid { .. } => f64::NAN,
     };
-    let standard = Reference::StandardAtmosphere(us_standard_atmosphere_height_at_pressure(
-        lowest_pressure,
-    ));
+    let standard =
+        Reference::StandardAtmosphere(us_standard_atmosphere_height_at_pressure(lowest_pressure));
     match (wanted, &cycle.file_heights, &cycle.vertical) {
         (NoSurfaceReference::StandardAtmosphere, _, _) => Ok(standard),
         (NoSurfaceReference::FileHeightAtLowestLevel, None, _) => Ok(standard),
         (NoSurfaceReference::FileHeightAtLowestLevel, Some(_), _) => {
             Ok(Reference::FileHeight(None))
         }
-        (NoSurfaceReference::FileHeightAt { pressure_pa }, Some(_), Vertical::Isobaric { pressure_pa: levels }) => {
+        (
+            NoSurfaceReference::FileHeightAt { pressure_pa },
+            Some(_),
+            Vertical::Isobaric {
+                pressure_pa: levels,
+            },
+        ) => {
             let nearest = levels
                 .iter()
                 .enumerate()
-                .min_by(|a, b| (a.1 - pressure_pa).abs().total_cmp(&(b.1 - pressure_pa).abs()))
+                .min_by(|a, b| {
+                    (a.1 - pressure_pa)
+                        .abs()
+                        .total_cmp(&(b.1 - pressure_pa).abs())
+                })
                 .map(|(k, _)| k);
             Ok(Reference::FileHeight(nearest))
         }
-        (NoSurfaceReference::FileHeightAt { pressure_pa }, _, _) => Err(ComputeError::NoFileHeights {
-            file: cycle.source.display().to_string(),
-            pressure_hpa: pressure_pa / 100.0,
-        }),
+        (NoSurfaceReference::FileHeightAt { pressure_pa }, _, _) => {
+            Err(ComputeError::NoFileHeights {
+                file: cycle.source.display().to_string(),
+                pressure_hpa: pressure_pa / 100.0,
+            })
+        }
     }
 }
 
@@ -247,99 +228,183 @@ fn method_sentence(cycle: &Cycle, reference: Reference) -> String {
     format!("{vertical}; {humidity}; {anchor}")
 }
 
-/// Per-thread scratch for one row.
-struct RowScratch {
-    nodes: ColumnNodes,
-    tv: Vec<f64>,
-    p_full: Vec<f64>,
-    z: Vec<f64>,
-    z_half: Vec<f64>,
-    below: Vec<bool>,
+/// Scratch for building one column, reused from column to column (one per thread).
+#[derive(Clone, Debug)]
+pub struct ColumnScratch {
+    /// The column's nodes, for interpolation at any pressure.
+    pub nodes: ColumnNodes,
+    /// Virtual temperature on each level, K (bottom-up).
+    pub tv: Vec<f64>,
+    /// Pressure of each level, Pa (full levels for hybrid coordinates).
+    pub pressure: Vec<f64>,
+    /// Geopotential height of each level, m (`NaN` where masked).
+    pub height: Vec<f64>,
+    /// Half-level heights of a hybrid column, m.
+    pub height_half: Vec<f64>,
+    /// Whether each level lies below the ground.
+    pub below: Vec<bool>,
 }
 
-impl RowScratch {
-    fn new(levels: usize) -> Self {
+impl ColumnScratch {
+    /// Scratch for columns of `levels` levels.
+    pub fn new(levels: usize) -> Self {
         Self {
             nodes: ColumnNodes::with_capacity(levels + 2),
             tv: vec![0.0; levels],
-            p_full: vec![0.0; levels],
-            z: vec![0.0; levels],
-            z_half: vec![0.0; levels + 1],
+            pressure: vec![0.0; levels],
+            height: vec![0.0; levels],
+            height_half: vec![0.0; levels + 1],
             below: vec![false; levels],
         }
     }
 }
 
-/// Everything one (member, time) step reads.
-struct Step<'a> {
+/// Builds the columns of one (member, time) step of a cycle exactly as the batch does, so
+/// that queries between levels give the same answers as [`compute_heights`].
+pub struct StepColumns<'a> {
     cycle: &'a Cycle,
     config: &'a ComputeConfig,
     reference: Reference,
     temperature: ArrayView3<'a, f32>,
-    /// Humidity kind and values, and per level whether the file lacked that humidity level.
-    humidity: Option<(HumidityKind, ArrayView3<'a, f32>, &'a [bool])>,
+    /// Humidity kind and values.
+    humidity: Option<(HumidityKind, ArrayView3<'a, f32>)>,
+    /// Per level, whether the file lacked that humidity level (treated as dry).
+    dry_levels: Vec<bool>,
     surface: Option<(ArrayView2<'a, f32>, ArrayView2<'a, f32>)>,
     file_heights: Option<ArrayView3<'a, f32>>,
     constants: Constants,
 }
 
-impl Step<'_> {
+impl<'a> StepColumns<'a> {
+    /// Prepares member `member` and time step `time` of `cycle` (indices must be in range:
+    /// the caller validates them against the cycle's dimensions).
+    pub fn new(
+        cycle: &'a Cycle,
+        config: &'a ComputeConfig,
+        member: usize,
+        time: usize,
+    ) -> Result<Self, ComputeError> {
+        if matches!(cycle.vertical, Vertical::Hybrid { .. }) && cycle.surface.is_none() {
+            return Err(ComputeError::HybridWithoutSurface {
+                file: cycle.source.display().to_string(),
+            });
+        }
+        let reference = resolve_reference(cycle, config.no_surface_reference)?;
+        let levels = cycle.vertical.levels();
+        let mut dry_levels = vec![false; levels];
+        if let Some(h) = &cycle.humidity {
+            for &k in &h.missing_levels {
+                if let Some(d) = dry_levels.get_mut(k) {
+                    *d = true;
+                }
+            }
+        }
+        let (m, t) = (member, time);
+        Ok(Self {
+            cycle,
+            config,
+            reference,
+            temperature: cycle.temperature.slice(s![m, t, .., .., ..]),
+            humidity: cycle
+                .humidity
+                .as_ref()
+                .map(|h| (h.kind, h.values.slice(s![m, t, .., .., ..]))),
+            dry_levels,
+            surface: cycle.surface.as_ref().map(|sf| {
+                (
+                    sf.pressure_pa.slice(s![m, t, .., ..]),
+                    sf.height_m.slice(s![m, t, .., ..]),
+                )
+            }),
+            file_heights: cycle
+                .file_heights
+                .as_ref()
+                .map(|z| z.slice(s![m, t, .., .., ..])),
+            constants: cycle.constants,
+        })
+    }
+
+    /// Surface pressure (Pa) and surface height (m) of a column, when the cycle has them.
+    pub fn surface(&self, row: usize, col: usize) -> Option<(f64, f64)> {
+        self.surface
+            .map(|(ps, zs)| (f64::from(ps[[row, col]]), f64::from(zs[[row, col]])))
+    }
+
+    /// The constants the cycle is computed with.
+    pub fn constants(&self) -> &Constants {
+        &self.constants
+    }
+
+    /// Builds the column at (`row`, `col`) into `s`: level pressures, virtual temperatures,
+    /// heights, below-ground flags, and the nodes for interpolation at any pressure.
+    pub fn build(&self, row: usize, col: usize, s: &mut ColumnScratch) {
+        let c = &self.constants;
+        let levels = s.tv.len();
+        let surface = self.surface(row, col);
+        match &self.cycle.vertical {
+            Vertical::Isobaric { pressure_pa } => s.pressure.copy_from_slice(pressure_pa),
+            Vertical::Hybrid { a_half_pa, b_half } => {
+                let ps = surface.map_or(f64::NAN, |(ps, _)| ps);
+                for k in 0..levels {
+                    let lower = a_half_pa[k] + b_half[k] * ps;
+                    let upper = a_half_pa[k + 1] + b_half[k + 1] * ps;
+                    s.pressure[k] = 0.5 * (lower + upper);
+                }
+            }
+        }
+        for k in 0..levels {
+            let t = f64::from(self.temperature[[k, row, col]]);
+            s.tv[k] = match self.humidity {
+                None => t,
+                Some(_) if self.dry_levels[k] => t,
+                Some((kind, values)) => {
+                    let h = f64::from(values[[k, row, col]]);
+                    self.virtual_temperature(kind, t, h, s.pressure[k])
+                }
+            };
+        }
+        match &self.cycle.vertical {
+            Vertical::Isobaric { pressure_pa } => {
+                let anchor = self.anchor(surface, row, col, pressure_pa);
+                s.nodes
+                    .isobaric(pressure_pa, &s.tv, anchor, c, &mut s.height, &mut s.below);
+            }
+            Vertical::Hybrid { a_half_pa, b_half } => {
+                let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));
+                s.nodes.hybrid(
+                    a_half_pa,
+                    b_half,
+                    &s.tv,
+                    ps,
+                    zs,
+                    c,
+                    &mut s.height,
+                    &mut s.height_half,
+                );
+                s.below.iter_mut().for_each(|b| *b = false);
+            }
+        }
+    }
     fn row(
         &self,
         row: usize,
-        s: &mut RowScratch,
+        s: &mut ColumnScratch,
         mut z_row: ArrayViewMut2<'_, f32>,
         mut b_row: ArrayViewMut2<'_, u8>,
         mut th_row: ArrayViewMut2<'_, f32>,
         mut tb_row: ArrayViewMut2<'_, u8>,
     ) {
-        let c = &self.constants;
-        let levels = s.tv.len();
+        let c = self.constants;
         let cols = z_row.dim().1;
         for col in 0..cols {
-            let surface = self
-                .surface
-                .map(|(ps, zs)| (f64::from(ps[[row, col]]), f64::from(zs[[row, col]])));
-            // Pressure of each level in this column.
-            match &self.cycle.vertical {
-                Vertical::Isobaric { pressure_pa } => s.p_full.copy_from_slice(pressure_pa),
-                Vertical::Hybrid { a_half_pa, b_half } => {
-                    let ps = surface.map_or(f64::NAN, |(ps, _)| ps);
-                    for k in 0..levels {
-                        let lower = a_half_pa[k] + b_half[k] * ps;
-                        let upper = a_half_pa[k + 1] + b_half[k + 1] * ps;
-                        s.p_full[k] = 0.5 * (lower + upper);
-                    }
-                }
+            self.build(row, col, s);
+            for (k, (&z, &b)) in s.height.iter().zip(&s.below).enumerate() {
+                z_row[[k, col]] = z as f32;
+                b_row[[k, col]] = u8::from(b);
             }
-            for k in 0..levels {
-                let t = f64::from(self.temperature[[k, row, col]]);
-                s.tv[k] = match self.humidity {
-                    None => t,
-                    Some((_, _, dry)) if dry[k] => t,
-                    Some((kind, values, _)) => {
-                        let h = f64::from(values[[k, row, col]]);
-                        self.virtual_temperature(kind, t, h, s.p_full[k])
-                    }
-                };
-            }
-            match &self.cycle.vertical {
-                Vertical::Isobaric { pressure_pa } => {
-                    let anchor = self.anchor(surface, row, col, pressure_pa);
-                    s.nodes.isobaric(pressure_pa, &s.tv, anchor, c, &mut s.z, &mut s.below);
-                }
-                Vertical::Hybrid { a_half_pa, b_half } => {
-                    let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));
-                    s.nodes.hybrid(a_half_pa, b_half, &s.tv, ps, zs, c, &mut s.z, &mut s.z_half);
-                    s.below.iter_mut().for_each(|b| *b = false);
-                }
-            }
-            for k in 0..levels {
-                z_row[[k, col]] = s.z[k] as f32;
-                b_row[[k, col]] = u8::from(s.below[k]);
-            }
+            let surface = self.surface(row, col);
             for (l, layer) in self.config.layers.iter().enumerate() {
-                th_row[[l, col]] = thickness_between(&s.nodes, layer.bottom_pa, layer.top_pa, c)
+                th_row[[l, col]] = thickness_between(&s.nodes, layer.bottom_pa, layer.top_pa, &c)
                     .map_or(f32::NAN, |v| v as f32);
                 tb_row[[l, col]] = u8::from(surface.is_some_and(|(ps, _)| layer.bottom_pa > ps));
             }
@@ -352,7 +417,11 @@ impl Step<'_> {
             HumidityKind::SpecificHumidity => virtual_temperature_from_specific_humidity(t, h, eps),
             HumidityKind::MixingRatio => virtual_temperature_from_mixing_ratio(t, h, eps),
             HumidityKind::RelativeHumidity => {
-                let e = h * saturation_vapour_pressure(t, self.config.saturation_formula, self.config.rh_phase);
+                let e = h * saturation_vapour_pressure(
+                    t,
+                    self.config.saturation_formula,
+                    self.config.rh_phase,
+                );
                 let q = specific_humidity_from_vapour_pressure(e, p, eps);
                 virtual_temperature_from_specific_humidity(t, q, eps)
             }
@@ -380,7 +449,9 @@ impl Step<'_> {
                 let heights = self.file_heights;
                 let at = |k: usize| heights.map_or(f64::NAN, |z| f64::from(z[[k, row, col]]));
                 let level = level.unwrap_or_else(|| {
-                    (0..pressure_pa.len()).find(|&k| at(k).is_finite()).unwrap_or(0)
+                    (0..pressure_pa.len())
+                        .find(|&k| at(k).is_finite())
+                        .unwrap_or(0)
                 });
                 ColumnAnchor::LevelHeight {
                     level,

@@ -22,8 +22,16 @@ pub struct Stencil {
 impl Stencil {
     /// Index of the grid point nearest the position (in index space).
     pub fn nearest(&self) -> (usize, usize) {
-        let r = if self.row_fraction < 0.5 { self.rows[0] } else { self.rows[1] };
-        let c = if self.col_fraction < 0.5 { self.cols[0] } else { self.cols[1] };
+        let r = if self.row_fraction < 0.5 {
+            self.rows[0]
+        } else {
+            self.rows[1]
+        };
+        let c = if self.col_fraction < 0.5 {
+            self.cols[0]
+        } else {
+            self.cols[1]
+        };
         (r, c)
     }
 
@@ -124,7 +132,10 @@ pub fn locate(grid: &Grid, lat: f64, lon: f64) -> Result<Stencil, SampleError> {
 }
 
 fn min_max(v: &[f64]) -> (f64, f64) {
-    v.iter().fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &x| (lo.min(x), hi.max(x)))
+    v.iter()
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &x| {
+            (lo.min(x), hi.max(x))
+        })
 }
 
 /// Indices and fraction of `x` between neighbours of a monotonic axis (either direction).
@@ -194,9 +205,18 @@ mod tests {
     #[test]
     fn regional_grid_rejects_outside_points_and_bad_coordinates() {
         let g = grid(vec![50.0, 51.0], vec![10.0, 11.0]);
-        assert!(matches!(locate(&g, 52.0, 10.5), Err(SampleError::OutsideGrid { .. })));
-        assert!(matches!(locate(&g, f64::NAN, 10.5), Err(SampleError::BadLatitude(_))));
-        assert!(matches!(locate(&g, 50.5, f64::INFINITY), Err(SampleError::BadLongitude(_))));
+        assert!(matches!(
+            locate(&g, 52.0, 10.5),
+            Err(SampleError::OutsideGrid { .. })
+        ));
+        assert!(matches!(
+            locate(&g, f64::NAN, 10.5),
+            Err(SampleError::BadLatitude(_))
+        ));
+        assert!(matches!(
+            locate(&g, 50.5, f64::INFINITY),
+            Err(SampleError::BadLongitude(_))
+        ));
         // -350 degrees east is 10 degrees east.
         assert!(locate(&g, 50.5, -349.5).is_ok());
         // A point on the edge is inside.

@@ -1,0 +1,141 @@
+//! The `hypsogrid` binary as a user runs it: the demo, `compute` on good and bad files.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use hypsogrid::demo::write_demo_cycle;
+
+fn hypsogrid(args: &[&std::ffi::OsStr]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_hypsogrid"))
+        .args(args)
+        .output()
+        .expect("running the hypsogrid binary")
+}
+
+fn os(s: &str) -> &std::ffi::OsStr {
+    s.as_ref()
+}
+
+fn stderr(out: &Output) -> String {
+    String::from_utf8_lossy(&out.stderr).into_owned()
+}
+
+fn files_in(dir: &Path) -> Vec<String> {
+    let mut names: Vec<String> = std::fs::read_dir(dir)
+        .expect("listing")
+        .filter_map(|e| e.ok())
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .collect();
+    names.sort();
+    names
+}
+
+#[test]
+fn demo_prints_the_thickness_table_and_the_caution() {
+    let out = hypsogrid(&[os("demo")]);
+    assert!(out.status.success(), "demo failed: {}", stderr(&out));
+    let text = String::from_utf8_lossy(&out.stdout);
+    for site in hypsogrid::demo::demo_sites() {
+        assert!(
+            text.contains(site.name),
+            "site {} in the table:\n{text}",
+            site.name
+        );
+    }
+    assert!(
+        text.contains("+48h"),
+        "every lead time is a column:\n{text}"
+    );
+    assert!(text.contains("invented scenario"));
+    assert!(
+        text.contains("not a forecast or warning"),
+        "the caution is printed"
+    );
+    // The scenario promises that the critical line crosses the region: some sites are on
+    // the cold side at some lead time, and some are not.
+    assert!(text.contains('*'), "some values below 5400 m:\n{text}");
+}
+
+#[test]
+fn compute_writes_heights_and_the_requested_layers() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = write_demo_cycle(dir.path()).unwrap();
+    let output = dir.path().join("out.nc");
+    let out = hypsogrid(&[
+        os("compute"),
+        input.as_os_str(),
+        os("--output"),
+        output.as_os_str(),
+        os("--layers"),
+        os("1000:500,925:712.5"),
+    ]);
+    assert!(out.status.success(), "compute failed: {}", stderr(&out));
+    let file = netcdf::open(&output).unwrap();
+    for name in [
+        "geopotential_height",
+        "below_ground",
+        "thickness_1000_500",
+        "thickness_925_712p5",
+    ] {
+        assert!(
+            file.variable(name).is_some(),
+            "variable {name} in the output"
+        );
+    }
+    let history = file.attribute("history").expect("history attribute");
+    let history: String = history.value().unwrap().try_into().unwrap();
+    assert!(history.contains("compute"), "{history}");
+}
+
+#[test]
+fn compute_on_a_file_that_is_not_netcdf_fails_with_one_line_and_leaves_nothing() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("cycle.nc");
+    std::fs::write(&input, "this is not a NetCDF file\n").unwrap();
+    let output = dir.path().join("out.nc");
+    let out = hypsogrid(&[
+        os("compute"),
+        input.as_os_str(),
+        os("--output"),
+        output.as_os_str(),
+    ]);
+    assert_eq!(out.status.code(), Some(1));
+    let err = stderr(&out);
+    assert_eq!(err.trim_end().lines().count(), 1, "one line: {err}");
+    assert!(err.contains("cycle.nc"), "names the file: {err}");
+    assert!(!err.contains("panicked"), "{err}");
+    assert_eq!(
+        files_in(dir.path()),
+        vec!["cycle.nc".to_string()],
+        "no output left behind"
+    );
+}
+
+#[test]
+fn compute_into_a_missing_folder_fails_naming_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = write_demo_cycle(dir.path()).unwrap();
+    let output = dir.path().join("no/such/folder/out.nc");
+    let out = hypsogrid(&[
+        os("compute"),
+        input.as_os_str(),
+        os("--output"),
+        output.as_os_str(),
+    ]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(stderr(&out).contains("out.nc"), "{}", stderr(&out));
+}
+
+#[test]
+fn compute_rejects_an_inverted_layer_before_reading_anything() {
+    let out = hypsogrid(&[
+        os("compute"),
+        os("whatever.nc"),
+        os("--output"),
+        os("x.nc"),
+        os("--layers"),
+        os("500:1000"),
+    ]);
+    assert!(!out.status.success());
+    assert!(stderr(&out).contains("500:1000"), "{}", stderr(&out));
+}
