@@ -1,0 +1,363 @@
+//! The cycles being served. Readers take a [`Snapshot`] and keep it for the whole request;
+//! writers build a new snapshot and swap it in, so a reader never sees a half-updated state.
+//!
+//! Cycles are ordered newest reference time first; beyond [`StoreConfig::keep_newest`] cycles
+//! or [`StoreConfig::memory_budget_bytes`], the oldest reference times are evicted first and
+//! every eviction is recorded with its reason. Files that failed to load are listed with
+//! their error until a good load of the same file (or its removal) clears them.
+
+use std::cmp::Ordering;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex, PoisonError, RwLock};
+use std::time::SystemTime;
+
+use crate::query::LoadedCycle;
+
+/// How many evictions a snapshot remembers.
+const EVICTIONS_KEPT: usize = 32;
+
+/// Limits of the store.
+#[derive(Clone, Copy, Debug)]
+pub struct StoreConfig {
+    /// Most cycles kept (the newest reference times win).
+    pub keep_newest: usize,
+    /// Most bytes the cycles' fields may hold together. The newest cycle is always kept, even
+    /// when it alone exceeds the budget, so that the service has something to serve.
+    pub memory_budget_bytes: usize,
+}
+
+impl Default for StoreConfig {
+    fn default() -> Self {
+        Self {
+            keep_newest: 8,
+            memory_budget_bytes: 8 * 1024 * 1024 * 1024,
+        }
+    }
+}
+
+/// A file that could not be loaded.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LoadFailure {
+    /// The file (or the data folder, when the folder itself cannot be read).
+    pub path: PathBuf,
+    /// The error, one line.
+    pub error: String,
+    /// When it was recorded.
+    pub at: SystemTime,
+}
+
+/// A cycle that stopped being served.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Eviction {
+    /// The cycle's id (its file name).
+    pub id: String,
+    /// Why, in one sentence.
+    pub reason: String,
+    /// When.
+    pub at: SystemTime,
+}
+
+/// One consistent state of the store.
+#[derive(Debug, Default)]
+pub struct Snapshot {
+    /// Cycles served, newest reference time first (cycles without one last, newest load first
+    /// among equals).
+    pub cycles: Vec<Arc<LoadedCycle>>,
+    /// Files that failed to load, in path order.
+    pub failures: Vec<LoadFailure>,
+    /// The most recent evictions (at most 32), most recent first.
+    pub evictions: Vec<Eviction>,
+    /// Incremented by every change.
+    pub generation: u64,
+}
+
+impl Snapshot {
+    /// The cycle with this id; `""` means the newest.
+    pub fn find(&self, id: &str) -> Option<Arc<LoadedCycle>> {
+        if id.is_empty() {
+            self.cycles.first().cloned()
+        } else {
+            self.cycles.iter().find(|c| c.id == id).cloned()
+        }
+    }
+
+    /// Bytes held by the cycles served.
+    pub fn bytes(&self) -> usize {
+        self.cycles.iter().map(|c| c.bytes).sum()
+    }
+}
+
+/// The cycles being served, shared between the folder watcher (writer) and requests (readers).
+#[derive(Debug)]
+pub struct CycleStore {
+    config: StoreConfig,
+    current: RwLock<Arc<Snapshot>>,
+    /// Serialises writers, so that two updates never start from the same snapshot.
+    writer: Mutex<()>,
+    changes: tokio::sync::watch::Sender<u64>,
+}
+
+/// Newest reference time first; no reference time last; then the newest load first.
+fn newest_first(a: &LoadedCycle, b: &LoadedCycle) -> Ordering {
+    match (a.reference_time_unix_s(), b.reference_time_unix_s()) {
+        (Some(x), Some(y)) => y.cmp(&x),
+        (Some(_), None) => Ordering::Less,
+        (None, Some(_)) => Ordering::Greater,
+        (None, None) => Ordering::Equal,
+    }
+    .then_with(|| b.loaded_at.cmp(&a.loaded_at))
+    .then_with(|| a.id.cmp(&b.id))
+}
+
+fn reference_label(c: &LoadedCycle) -> String {
+    c.cycle
+        .reference_time
+        .clone()
+        .unwrap_or_else(|| "no reference time".to_string())
+}
+
+impl CycleStore {
+    /// An empty store.
+    pub fn new(config: StoreConfig) -> Self {
+        let (changes, _) = tokio::sync::watch::channel(0);
+        Self {
+            config,
+            current: RwLock::new(Arc::new(Snapshot::default())),
+            writer: Mutex::new(()),
+            changes,
+        }
+    }
+
+    /// The limits the store keeps to.
+    pub fn config(&self) -> &StoreConfig {
+        &self.config
+    }
+
+    /// The current state; cheap. A request holds one snapshot for its whole life, so it
+    /// never sees a half-updated state.
+    pub fn snapshot(&self) -> Arc<Snapshot> {
+        Arc::clone(&self.current.read().unwrap_or_else(PoisonError::into_inner))
+    }
+
+    /// Applies `change` to a copy of the current snapshot and swaps it in when `change`
+    /// reports that it changed something.
+    fn update(&self, change: impl FnOnce(&mut Snapshot) -> bool) {
+        let _writer = self.writer.lock().unwrap_or_else(PoisonError::into_inner);
+        let old = self.snapshot();
+        let mut next = Snapshot {
+            cycles: old.cycles.clone(),
+            failures: old.failures.clone(),
+            evictions: old.evictions.clone(),
+            generation: old.generation,
+        };
+        if !change(&mut next) {
+            return;
+        }
+        next.generation = old.generation + 1;
+        next.evictions.truncate(EVICTIONS_KEPT);
+        let generation = next.generation;
+        *self.current.write().unwrap_or_else(PoisonError::into_inner) = Arc::new(next);
+        self.changes.send_replace(generation);
+    }
+
+    /// Adds a cycle, replacing one with the same id; clears a failure recorded for its path;
+    /// then evicts beyond `keep_newest` cycles or the memory budget, oldest reference time
+    /// first, recording why.
+    pub fn insert(&self, cycle: LoadedCycle) {
+        let config = self.config;
+        let cycle = Arc::new(cycle);
+        self.update(|s| {
+            s.cycles.retain(|c| c.id != cycle.id);
+            s.failures.retain(|f| f.path != cycle.path);
+            s.cycles.push(Arc::clone(&cycle));
+            s.cycles.sort_by(|a, b| newest_first(a, b));
+            let now = SystemTime::now();
+            let mut evicted = Vec::new();
+            while s.cycles.len() > config.keep_newest.max(1) {
+                let Some(old) = s.cycles.pop() else { break };
+                evicted.push(Eviction {
+                    id: old.id.clone(),
+                    reason: format!(
+                        "only the newest {} cycles are kept and '{}' ({}) is older than those",
+                        config.keep_newest.max(1),
+                        old.id,
+                        reference_label(&old)
+                    ),
+                    at: now,
+                });
+            }
+            while s.cycles.len() > 1 && s.bytes() > config.memory_budget_bytes {
+                let total = s.bytes();
+                let Some(old) = s.cycles.pop() else { break };
+                evicted.push(Eviction {
+                    id: old.id.clone(),
+                    reason: format!(
+                        "the cycles held {total} bytes, over the memory budget of {} bytes, and '{}' ({}) is the oldest",
+                        config.memory_budget_bytes,
+                        old.id,
+                        reference_label(&old)
+                    ),
+                    at: now,
+                });
+            }
+            // Most recent first: the last eviction of this insert leads.
+            for e in evicted {
+                s.evictions.insert(0, e);
+            }
+            true
+        });
+    }
+
+    /// Records that a file failed to load (replacing an earlier failure of the same path).
+    /// The cycles already served are untouched, including one loaded earlier from the same
+    /// file.
+    pub fn record_failure(&self, path: &Path, error: String) {
+        self.update(|s| {
+            if let Some(f) = s.failures.iter().find(|f| f.path == path) {
+                if f.error == error {
+                    return false;
+                }
+            }
+            s.failures.retain(|f| f.path != path);
+            s.failures.push(LoadFailure {
+                path: path.to_path_buf(),
+                error,
+                at: SystemTime::now(),
+            });
+            s.failures.sort_by(|a, b| a.path.cmp(&b.path));
+            true
+        });
+    }
+
+    /// Forgets a file deleted from the data folder: its cycle stops being served (recorded as
+    /// an eviction) and its failure is cleared.
+    pub fn remove_path(&self, path: &Path) {
+        self.update(|s| {
+            let before = (s.cycles.len(), s.failures.len());
+            let now = SystemTime::now();
+            let mut evicted = Vec::new();
+            s.cycles.retain(|c| {
+                let keep = c.path != path;
+                if !keep {
+                    evicted.push(Eviction {
+                        id: c.id.clone(),
+                        reason: format!("'{}' was removed from the data folder", path.display()),
+                        at: now,
+                    });
+                }
+                keep
+            });
+            s.failures.retain(|f| f.path != path);
+            for e in evicted {
+                s.evictions.insert(0, e);
+            }
+            before != (s.cycles.len(), s.failures.len())
+        });
+    }
+
+    /// The cycle with this id in the current snapshot; `""` means the newest.
+    pub fn find(&self, id: &str) -> Option<Arc<LoadedCycle>> {
+        self.snapshot().find(id)
+    }
+
+    /// Follows the generation, e.g. so that health can report serving once a cycle is loaded.
+    pub fn on_change(&self) -> tokio::sync::watch::Receiver<u64> {
+        self.changes.subscribe()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::compute::{compute_heights, ComputeConfig};
+    use crate::model::{Cycle, Grid, Vertical};
+    use crate::physics::Constants;
+    use ndarray::Array5;
+    use proptest::prelude::*;
+
+    fn tiny(id: &str, reference: Option<&str>, nlat: usize) -> LoadedCycle {
+        // An invented two-level isothermal column on a tiny grid, only to exercise the store.
+        let cycle = Cycle {
+            source: PathBuf::from(format!("/data/{id}")),
+            reference_time: reference.map(str::to_string),
+            lead_times_s: vec![0],
+            members: 1,
+            grid: Grid {
+                latitudes: (0..nlat).map(|i| i as f64).collect(),
+                longitudes: vec![0.0, 1.0],
+            },
+            vertical: Vertical::Isobaric {
+                pressure_pa: vec![100_000.0, 50_000.0],
+            },
+            levels_top_down_in_file: false,
+            temperature: Array5::from_elem((1, 1, 2, nlat, 2), 250.0),
+            humidity: None,
+            surface: None,
+            file_heights: None,
+            constants: Constants::default(),
+            variables: Vec::new(),
+            notes: Vec::new(),
+        };
+        let config = ComputeConfig::default();
+        let heights = compute_heights(&cycle, &config, &|_| {}).unwrap();
+        let bytes = crate::query::held_bytes(&cycle, &heights);
+        LoadedCycle {
+            id: id.to_string(),
+            path: cycle.source.clone(),
+            cycle,
+            heights,
+            config,
+            loaded_at: SystemTime::now(),
+            load_seconds: 0.0,
+            bytes,
+        }
+    }
+
+    #[test]
+    fn cycles_are_ordered_newest_first_and_found_by_id() {
+        let store = CycleStore::new(StoreConfig::default());
+        store.insert(tiny("a.nc", Some("2030-01-01T00:00:00Z"), 2));
+        store.insert(tiny("c.nc", None, 2));
+        store.insert(tiny("b.nc", Some("2030-01-02T00:00:00Z"), 2));
+        let s = store.snapshot();
+        let ids: Vec<&str> = s.cycles.iter().map(|c| c.id.as_str()).collect();
+        assert_eq!(ids, ["b.nc", "a.nc", "c.nc"]);
+        assert_eq!(store.find("").unwrap().id, "b.nc");
+        assert_eq!(store.find("a.nc").unwrap().id, "a.nc");
+        assert!(store.find("missing.nc").is_none());
+        assert_eq!(s.generation, 3);
+    }
+
+    #[test]
+    fn an_unchanged_failure_does_not_bump_the_generation() {
+        let store = CycleStore::new(StoreConfig::default());
+        store.record_failure(Path::new("/data/x.nc"), "bad".into());
+        store.record_failure(Path::new("/data/x.nc"), "bad".into());
+        assert_eq!(store.snapshot().generation, 1);
+        store.remove_path(Path::new("/data/nothing.nc"));
+        assert_eq!(store.snapshot().generation, 1);
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(32))]
+        #[test]
+        fn whatever_the_arrival_order_the_newest_are_kept_in_order(
+            days in proptest::sample::subsequence((1u32..=28).collect::<Vec<_>>(), 1..12)
+                .prop_shuffle(),
+            keep in 1usize..5,
+        ) {
+            let store = CycleStore::new(StoreConfig { keep_newest: keep, ..StoreConfig::default() });
+            for d in &days {
+                store.insert(tiny(&format!("{d:02}.nc"), Some(&format!("2030-02-{d:02}T00:00:00Z")), 2));
+            }
+            let mut newest = days.clone();
+            newest.sort_unstable_by(|a, b| b.cmp(a));
+            newest.truncate(keep);
+            let kept: Vec<String> = store.snapshot().cycles.iter().map(|c| c.id.clone()).collect();
+            let expected: Vec<String> = newest.iter().map(|d| format!("{d:02}.nc")).collect();
+            prop_assert_eq!(kept, expected);
+            let s = store.snapshot();
+            prop_assert_eq!(s.evictions.len(), days.len().saturating_sub(keep).min(32));
+        }
+    }
+}

@@ -1,0 +1,393 @@
+//! The data folder: finds cycle files, loads them once they are complete, and keeps the
+//! [`CycleStore`] in step with the folder.
+//!
+//! # Naming convention
+//! - Files whose names end in `.nc`, `.nc4` or `.netcdf` (any case) are cycles.
+//! - Names starting with `.` or ending in `.partial` or `.tmp` are ignored, so a producer can
+//!   write `cycle.nc.partial` (or `.cycle.nc`) and rename it to `cycle.nc` when it is
+//!   complete: a rename is atomic, so the cycle is never seen half-written.
+//! - Any other cycle file is read only once it is stable: its size and modification time
+//!   unchanged for [`WatchConfig::settle`] (either observed across scans, or a modification
+//!   time at least that old when the file is first seen, as for a file renamed into place
+//!   or present at start-up). A file that is still changing after
+//!   [`WatchConfig::max_wait_for_growth`] is reported as a failure, and loaded if it settles
+//!   later.
+//! - A file that changes after it was loaded is loaded again once it settles, replacing the
+//!   cycle of the same name; a file deleted from the folder stops being served.
+//!
+//! A file that fails to load is recorded in the store with its error and not retried until it
+//! changes; the cycles already served are untouched, and nothing here ends the process.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::time::{Duration, Instant, SystemTime};
+
+use crate::compute::ComputeConfig;
+use crate::ingest::IngestConfig;
+use crate::query::LoadedCycle;
+use crate::store::CycleStore;
+
+/// Settings of the folder watcher.
+#[derive(Clone, Debug)]
+pub struct WatchConfig {
+    /// The data folder.
+    pub dir: PathBuf,
+    /// Time between two scans.
+    pub poll_interval: Duration,
+    /// How long a file's size and modification time must stay unchanged before it is read.
+    pub settle: Duration,
+    /// A file still changing after this long is reported as a failure (and loaded later if
+    /// it settles).
+    pub max_wait_for_growth: Duration,
+}
+
+impl WatchConfig {
+    /// Watches `dir` with the default timings: a scan every second, files read once stable
+    /// for 2 s, a failure reported for a file still growing after 10 minutes.
+    pub fn new(dir: impl Into<PathBuf>) -> Self {
+        Self {
+            dir: dir.into(),
+            poll_interval: Duration::from_secs(1),
+            settle: Duration::from_secs(2),
+            max_wait_for_growth: Duration::from_secs(600),
+        }
+    }
+}
+
+/// True when a path names a cycle file by the folder's naming convention (see the module
+/// documentation): `.nc`, `.nc4` or `.netcdf`, not hidden, not `.partial` or `.tmp`.
+pub fn is_candidate(path: &Path) -> bool {
+    let Some(name) = path.file_name().and_then(|n| n.to_str()) else {
+        return false;
+    };
+    let lower = name.to_ascii_lowercase();
+    if lower.starts_with('.') || lower.ends_with(".partial") || lower.ends_with(".tmp") {
+        return false;
+    }
+    [".nc", ".nc4", ".netcdf"]
+        .iter()
+        .any(|ext| lower.len() > ext.len() && lower.ends_with(ext))
+}
+
+/// Where a tracked file stands.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Status {
+    /// Seen, not yet stable (or changed since it was loaded).
+    Waiting,
+    /// Loaded into the store with this fingerprint.
+    Loaded,
+    /// Failed to load with this fingerprint; not retried until the file changes.
+    Failed,
+}
+
+/// Size and modification time: what must stay unchanged for a file to count as complete.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+struct Fingerprint {
+    size: u64,
+    modified: Option<SystemTime>,
+}
+
+#[derive(Clone, Debug)]
+struct Tracked {
+    fingerprint: Fingerprint,
+    /// When the fingerprint was last seen to change (or first seen).
+    changed_at: Instant,
+    /// When the file started waiting to be loaded.
+    waiting_since: Instant,
+    status: Status,
+    /// Whether the "still growing" failure has been recorded for this wait.
+    growth_reported: bool,
+}
+
+/// What the watcher remembers between scans.
+#[derive(Debug, Default)]
+pub struct WatchState {
+    files: HashMap<PathBuf, Tracked>,
+    folder_failed: bool,
+}
+
+impl WatchState {
+    /// Nothing seen yet.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Number of cycle files being tracked (waiting, loaded or failed).
+    pub fn tracked(&self) -> usize {
+        self.files.len()
+    }
+}
+
+/// What one scan did, for tests and logs. Paths are in name order within each list.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct ScanReport {
+    /// Files loaded (new, or changed since their last load).
+    pub loaded: Vec<PathBuf>,
+    /// Files that failed to load, with the error.
+    pub failed: Vec<(PathBuf, String)>,
+    /// Files seen but not yet stable.
+    pub waiting: Vec<PathBuf>,
+    /// Files reported in this scan as still changing after the longest wait.
+    pub still_growing: Vec<PathBuf>,
+    /// Files gone from the folder since the last scan.
+    pub removed: Vec<PathBuf>,
+    /// Why the folder could not be listed, when it could not.
+    pub folder_error: Option<String>,
+}
+
+fn fingerprint(meta: &std::fs::Metadata) -> Fingerprint {
+    Fingerprint {
+        size: meta.len(),
+        modified: meta.modified().ok(),
+    }
+}
+
+/// Lists the cycle files of the folder with their fingerprints, in name order.
+fn list_folder(dir: &Path) -> std::io::Result<Vec<(PathBuf, Fingerprint)>> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir)? {
+        let path = entry?.path();
+        if !is_candidate(&path) {
+            continue;
+        }
+        // A file deleted between the listing and here is simply not there this time.
+        match std::fs::metadata(&path) {
+            Ok(meta) if meta.is_file() => out.push((path, fingerprint(&meta))),
+            _ => continue,
+        }
+    }
+    out.sort_by(|a, b| a.0.cmp(&b.0));
+    Ok(out)
+}
+
+/// One pass over the folder: lists it, loads new or changed files that are stable (in
+/// `spawn_blocking`, one at a time), records failures, and drops files that were deleted.
+///
+/// An unreadable folder is recorded in the store as a failure of the folder's path (cleared
+/// once it can be read again); the cycles already served stay.
+pub async fn scan_once(
+    store: &CycleStore,
+    state: &mut WatchState,
+    config: &WatchConfig,
+    ingest: &IngestConfig,
+    compute: &ComputeConfig,
+) -> ScanReport {
+    let mut report = ScanReport::default();
+    let dir = config.dir.clone();
+    let listing = tokio::task::spawn_blocking(move || list_folder(&dir))
+        .await
+        .unwrap_or_else(|e| Err(std::io::Error::other(e.to_string())));
+    let listing = match listing {
+        Ok(l) => l,
+        Err(e) => {
+            let message = format!(
+                "cannot list the data folder '{}': {e}",
+                config.dir.display()
+            );
+            store.record_failure(&config.dir, message.clone());
+            state.folder_failed = true;
+            report.folder_error = Some(message);
+            return report;
+        }
+    };
+    if state.folder_failed {
+        store.remove_path(&config.dir);
+        state.folder_failed = false;
+    }
+
+    let now = Instant::now();
+    let wall_now = SystemTime::now();
+    for (path, fp) in &listing {
+        let tracked = state.files.entry(path.clone()).or_insert_with(|| Tracked {
+            fingerprint: *fp,
+            changed_at: now,
+            waiting_since: now,
+            status: Status::Waiting,
+            growth_reported: false,
+        });
+        let mut first_sight_of_this_version = tracked.changed_at == now;
+        if tracked.fingerprint != *fp {
+            tracked.fingerprint = *fp;
+            tracked.changed_at = now;
+            first_sight_of_this_version = true;
+            if tracked.status != Status::Waiting {
+                tracked.status = Status::Waiting;
+                tracked.waiting_since = now;
+                tracked.growth_reported = false;
+            }
+        }
+        if tracked.status != Status::Waiting {
+            continue;
+        }
+        let unchanged_for = now.duration_since(tracked.changed_at);
+        let old_mtime = first_sight_of_this_version
+            && fp
+                .modified
+                .and_then(|m| wall_now.duration_since(m).ok())
+                .is_some_and(|age| age >= config.settle);
+        if unchanged_for >= config.settle || old_mtime {
+            load_one(store, tracked, path, ingest, compute, &mut report).await;
+        } else if now.duration_since(tracked.waiting_since) >= config.max_wait_for_growth
+            && !tracked.growth_reported
+        {
+            let message = format!(
+                "'{}' was still being written after {} s: it will be loaded once its size and modification time stay unchanged for {} s",
+                path.display(),
+                config.max_wait_for_growth.as_secs_f64(),
+                config.settle.as_secs_f64()
+            );
+            store.record_failure(path, message);
+            tracked.growth_reported = true;
+            report.still_growing.push(path.clone());
+        } else {
+            report.waiting.push(path.clone());
+        }
+    }
+
+    let present: std::collections::HashSet<&PathBuf> = listing.iter().map(|(p, _)| p).collect();
+    let mut gone: Vec<PathBuf> = state
+        .files
+        .keys()
+        .filter(|p| !present.contains(p))
+        .cloned()
+        .collect();
+    gone.sort();
+    for path in gone {
+        state.files.remove(&path);
+        store.remove_path(&path);
+        tracing::info!(file = %path.display(), "cycle file removed from the data folder");
+        report.removed.push(path);
+    }
+    report
+}
+
+/// Loads one stable file into the store (or records why not).
+async fn load_one(
+    store: &CycleStore,
+    tracked: &mut Tracked,
+    path: &Path,
+    ingest: &IngestConfig,
+    compute: &ComputeConfig,
+    report: &mut ScanReport,
+) {
+    let (p, i, c) = (path.to_path_buf(), ingest.clone(), compute.clone());
+    let loaded = tokio::task::spawn_blocking(move || {
+        let result = LoadedCycle::load(&p, &i, &c).map_err(|e| e.to_string());
+        // The fingerprint after the read: if it moved, the read may have seen a partial file.
+        let after = std::fs::metadata(&p).ok().map(|m| fingerprint(&m));
+        (result, after)
+    })
+    .await;
+    let (result, after) = match loaded {
+        Ok(r) => r,
+        Err(e) => (
+            Err(format!("loading '{}' stopped: {e}", path.display())),
+            None,
+        ),
+    };
+    if after.is_some() && after != Some(tracked.fingerprint) {
+        // Written to while being read: wait for it to settle again.
+        if let Some(fp) = after {
+            tracked.fingerprint = fp;
+        }
+        tracked.changed_at = Instant::now();
+        report.waiting.push(path.to_path_buf());
+        return;
+    }
+    match result {
+        Ok(cycle) => {
+            tracing::info!(
+                file = %path.display(),
+                load_seconds = cycle.load_seconds,
+                bytes = cycle.bytes,
+                "cycle loaded"
+            );
+            store.insert(cycle);
+            tracked.status = Status::Loaded;
+            report.loaded.push(path.to_path_buf());
+        }
+        Err(error) => {
+            tracing::warn!(file = %path.display(), %error, "cycle file failed to load");
+            store.record_failure(path, error.clone());
+            tracked.status = Status::Failed;
+            report.failed.push((path.to_path_buf(), error));
+        }
+    }
+}
+
+/// Scans the folder every `poll_interval` until `shutdown` turns true (or its sender is
+/// dropped). Never returns early because of a file or the folder.
+pub async fn watch(
+    store: Arc<CycleStore>,
+    config: WatchConfig,
+    ingest: IngestConfig,
+    compute: ComputeConfig,
+    mut shutdown: tokio::sync::watch::Receiver<bool>,
+) {
+    let mut state = WatchState::new();
+    loop {
+        if *shutdown.borrow() {
+            break;
+        }
+        let report = scan_once(&store, &mut state, &config, &ingest, &compute).await;
+        if let Some(error) = &report.folder_error {
+            tracing::warn!(%error, "data folder scan failed");
+        }
+        tokio::select! {
+            _ = tokio::time::sleep(config.poll_interval) => {}
+            changed = shutdown.changed() => {
+                if changed.is_err() || *shutdown.borrow() {
+                    break;
+                }
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_naming_convention_picks_cycles_and_skips_work_in_progress() {
+        for yes in [
+            "a.nc",
+            "B.NC",
+            "gfs.t00z.nc4",
+            "x.netcdf",
+            "/data/run/2030.nc",
+        ] {
+            assert!(is_candidate(Path::new(yes)), "{yes}");
+        }
+        for no in [
+            ".a.nc",
+            "a.nc.partial",
+            "a.nc.tmp",
+            "a.txt",
+            "nc",
+            ".nc",
+            "a.nc.bak",
+            "/data/.hidden.nc",
+        ] {
+            assert!(!is_candidate(Path::new(no)), "{no}");
+        }
+    }
+
+    #[tokio::test]
+    async fn an_unreadable_folder_is_a_recorded_failure_cleared_when_it_returns() {
+        let tmp = tempfile::tempdir().unwrap();
+        let dir = tmp.path().join("later");
+        let store = CycleStore::new(crate::store::StoreConfig::default());
+        let mut state = WatchState::new();
+        let config = WatchConfig::new(&dir);
+        let (i, c) = (IngestConfig::default(), ComputeConfig::default());
+        let report = scan_once(&store, &mut state, &config, &i, &c).await;
+        assert!(report.folder_error.as_deref().unwrap().contains("later"));
+        assert_eq!(store.snapshot().failures.len(), 1);
+        std::fs::create_dir(&dir).unwrap();
+        let report = scan_once(&store, &mut state, &config, &i, &c).await;
+        assert_eq!(report.folder_error, None);
+        assert!(store.snapshot().failures.is_empty());
+    }
+}
