@@ -4,7 +4,10 @@
 use std::{env, fs, path::PathBuf};
 
 fn main() -> Result<(), Box<dyn std::error::Error>> {
-    let protos = ["proto/hypsogrid/v1/cycle.proto"];
+    let protos = [
+        "proto/hypsogrid/v1/cycle.proto",
+        "proto/hypsogrid/v1/service.proto",
+    ];
     for p in &protos {
         println!("cargo:rerun-if-changed={p}");
     }
@@ -15,8 +18,8 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         prost::Message::encode_to_vec(&fds),
     )?;
     tonic_prost_build::configure()
-        .build_server(false)
-        .build_client(false)
+        .build_server(true)
+        .build_client(true)
         .compile_fds(fds)?;
     Ok(())
 }

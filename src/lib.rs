@@ -13,6 +13,10 @@ pub mod ingest;
 pub mod model;
 pub mod output;
 pub mod physics;
+pub mod query;
+pub mod service;
+pub mod store;
+pub mod watch;
 
 /// Generated protobuf types of the `hypsogrid.v1` package (wire types only).
 #[allow(missing_docs, unreachable_pub, clippy::all)]
