@@ -92,5 +92,9 @@ pub(super) fn run(args: ComputeArgs) -> Result<()> {
 /// The command line as run, for the output's `history` attribute.
 fn history_line() -> String {
     let args: Vec<String> = std::env::args().collect();
-    format!("hypsogrid {}: {}", env!("CARGO_PKG_VERSION"), args.join(" "))
+    format!(
+        "hypsogrid {}: {}",
+        env!("CARGO_PKG_VERSION"),
+        args.join(" ")
+    )
 }

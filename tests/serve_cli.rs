@@ -1,0 +1,528 @@
+//! `hypsogrid serve` as an operator runs it: a child process on 127.0.0.1:0, the client
+//! subcommands against it (table and JSON), hot reload of a file renamed into place, settings
+//! from flags, environment and file in that order, bearer tokens, JSON logs, and SIGTERM.
+
+use std::io::{BufRead, BufReader};
+use std::path::Path;
+use std::process::{Child, Command, Output, Stdio};
+use std::sync::mpsc;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use hypsogrid::compute::{compute_heights, ComputeConfig};
+use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME};
+use hypsogrid::ingest::{read_cycle, IngestConfig};
+use hypsogrid::model::Layer;
+
+const BIN: &str = env!("CARGO_BIN_EXE_hypsogrid");
+
+/// A `hypsogrid serve` child process; killed if a test fails before stopping it.
+struct Server {
+    child: Child,
+    address: String,
+    stderr: Arc<Mutex<Vec<String>>>,
+}
+
+impl Server {
+    /// Starts the server and waits for its "listening on" line.
+    fn start(args: &[&str], env: &[(&str, &str)]) -> Server {
+        let mut cmd = Command::new(BIN);
+        cmd.arg("serve")
+            .args(args)
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped());
+        for (k, v) in env {
+            cmd.env(k, v);
+        }
+        let mut child = cmd.spawn().expect("starting hypsogrid serve");
+        let stderr = child.stderr.take().expect("stderr is piped");
+        let lines = Arc::new(Mutex::new(Vec::new()));
+        let (tx, rx) = mpsc::channel();
+        let keep = Arc::clone(&lines);
+        std::thread::spawn(move || {
+            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
+                if let Some(addr) = line.strip_prefix("listening on ") {
+                    let _ = tx.send(addr.trim().to_string());
+                }
+                keep.lock().unwrap().push(line);
+            }
+        });
+        let address = match rx.recv_timeout(Duration::from_secs(60)) {
+            Ok(a) => a,
+            Err(_) => {
+                let _ = child.kill();
+                panic!(
+                    "the server printed no 'listening on' line:\n{}",
+                    lines.lock().unwrap().join("\n")
+                );
+            }
+        };
+        Server {
+            child,
+            address,
+            stderr: lines,
+        }
+    }
+
+    fn url(&self) -> String {
+        format!("http://{}", self.address)
+    }
+
+    fn log(&self) -> String {
+        self.stderr.lock().unwrap().join("\n")
+    }
+
+    /// Runs a client subcommand against this server.
+    fn client(&self, args: &[&str]) -> Output {
+        let url = self.url();
+        let mut all: Vec<&str> = vec![args[0], "--server", &url];
+        all.extend_from_slice(&args[1..]);
+        Command::new(BIN)
+            .args(&all)
+            .output()
+            .expect("running a client subcommand")
+    }
+
+    /// Runs a client subcommand that must succeed, and returns its stdout.
+    fn ok(&self, args: &[&str]) -> String {
+        let out = self.client(args);
+        assert!(
+            out.status.success(),
+            "{args:?} failed: {}\nserver log:\n{}",
+            String::from_utf8_lossy(&out.stderr),
+            self.log()
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+
+    /// Waits until `health` says SERVING.
+    fn wait_serving(&self) {
+        let deadline = Instant::now() + Duration::from_secs(60);
+        while Instant::now() < deadline {
+            if self.client(&["health"]).status.success() {
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(100));
+        }
+        panic!("the server never became SERVING:\n{}", self.log());
+    }
+
+    /// Sends SIGTERM and returns the exit code and how long the exit took.
+    fn terminate(mut self) -> (Option<i32>, Duration) {
+        let started = Instant::now();
+        // SAFETY: kill(2) on the pid of a child this test started and has not reaped.
+        let rc = unsafe { libc::kill(self.child.id() as libc::pid_t, libc::SIGTERM) };
+        assert_eq!(rc, 0, "sending SIGTERM");
+        loop {
+            if let Some(status) = self.child.try_wait().expect("waiting for the server") {
+                return (status.code(), started.elapsed());
+            }
+            if started.elapsed() > Duration::from_secs(15) {
+                let _ = self.child.kill();
+                panic!(
+                    "the server did not exit within 15 s of SIGTERM:\n{}",
+                    self.log()
+                );
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        // Only reached on a failing test (terminate() consumes the child by waiting on it);
+        // killing an exited child is harmless.
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+fn json(text: &str) -> serde_json::Value {
+    serde_json::from_str(text).unwrap_or_else(|e| panic!("not JSON ({e}):\n{text}"))
+}
+
+fn catalogue_ids(server: &Server) -> Vec<String> {
+    let doc = json(&server.ok(&["catalogue", "--format", "json"]));
+    doc["cycles"]
+        .as_array()
+        .expect("cycles array")
+        .iter()
+        .map(|c| c["id"].as_str().unwrap_or_default().to_string())
+        .collect()
+}
+
+/// The batch 1000–500 hPa thickness of the demo cycle at grid point (row, col), lead index t.
+fn batch_thickness(path: &Path, t: usize, row: usize, col: usize) -> (f64, f64, f64) {
+    let cycle = read_cycle(path, &IngestConfig::default()).expect("reading the demo cycle");
+    let config = ComputeConfig {
+        layers: vec![Layer {
+            bottom_pa: 100000.0,
+            top_pa: 50000.0,
+        }],
+        ..ComputeConfig::default()
+    };
+    let heights = compute_heights(&cycle, &config, &|_| {}).expect("batch compute");
+    let v = f64::from(heights.thickness[0].values[[0, t, row, col]]);
+    (cycle.grid.latitudes[row], cycle.grid.longitudes[col], v)
+}
+
+#[test]
+fn serve_answers_every_client_command_reloads_and_stops_on_sigterm() {
+    let dir = tempfile::tempdir().unwrap();
+    let demo = write_demo_cycle(dir.path()).unwrap();
+    let data = dir.path().to_string_lossy().into_owned();
+    let server = Server::start(
+        &[
+            "--data",
+            &data,
+            "--listen",
+            "127.0.0.1:0",
+            "--settle",
+            "200ms",
+            "--poll-interval",
+            "100ms",
+        ],
+        &[],
+    );
+    assert!(
+        server.address.starts_with("127.0.0.1:"),
+        "{}",
+        server.address
+    );
+    server.wait_serving();
+
+    // health: table and JSON.
+    let text = server.ok(&["health"]);
+    assert!(text.contains("SERVING"), "{text}");
+    let doc = json(&server.ok(&["health", "--format", "json"]));
+    assert_eq!(doc["status"], "SERVING");
+
+    // catalogue: table and JSON.
+    let text = server.ok(&["catalogue"]);
+    assert!(text.contains(DEMO_FILE_NAME), "{text}");
+    assert!(
+        text.contains("2031-01-14T00:00:00Z"),
+        "reference time:\n{text}"
+    );
+    assert!(text.contains("21 isobaric 1000..100 hPa"), "{text}");
+    let doc = json(&server.ok(&["catalogue", "--format", "json"]));
+    assert_eq!(doc["cycles"][0]["id"], DEMO_FILE_NAME);
+    assert_eq!(
+        doc["cycles"][0]["lead_times_s"],
+        serde_json::json!([0, 21600, 43200, 64800, 86400, 129600, 172800])
+    );
+
+    // area: table with the matrix, JSON with the grid, CSV with one line per value.
+    let text = server.ok(&[
+        "area",
+        "--bbox",
+        "55,56,-40,-38",
+        "--layer",
+        "1000:500",
+        "--height",
+        "500",
+        "--lead-time",
+        "12h",
+        "--stride",
+        "2",
+    ]);
+    assert!(text.contains("lead time +12h"), "{text}");
+    assert!(text.contains("3 rows x 5 columns"), "{text}");
+    assert!(text.contains("thickness 1000-500 hPa"), "{text}");
+    assert!(text.contains("height 500 hPa"), "{text}");
+    let doc = json(&server.ok(&[
+        "area",
+        "--bbox",
+        "55,56,-40,-38",
+        "--layer",
+        "1000:500",
+        "--valid-time",
+        "2031-01-14T12:00:00Z",
+        "--format",
+        "json",
+    ]));
+    assert_eq!(doc["lead_time_s"], 43200, "the valid time resolves to +12h");
+    assert_eq!(
+        doc["latitudes_deg"],
+        serde_json::json!([56.0, 55.75, 55.5, 55.25, 55.0])
+    );
+    assert_eq!(doc["longitudes_deg"].as_array().unwrap().len(), 9);
+    let values = doc["fields"][0]["values"].as_array().unwrap();
+    assert_eq!(values.len(), 5);
+    assert_eq!(values[0].as_array().unwrap().len(), 9);
+    let csv = server.ok(&[
+        "area",
+        "--bbox",
+        "55,56,-40,-38",
+        "--stride",
+        "2",
+        "--format",
+        "csv",
+    ]);
+    let lines: Vec<&str> = csv.lines().collect();
+    assert_eq!(
+        lines[0],
+        "quantity,latitude_deg,longitude_deg,value_gpm,below_ground,missing"
+    );
+    assert_eq!(
+        lines.len(),
+        1 + 15,
+        "3 x 5 values of the default 1000-500 hPa layer:\n{csv}"
+    );
+
+    // position: a value on a grid point (nearest) equals the batch output there.
+    let (lat, lon, batch) = batch_thickness(&demo, 2, 10, 20);
+    let point = format!("{lat},{lon}");
+    let doc = json(&server.ok(&[
+        "position",
+        "--point",
+        &point,
+        "--layer",
+        "1000:500",
+        "--nearest",
+        "--format",
+        "json",
+    ]));
+    let samples = doc["series"][0]["samples"].as_array().unwrap();
+    assert_eq!(samples.len(), 7, "every lead time by default");
+    let served = samples[2]["values"][0].as_f64().unwrap();
+    // Heights near 5600 m are stored as f32 (spacing 0.0005 m): a few roundings apart.
+    assert!(
+        (served - batch).abs() <= 2e-3,
+        "served {served} vs batch {batch} (f32 rounding only)"
+    );
+    let text = server.ok(&[
+        "position",
+        "--point",
+        "55.4,-42.9",
+        "--point",
+        "58.65,-29.4",
+        "--layer",
+        "1000:500,850:700",
+        "--lead-time",
+        "0h,48h",
+    ]);
+    assert!(
+        text.contains("point 55.4, -42.9") && text.contains("point 58.65, -29.4"),
+        "{text}"
+    );
+    assert!(text.contains("+48h") && !text.contains("+12h"), "{text}");
+    assert!(text.contains("thickness 850-700 hPa"), "{text}");
+    assert!(
+        text.contains('~'),
+        "the plateau site is below 1000 hPa ground:\n{text}"
+    );
+
+    // profile: table bottom row is 1000 hPa, below the plateau's ground.
+    let text = server.ok(&["profile", "--point", "58.65,-29.4", "--lead-time", "6h"]);
+    assert!(text.contains("surface:"), "{text}");
+    assert!(
+        text.contains("yes"),
+        "below-ground levels are marked:\n{text}"
+    );
+    let doc = json(&server.ok(&["profile", "--point", "58.65,-29.4", "--format", "json"]));
+    let levels = doc["levels"].as_array().unwrap();
+    assert_eq!(levels.len(), 21);
+    assert_eq!(levels[0]["pressure_pa"], 100000.0);
+    assert_eq!(levels[0]["below_ground"], true);
+    assert!(doc["surface_height_m"].as_f64().unwrap() > 1000.0, "{doc}");
+
+    // trajectory: two waypoints inside the cycle's valid times.
+    let doc = json(&server.ok(&[
+        "trajectory",
+        "--waypoint",
+        "55,-40,2031-01-14T03:00:00Z",
+        "--waypoint",
+        "56,-35,2031-01-14T09:00:00Z",
+        "--format",
+        "json",
+    ]));
+    assert_eq!(doc["samples"].as_array().unwrap().len(), 2);
+
+    // An error from the server: one line, the code and the field.
+    let out = server.client(&["area", "--bbox", "56,55,-40,-38"]);
+    assert_eq!(out.status.code(), Some(1));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("INVALID_ARGUMENT") && err.contains("bbox"),
+        "{err}"
+    );
+    let out = server.client(&["position", "--point", "55,-40", "--lead-time", "7h"]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("NOT_FOUND"), "{err}");
+
+    // Hot reload: a copy written as .partial and renamed into place is picked up.
+    let partial = dir.path().join("second.nc.partial");
+    std::fs::copy(&demo, &partial).unwrap();
+    std::thread::sleep(Duration::from_millis(400));
+    assert!(
+        !catalogue_ids(&server)
+            .iter()
+            .any(|id| id.contains("second")),
+        "a .partial file is never read"
+    );
+    std::fs::rename(&partial, dir.path().join("second.nc")).unwrap();
+    let deadline = Instant::now() + Duration::from_secs(30);
+    loop {
+        let ids = catalogue_ids(&server);
+        if ids.iter().any(|id| id == "second.nc") {
+            assert!(ids.iter().any(|id| id == DEMO_FILE_NAME), "{ids:?}");
+            break;
+        }
+        assert!(
+            Instant::now() < deadline,
+            "second.nc never appeared: {ids:?}\n{}",
+            server.log()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+
+    let (code, took) = server.terminate();
+    assert_eq!(code, Some(0), "exit code after SIGTERM");
+    assert!(took < Duration::from_secs(5), "exit took {took:?}");
+}
+
+#[test]
+fn settings_come_from_flags_then_environment_then_the_file() {
+    let dir = tempfile::tempdir().unwrap();
+    let data = dir.path().join("cycles");
+    std::fs::create_dir(&data).unwrap();
+    let config = dir.path().join("server.toml");
+    // The file names the data folder (relative to itself) and a listen address.
+    std::fs::write(
+        &config,
+        "[server]\ndata = \"cycles\"\nlisten = \"127.0.0.1:0\"\n\n[watch]\nsettle = \"100ms\"\n",
+    )
+    .unwrap();
+    let config_arg = config.to_string_lossy().into_owned();
+
+    // File only.
+    let server = Server::start(&["--config", &config_arg], &[]);
+    assert!(
+        server.address.starts_with("127.0.0.1:"),
+        "{}",
+        server.address
+    );
+    let text = server.ok(&["catalogue"]);
+    assert!(text.contains("0 cycle(s) loaded"), "{text}");
+    // No cycle yet: health answers NOT_SERVING, and the health command exits 1.
+    let out = server.client(&["health"]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stdout).contains("NOT_SERVING"));
+    assert_eq!(server.terminate().0, Some(0));
+
+    // The environment wins over the file (127.0.0.2 is loopback too on Linux).
+    let server = Server::start(
+        &["--config", &config_arg],
+        &[("HYPSOGRID_LISTEN", "127.0.0.2:0")],
+    );
+    assert!(
+        server.address.starts_with("127.0.0.2:"),
+        "{}",
+        server.address
+    );
+    assert_eq!(server.terminate().0, Some(0));
+
+    // A flag wins over the environment.
+    let server = Server::start(
+        &["--config", &config_arg, "--listen", "127.0.0.3:0"],
+        &[("HYPSOGRID_LISTEN", "127.0.0.2:0")],
+    );
+    assert!(
+        server.address.starts_with("127.0.0.3:"),
+        "{}",
+        server.address
+    );
+    assert_eq!(server.terminate().0, Some(0));
+}
+
+#[test]
+fn tokens_guard_the_queries_and_logs_can_be_json() {
+    let dir = tempfile::tempdir().unwrap();
+    write_demo_cycle(dir.path()).unwrap();
+    let tokens = dir.path().join("tokens.txt");
+    std::fs::write(&tokens, "# forecast office tools\nsecret-one\nsecret-two\n").unwrap();
+    let data = dir.path().to_string_lossy().into_owned();
+    let tokens_arg = tokens.to_string_lossy().into_owned();
+    let server = Server::start(
+        &[
+            "--data",
+            &data,
+            "--listen",
+            "127.0.0.1:0",
+            "--settle",
+            "100ms",
+            "--poll-interval",
+            "100ms",
+            "--auth-tokens",
+            &tokens_arg,
+            "--log-format",
+            "json",
+        ],
+        &[],
+    );
+    // Health stays open for probes.
+    server.wait_serving();
+    let out = server.client(&["catalogue"]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(
+        String::from_utf8_lossy(&out.stderr).contains("UNAUTHENTICATED"),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let out = server.client(&["catalogue", "--token", "wrong"]);
+    assert!(String::from_utf8_lossy(&out.stderr).contains("UNAUTHENTICATED"));
+    let text = server.ok(&["catalogue", "--token", "secret-two"]);
+    assert!(text.contains(DEMO_FILE_NAME), "{text}");
+    let (code, _) = {
+        let log = server.log();
+        for line in log.lines().filter(|l| !l.starts_with("listening on ")) {
+            let v: serde_json::Value = serde_json::from_str(line)
+                .unwrap_or_else(|e| panic!("a log line that is not JSON ({e}): {line}"));
+            assert!(v.get("level").is_some(), "{line}");
+        }
+        server.terminate()
+    };
+    assert_eq!(code, Some(0));
+}
+
+#[test]
+fn bad_settings_end_with_one_line_naming_them() {
+    let out = Command::new(BIN)
+        .args([
+            "serve",
+            "--data",
+            "/no/such/folder",
+            "--listen",
+            "127.0.0.1:0",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("/no/such/folder"), "{err}");
+    assert_eq!(err.trim_end().lines().count(), 1, "{err}");
+
+    let out = Command::new(BIN)
+        .args(["serve", "--memory-budget", "lots"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2), "a clap usage error");
+    assert!(String::from_utf8_lossy(&out.stderr).contains("lots"));
+
+    // A client with no server to talk to fails with one line naming the URL.
+    let out = Command::new(BIN)
+        .args([
+            "catalogue",
+            "--server",
+            "http://127.0.0.1:9",
+            "--timeout",
+            "2s",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("127.0.0.1:9"), "{err}");
+}
