@@ -8,11 +8,11 @@
 //! variable.
 
 /// The data extent of a NetCDF-3 header, to refuse truncated files.
-/// HDF5 error printing, kept off on every reading thread.
-mod hdf5;
 pub mod classic;
 /// Reading one variable: masking, unpacking, conversion, axis order.
 mod field;
+/// HDF5 error printing, kept off on every reading thread.
+mod hdf5;
 /// The name map and the dataset config file.
 pub mod names;
 /// Finding variables and reading them into a cycle.
