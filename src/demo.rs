@@ -641,6 +641,43 @@ fn nc_err(path: &Path, context: impl Into<String>) -> impl FnOnce(netcdf::Error)
     }
 }
 
+/// Writes the `time` coordinate (hours since the demo reference time) and the scalar
+/// `forecast_reference_time`.
+fn write_time_axes(
+    file: &mut netcdf::FileMut,
+    path: &Path,
+    hours: &[f64],
+    long_name: Option<&str>,
+) -> Result<(), DemoError> {
+    let time_units = format!("hours since {DEMO_REFERENCE_TIME}");
+    let mut attributes = vec![
+        ("standard_name", "time"),
+        ("units", time_units.as_str()),
+        ("calendar", "standard"),
+        ("axis", "T"),
+    ];
+    if let Some(name) = long_name {
+        attributes.insert(1, ("long_name", name));
+    }
+    add_var::<f64>(file, path, "time", &["time"], &attributes)?
+        .put_values(hours, ..)
+        .map_err(nc_err(path, "writing variable 'time'"))?;
+    add_var::<f64>(
+        file,
+        path,
+        "forecast_reference_time",
+        &[],
+        &[
+            ("standard_name", "forecast_reference_time"),
+            ("units", time_units.as_str()),
+            ("calendar", "standard"),
+        ],
+    )?
+    .put_value(0.0_f64, ())
+    .map_err(nc_err(path, "writing variable 'forecast_reference_time'"))?;
+    Ok(())
+}
+
 /// Adds a variable with text and numeric attributes.
 fn add_var<'f, T: netcdf::NcTypeDescriptor>(
     file: &'f mut netcdf::FileMut,
@@ -722,40 +759,8 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
         file.add_dimension(name, len)
             .map_err(nc_err(path, format!("defining dimension '{name}'")))?;
     }
-    let time_units = format!("hours since {DEMO_REFERENCE_TIME}");
-    {
-        let mut var = add_var::<f64>(
-            &mut file,
-            path,
-            "time",
-            &["time"],
-            &[
-                ("standard_name", "time"),
-                ("long_name", "validity time"),
-                ("units", &time_units),
-                ("calendar", "standard"),
-                ("axis", "T"),
-            ],
-        )?;
-        let hours: Vec<f64> = DEMO_LEAD_HOURS.iter().map(|&h| f64::from(h)).collect();
-        var.put_values(&hours, ..)
-            .map_err(nc_err(path, "writing variable 'time'"))?;
-    }
-    {
-        let mut var = add_var::<f64>(
-            &mut file,
-            path,
-            "forecast_reference_time",
-            &[],
-            &[
-                ("standard_name", "forecast_reference_time"),
-                ("units", &time_units),
-                ("calendar", "standard"),
-            ],
-        )?;
-        var.put_value(0.0_f64, ())
-            .map_err(nc_err(path, "writing variable 'forecast_reference_time'"))?;
-    }
+    let hours: Vec<f64> = DEMO_LEAD_HOURS.iter().map(|&h| f64::from(h)).collect();
+    write_time_axes(&mut file, path, &hours, Some("validity time"))?;
     {
         let mut var = add_var::<f64>(
             &mut file,
@@ -999,39 +1004,8 @@ fn write_synthetic_file(path: &Path, spec: &SyntheticGlobal) -> Result<(), DemoE
         file.add_dimension(name, len)
             .map_err(nc_err(path, format!("defining dimension '{name}'")))?;
     }
-    let time_units = format!("hours since {DEMO_REFERENCE_TIME}");
-    {
-        let mut var = add_var::<f64>(
-            &mut file,
-            path,
-            "time",
-            &["time"],
-            &[
-                ("standard_name", "time"),
-                ("units", &time_units),
-                ("calendar", "standard"),
-                ("axis", "T"),
-            ],
-        )?;
-        let hours: Vec<f64> = (0..spec.times).map(|t| 6.0 * t as f64).collect();
-        var.put_values(&hours, ..)
-            .map_err(nc_err(path, "writing variable 'time'"))?;
-    }
-    {
-        let mut var = add_var::<f64>(
-            &mut file,
-            path,
-            "forecast_reference_time",
-            &[],
-            &[
-                ("standard_name", "forecast_reference_time"),
-                ("units", &time_units),
-                ("calendar", "standard"),
-            ],
-        )?;
-        var.put_value(0.0_f64, ())
-            .map_err(nc_err(path, "writing variable 'forecast_reference_time'"))?;
-    }
+    let hours: Vec<f64> = (0..spec.times).map(|t| 6.0 * t as f64).collect();
+    write_time_axes(&mut file, path, &hours, None)?;
     {
         let mut var = add_var::<f64>(
             &mut file,

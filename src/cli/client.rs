@@ -387,6 +387,16 @@ fn flag_of(flags: &[u8], i: usize) -> u8 {
     flags.get(i).copied().unwrap_or(0)
 }
 
+/// The table cells of one sample's values (one per quantity), marked by their flags.
+fn marked_cells(values: &[f64], flags: &[u8], quantities: usize) -> Vec<String> {
+    (0..quantities)
+        .map(|i| {
+            let v = values.get(i).copied().unwrap_or(f64::NAN);
+            marked(v, flag_of(flags, i), 1)
+        })
+        .collect()
+}
+
 const MARKS_NOTE: &str = "values in gpm; '~' below ground (extrapolated), NaN missing";
 
 // ---------------------------------------------------------------------------------------
@@ -1003,10 +1013,7 @@ fn render_position(p: &pb::PositionResponse, format: OutputFormat) -> Result<Str
                 let mut t = Table::new(headers);
                 for x in &s.samples {
                     let mut row = vec![lead_label(x.lead_time_s), x.valid_time.clone()];
-                    for i in 0..p.quantities.len() {
-                        let v = x.values.get(i).copied().unwrap_or(f64::NAN);
-                        row.push(marked(v, flag_of(&x.flags, i), 1));
-                    }
+                    row.extend(marked_cells(&x.values, &x.flags, p.quantities.len()));
                     t.row(row);
                 }
                 out.push_str(&t.render());
@@ -1249,10 +1256,7 @@ fn render_trajectory(p: &pb::TrajectoryResponse, format: OutputFormat) -> Result
             for (n, s) in p.samples.iter().enumerate() {
                 let (lat, lon, time) = waypoint(s);
                 let mut row = vec![n.to_string(), lat.to_string(), lon.to_string(), time];
-                for i in 0..p.quantities.len() {
-                    let v = s.values.get(i).copied().unwrap_or(f64::NAN);
-                    row.push(marked(v, flag_of(&s.flags, i), 1));
-                }
+                row.extend(marked_cells(&s.values, &s.flags, p.quantities.len()));
                 t.row(row);
             }
             out.push_str(&t.render());
