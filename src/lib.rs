@@ -10,6 +10,7 @@ pub mod compute;
 pub mod demo;
 pub mod grid;
 pub mod ingest;
+pub mod metrics;
 pub mod model;
 pub mod output;
 pub mod physics;

@@ -196,6 +196,8 @@ pub(crate) struct ServeArgs {
     /// Saturation vapour pressure for relative humidity and dewpoint [default: wmo]
     #[arg(long, value_enum, env = "HYPSOGRID_SATURATION")]
     saturation: Option<Saturation>,
+    #[command(flatten)]
+    ops: serve::OpsArgs,
 }
 
 /// How a client reaches the server; shared by every client command.

@@ -1,5 +1,9 @@
 //! `hypsogrid serve`: settings from flags, environment and a TOML file; logging; startup scan;
-//! the gRPC server with the folder watcher beside it; orderly shutdown on SIGTERM or Ctrl-C.
+//! the gRPC server with the folder watcher beside it; the metrics page on its own port;
+//! token-file reload on SIGHUP; orderly shutdown on SIGTERM or Ctrl-C.
+//!
+//! A server on a non-loopback address must be protected by TLS or bearer tokens, or be told
+//! with `--allow-insecure-remote` that an open port is intended.
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -11,8 +15,9 @@ use serde::Deserialize;
 
 use hypsogrid::compute::{ComputeConfig, NoSurfaceReference};
 use hypsogrid::ingest::{load_config, IngestConfig};
+use hypsogrid::metrics::Recorder;
 use hypsogrid::query::Limits;
-use hypsogrid::service::{serve_on, ServiceConfig, TlsFiles};
+use hypsogrid::service::{serve_on, ReloadSignal, ServiceConfig, TlsFiles};
 use hypsogrid::store::{CycleStore, StoreConfig};
 use hypsogrid::watch::{scan_once, WatchConfig, WatchState};
 
@@ -21,6 +26,33 @@ use super::{parse_reference, Saturation, ServeArgs};
 /// Default listen address: loopback only, so that a server started by hand is not reachable
 /// from the network until asked.
 pub(crate) const DEFAULT_LISTEN: &str = "127.0.0.1:50951";
+
+/// The operations settings of `hypsogrid serve` (flattened into its arguments): client
+/// certificates, exposure on the network, metrics.
+#[derive(Debug, Default, clap::Args)]
+pub(crate) struct OpsArgs {
+    /// CA certificate(s) (PEM) that sign client certificates: with TLS on, every client must
+    /// present a certificate signed by it
+    #[arg(long, value_name = "FILE", env = "HYPSOGRID_TLS_CLIENT_CA")]
+    tls_client_ca: Option<PathBuf>,
+    /// Listen on a non-loopback address even without TLS or tokens (say that an open port is
+    /// intended, e.g. behind a proxy that does both); `--allow-insecure-remote=false` undoes
+    /// a true value from the file [default: false]
+    #[arg(
+        long,
+        value_name = "BOOL",
+        env = "HYPSOGRID_ALLOW_INSECURE_REMOTE",
+        num_args = 0..=1,
+        require_equals = true,
+        default_missing_value = "true",
+        value_parser = clap::builder::BoolishValueParser::new()
+    )]
+    allow_insecure_remote: Option<bool>,
+    /// Serve metrics (Prometheus text format) at http://ADDR/metrics; port 0 picks a free
+    /// one (printed on stderr as `metrics on ADDR`) [default: off]
+    #[arg(long, value_name = "ADDR", env = "HYPSOGRID_METRICS_LISTEN")]
+    metrics_listen: Option<SocketAddr>,
+}
 
 /// Log format on stderr.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, clap::ValueEnum, Deserialize)]
@@ -138,6 +170,7 @@ struct FileSettings {
     watch: WatchTable,
     security: SecurityTable,
     dataset: DatasetTable,
+    metrics: MetricsTable,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -178,6 +211,14 @@ struct SecurityTable {
     auth_tokens: Option<PathBuf>,
     tls_cert: Option<PathBuf>,
     tls_key: Option<PathBuf>,
+    tls_client_ca: Option<PathBuf>,
+    allow_insecure_remote: Option<bool>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+struct MetricsTable {
+    listen: Option<SocketAddr>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -205,6 +246,7 @@ fn read_file_settings(path: &Path) -> Result<FileSettings> {
     rebase(&mut settings.security.auth_tokens);
     rebase(&mut settings.security.tls_cert);
     rebase(&mut settings.security.tls_key);
+    rebase(&mut settings.security.tls_client_ca);
     rebase(&mut settings.dataset.config);
     Ok(settings)
 }
@@ -229,6 +271,9 @@ pub(crate) struct ServeSettings {
     pub(crate) max_wait_for_growth: Duration,
     pub(crate) auth_tokens: Option<PathBuf>,
     pub(crate) tls: Option<(PathBuf, PathBuf)>,
+    pub(crate) tls_client_ca: Option<PathBuf>,
+    pub(crate) allow_insecure_remote: bool,
+    pub(crate) metrics_listen: Option<SocketAddr>,
     pub(crate) log_format: LogFormat,
     pub(crate) dataset: Option<PathBuf>,
     pub(crate) reference: NoSurfaceReference,
@@ -332,6 +377,17 @@ impl ServeSettings {
             )?,
             auth_tokens: args.auth_tokens.clone().or(file.security.auth_tokens),
             tls,
+            tls_client_ca: args
+                .ops
+                .tls_client_ca
+                .clone()
+                .or(file.security.tls_client_ca),
+            allow_insecure_remote: args
+                .ops
+                .allow_insecure_remote
+                .or(file.security.allow_insecure_remote)
+                .unwrap_or(false),
+            metrics_listen: args.ops.metrics_listen.or(file.metrics.listen),
             log_format: args
                 .log_format
                 .or(file.server.log_format)
@@ -375,6 +431,15 @@ impl ServeSettings {
         if self.request_timeout.is_zero() {
             bail!("request_timeout must be longer than zero");
         }
+        if self.tls_client_ca.is_some() && self.tls.is_none() {
+            bail!("--tls-client-ca needs --tls-cert and --tls-key: client certificates are checked only over TLS");
+        }
+        if let Some(metrics) = self.metrics_listen {
+            if metrics == self.listen && metrics.port() != 0 {
+                bail!("--metrics-listen {metrics} is the gRPC address too: give the metrics a port of their own");
+            }
+        }
+        self.check_exposure()?;
         if !self.data.is_dir() {
             bail!(
                 "data folder '{}' does not exist or is not a folder",
@@ -382,6 +447,19 @@ impl ServeSettings {
             );
         }
         Ok(())
+    }
+
+    /// Refuses a non-loopback gRPC address that neither TLS nor tokens protect, unless
+    /// `allow_insecure_remote` says that this is intended.
+    fn check_exposure(&self) -> Result<()> {
+        let protected = self.tls.is_some() || self.auth_tokens.is_some();
+        if self.listen.ip().is_loopback() || protected || self.allow_insecure_remote {
+            return Ok(());
+        }
+        bail!(
+            "refusing to listen on {} without TLS or bearer tokens: protect it with --tls-cert/--tls-key or --auth-tokens, or pass --allow-insecure-remote (env HYPSOGRID_ALLOW_INSECURE_REMOTE=true, file [security] allow_insecure_remote = true) if an open port is intended",
+            self.listen
+        )
     }
 
     /// The dataset ingest config used for every file.
@@ -434,11 +512,14 @@ impl ServeSettings {
             max_message_bytes: usize::try_from(self.max_message_bytes).unwrap_or(usize::MAX),
             request_timeout: self.request_timeout,
             auth_tokens: self.auth_tokens.clone(),
+            token_reload: None,
             tls: self.tls.as_ref().map(|(cert, key)| TlsFiles {
                 cert: cert.clone(),
                 key: key.clone(),
             }),
+            tls_client_ca: self.tls_client_ca.clone(),
             max_concurrent_requests: self.max_concurrent_requests,
+            metrics: None,
         }
     }
 }
@@ -471,9 +552,20 @@ async fn serve(
         .await
         .with_context(|| format!("cannot listen on {}", settings.listen))?;
     let address = listener.local_addr().context("reading the bound address")?;
+    let metrics_listener = match settings.metrics_listen {
+        Some(addr) => Some(
+            tokio::net::TcpListener::bind(addr)
+                .await
+                .with_context(|| format!("cannot listen for metrics on {addr}"))?,
+        ),
+        None => None,
+    };
     // Installed before the scan, so that a SIGTERM during a long scan still ends in an
-    // orderly stop (right after the scan) rather than the default abrupt exit.
+    // orderly stop (right after the scan) rather than the default abrupt exit, and a SIGHUP
+    // does not end the process (its default action).
     let signal = shutdown_signal()?;
+    let token_reload = ReloadSignal::new();
+    let hangups = forward_hangups(token_reload.clone())?;
     let store = Arc::new(CycleStore::new(settings.store_config()));
     let watch_config = settings.watch_config();
     let mut state = WatchState::new();
@@ -498,20 +590,41 @@ async fn serve(
         compute,
         stop_rx.clone(),
     ));
-    let mut server_stop = stop_rx;
-    let shutdown = async move {
+    let stopped = |mut stop: tokio::sync::watch::Receiver<bool>| async move {
         // Either the signal task said stop, or it is gone: both end the serving.
-        let _ = server_stop.wait_for(|stop| *stop).await;
+        let _ = stop.wait_for(|stop| *stop).await;
+    };
+    let mut service_config = settings.service_config();
+    service_config.token_reload = Some(token_reload);
+    let metrics = match metrics_listener {
+        Some(metrics_listener) => {
+            let recorder = Arc::new(Recorder::new());
+            service_config.metrics = Some(Arc::clone(&recorder));
+            let metrics_address = metrics_listener
+                .local_addr()
+                .context("reading the bound metrics address")?;
+            tracing::info!(address = %metrics_address, "serving metrics at /metrics");
+            // Tests and scripts read this line to learn the port chosen for port 0.
+            eprintln!("metrics on {metrics_address}");
+            Some(tokio::spawn(hypsogrid::metrics::serve_http(
+                metrics_listener,
+                recorder,
+                Arc::clone(&store),
+                stopped(stop_rx.clone()),
+            )))
+        }
+        None => None,
     };
     let server = tokio::spawn(serve_on(
         listener,
         Arc::clone(&store),
-        settings.service_config(),
-        shutdown,
+        service_config,
+        stopped(stop_rx),
     ));
     tracing::info!(
         %address,
         tls = settings.tls.is_some(),
+        client_certificates = settings.tls_client_ca.is_some(),
         auth = settings.auth_tokens.is_some(),
         "serving hypsogrid.v1.HeightService, health and reflection"
     );
@@ -539,6 +652,14 @@ async fn serve(
         .is_err()
     {
         watcher.abort();
+    }
+    hangups.abort();
+    if let Some(mut metrics) = metrics {
+        match tokio::time::timeout(Duration::from_secs(2), &mut metrics).await {
+            Ok(Ok(Err(error))) => tracing::warn!(%error, "the metrics listener failed"),
+            Ok(_) => {}
+            Err(_) => metrics.abort(),
+        }
     }
     served
         .context("the server task stopped abnormally")?
@@ -570,6 +691,28 @@ async fn watch_from(
         if let Some(error) = &report.folder_error {
             tracing::warn!(%error, "data folder scan failed");
         }
+    }
+}
+
+/// Installs the SIGHUP handler now and raises `reload` on every SIGHUP: the token file is
+/// then re-read (the server logs whether the new set took effect).
+fn forward_hangups(reload: ReloadSignal) -> Result<tokio::task::JoinHandle<()>> {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{signal, SignalKind};
+        let mut hangup = signal(SignalKind::hangup()).context("listening for SIGHUP")?;
+        Ok(tokio::spawn(async move {
+            while hangup.recv().await.is_some() {
+                tracing::info!(signal = "SIGHUP", "re-reading the token file");
+                reload.request();
+            }
+        }))
+    }
+    #[cfg(not(unix))]
+    {
+        // No SIGHUP: the token file is read at start only.
+        let _ = reload;
+        Ok(tokio::spawn(async {}))
     }
 }
 
@@ -774,5 +917,112 @@ saturation = "bolton"
             .unwrap_err()
             .to_string();
         assert!(e.contains("keep_newest"), "{e}");
+    }
+
+    #[test]
+    fn a_non_loopback_address_needs_tls_tokens_or_an_explicit_yes() {
+        let dir = tempfile::tempdir().unwrap();
+        let data = dir.path().to_string_lossy().into_owned();
+        let resolve = |extra: &[&str]| {
+            let mut argv = vec!["--data", data.as_str()];
+            argv.extend_from_slice(extra);
+            ServeSettings::resolve(&serve_args(&argv))
+        };
+        let e = resolve(&["--listen", "0.0.0.0:50951"])
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("0.0.0.0:50951"), "{e}");
+        assert!(e.contains("--allow-insecure-remote"), "{e}");
+        assert!(
+            e.contains("--auth-tokens") && e.contains("--tls-cert"),
+            "{e}"
+        );
+        assert!(!e.contains('\n'), "one line: {e}");
+        assert!(resolve(&["--listen", "192.0.2.7:50951"]).is_err());
+
+        // Loopback, v4 or v6, needs nothing.
+        assert!(resolve(&["--listen", "[::1]:0"]).is_ok());
+        assert!(resolve(&["--listen", "127.0.0.9:0"]).is_ok());
+        // Tokens or TLS protect it; so does saying that it is intended.
+        assert!(resolve(&["--listen", "0.0.0.0:0", "--auth-tokens", "t.txt"]).is_ok());
+        assert!(resolve(&[
+            "--listen",
+            "0.0.0.0:0",
+            "--tls-cert",
+            "c.pem",
+            "--tls-key",
+            "k.pem"
+        ])
+        .is_ok());
+        let s = resolve(&["--listen", "0.0.0.0:0", "--allow-insecure-remote"]).unwrap();
+        assert!(s.allow_insecure_remote);
+
+        // From the file, and a flag that says false wins over the file.
+        let config = dir.path().join("server.toml");
+        std::fs::write(
+            &config,
+            "[server]\nlisten = \"0.0.0.0:0\"\n[security]\nallow_insecure_remote = true\n",
+        )
+        .unwrap();
+        let config_arg = config.to_string_lossy().into_owned();
+        assert!(resolve(&["--config", &config_arg]).is_ok());
+        let e = resolve(&["--config", &config_arg, "--allow-insecure-remote=false"])
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("0.0.0.0:0"), "{e}");
+    }
+
+    #[test]
+    fn client_certificates_and_metrics_settings_resolve_and_are_checked() {
+        let dir = tempfile::tempdir().unwrap();
+        let data = dir.path().to_string_lossy().into_owned();
+        let e =
+            ServeSettings::resolve(&serve_args(&["--data", &data, "--tls-client-ca", "ca.pem"]))
+                .unwrap_err()
+                .to_string();
+        assert!(
+            e.contains("--tls-client-ca") && e.contains("--tls-cert"),
+            "{e}"
+        );
+
+        let e = ServeSettings::resolve(&serve_args(&[
+            "--data",
+            &data,
+            "--listen",
+            "127.0.0.1:7001",
+            "--metrics-listen",
+            "127.0.0.1:7001",
+        ]))
+        .unwrap_err()
+        .to_string();
+        assert!(e.contains("127.0.0.1:7001"), "{e}");
+
+        let config = dir.path().join("server.toml");
+        std::fs::write(
+            &config,
+            "[security]\ntls_cert = \"s.pem\"\ntls_key = \"s.key\"\ntls_client_ca = \"ca.pem\"\n\n[metrics]\nlisten = \"127.0.0.1:9464\"\n",
+        )
+        .unwrap();
+        let config_arg = config.to_string_lossy().into_owned();
+        let s = ServeSettings::resolve(&serve_args(&["--data", &data, "--config", &config_arg]))
+            .unwrap();
+        assert_eq!(s.tls_client_ca, Some(dir.path().join("ca.pem")));
+        assert_eq!(s.metrics_listen, Some("127.0.0.1:9464".parse().unwrap()));
+        let service = s.service_config();
+        assert_eq!(service.tls_client_ca, Some(dir.path().join("ca.pem")));
+        assert_eq!(service.tls.map(|t| t.cert), Some(dir.path().join("s.pem")));
+
+        let s = ServeSettings::resolve(&serve_args(&[
+            "--data",
+            &data,
+            "--config",
+            &config_arg,
+            "--metrics-listen",
+            "127.0.0.1:0",
+        ]))
+        .unwrap();
+        assert_eq!(s.metrics_listen, Some("127.0.0.1:0".parse().unwrap()));
+        let defaults = ServeSettings::resolve(&serve_args(&["--data", &data])).unwrap();
+        assert!(defaults.metrics_listen.is_none() && !defaults.allow_insecure_remote);
     }
 }

@@ -10,7 +10,12 @@
 //!   starts.
 //! - Auth: with a token file, every call to `HeightService` needs metadata
 //!   `authorization: Bearer <token>`; health and reflection stay open for probes and tools.
-//! - TLS: a PEM certificate chain and private key (rustls with the ring provider).
+//!   The file may hold SHA-256 digests instead of tokens ([`auth`]); a [`ReloadSignal`]
+//!   re-reads it, swapping the whole set at once, and a bad new file leaves the old set.
+//! - TLS: a PEM certificate chain and private key (rustls with the ring provider); with a
+//!   client CA, every client must present a certificate signed by it (mutual TLS).
+//! - Metrics: with a [`Recorder`], every call to `HeightService` is counted by method and
+//!   status code with its latency ([`crate::metrics`] serves the page).
 //! - Load: at most `max_concurrent_requests` calls run at once across all connections, and
 //!   the same number per connection through tower's concurrency-limit and load-shed layers;
 //!   a call beyond that is refused at once with RESOURCE_EXHAUSTED rather than queued.
@@ -28,19 +33,25 @@ pub mod status;
 
 use std::future::Future;
 use std::path::PathBuf;
+use std::pin::Pin;
 use std::sync::Arc;
-use std::time::Duration;
+use std::task::{Context, Poll};
+use std::time::{Duration, Instant};
 
 use tokio::sync::Mutex;
 use tokio_stream::wrappers::TcpListenerStream;
 use tonic::server::NamedService;
-use tonic::transport::{Identity, Server, ServerTlsConfig};
+use tonic::transport::{Certificate, Identity, Server, ServerTlsConfig};
+use tonic::{Request, Response, Status};
 use tonic_health::server::HealthReporter;
 use tonic_health::ServingStatus;
 
+pub use auth::ReloadSignal;
 pub use handlers::{HandlerSettings, HeightServiceHandlers};
 
-use crate::pb::height_service_server::HeightServiceServer;
+use crate::metrics::{Method, Recorder};
+use crate::pb;
+use crate::pb::height_service_server::{HeightService, HeightServiceServer};
 use crate::query::Limits;
 use crate::store::CycleStore;
 
@@ -59,13 +70,22 @@ pub struct ServiceConfig {
     pub max_message_bytes: usize,
     /// Longest a request may run, whatever the client's deadline.
     pub request_timeout: Duration,
-    /// Token file (one token per line; blank lines and `#` comments ignored): when set, every
-    /// call to the project's service must carry `authorization: Bearer <token>`.
+    /// Token file (one token or `sha256:<64 hex>` digest per line; blank lines and `#`
+    /// comments ignored; see [`auth`]): when set, every call to the project's service must
+    /// carry `authorization: Bearer <token>`.
     pub auth_tokens: Option<PathBuf>,
+    /// Re-reads the token file whenever this signal is raised (the command line raises it on
+    /// SIGHUP). Without a token file a request is logged and changes nothing.
+    pub token_reload: Option<ReloadSignal>,
     /// Serve TLS with this certificate and key.
     pub tls: Option<TlsFiles>,
+    /// PEM certificate(s) of the authority that signs client certificates: when set (it
+    /// needs `tls`), every client must present a certificate signed by it.
+    pub tls_client_ca: Option<PathBuf>,
     /// Calls served at once; further calls are refused with RESOURCE_EXHAUSTED.
     pub max_concurrent_requests: usize,
+    /// Counts every call (method, status code, latency) when set.
+    pub metrics: Option<Arc<Recorder>>,
 }
 
 impl Default for ServiceConfig {
@@ -75,8 +95,11 @@ impl Default for ServiceConfig {
             max_message_bytes: 4 * 1024 * 1024,
             request_timeout: Duration::from_secs(30),
             auth_tokens: None,
+            token_reload: None,
             tls: None,
+            tls_client_ca: None,
             max_concurrent_requests: 64,
+            metrics: None,
         }
     }
 }
@@ -107,7 +130,7 @@ pub enum ServiceError {
     /// A TLS file could not be read.
     #[error("cannot read the tls {what} '{path}': {source}")]
     TlsFile {
-        /// "certificate" or "key".
+        /// "certificate", "key" or "client ca".
         what: &'static str,
         /// The file.
         path: PathBuf,
@@ -148,6 +171,12 @@ impl ServiceConfig {
                 message: "must be longer than zero".into(),
             });
         }
+        if self.tls_client_ca.is_some() && self.tls.is_none() {
+            return Err(ServiceError::InvalidSetting {
+                setting: "tls_client_ca",
+                message: "client certificates are checked only over tls: give the server's own certificate and key too".into(),
+            });
+        }
         let tokens = match &self.auth_tokens {
             Some(path) => Some(auth::TokenSet::from_file(path)?),
             None => None,
@@ -174,7 +203,26 @@ pub async fn serve_on(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), ServiceError> {
     let settings = config.handler_settings()?;
-    let handlers = HeightServiceHandlers::new(Arc::clone(&store), settings);
+    let reloader =
+        match (&config.token_reload, &settings.tokens, &config.auth_tokens) {
+            (Some(signal), Some(tokens), Some(path)) => Some(tokio::spawn(
+                auth::reload_on_request(tokens.clone(), path.clone(), signal.clone()),
+            )),
+            (Some(signal), _, _) => {
+                let signal = signal.clone();
+                Some(tokio::spawn(async move {
+                    loop {
+                        signal.requested().await;
+                        tracing::info!("token reload asked for, but no token file is configured");
+                    }
+                }))
+            }
+            (None, _, _) => None,
+        };
+    let handlers = Metered {
+        inner: HeightServiceHandlers::new(Arc::clone(&store), settings),
+        recorder: config.metrics.clone(),
+    };
 
     let (reporter, health_service) = tonic_health::server::health_reporter();
     let health = Arc::new(HealthState {
@@ -203,7 +251,13 @@ pub async fn serve_on(
             })
         };
         let identity = Identity::from_pem(read("certificate", &tls.cert)?, read("key", &tls.key)?);
-        builder = builder.tls_config(ServerTlsConfig::new().identity(identity))?;
+        let mut tls_config = ServerTlsConfig::new().identity(identity);
+        if let Some(ca) = &config.tls_client_ca {
+            // Required, not optional: a client without a certificate from this authority
+            // fails the handshake.
+            tls_config = tls_config.client_ca_root(Certificate::from_pem(read("client ca", ca)?));
+        }
+        builder = builder.tls_config(tls_config)?;
     }
     let mut builder = builder
         .concurrency_limit_per_connection(config.max_concurrent_requests)
@@ -245,8 +299,145 @@ pub async fn serve_on(
         }
     };
     follower.abort();
+    if let Some(reloader) = reloader {
+        reloader.abort();
+    }
     health.stop().await;
     result
+}
+
+/// The handlers with every call counted: method, final status code and latency. Recording is
+/// a few atomic additions ([`Recorder`]); without a recorder this only forwards.
+#[derive(Clone, Debug)]
+struct Metered {
+    inner: HeightServiceHandlers,
+    recorder: Option<Arc<Recorder>>,
+}
+
+impl Metered {
+    fn record<T>(&self, method: Method, started: Instant, result: &Result<T, Status>) {
+        if let Some(recorder) = &self.recorder {
+            let code = match result {
+                Ok(_) => tonic::Code::Ok,
+                Err(status) => status.code(),
+            };
+            recorder.record_request(method, i32::from(code), started.elapsed());
+        }
+    }
+}
+
+#[tonic::async_trait]
+impl HeightService for Metered {
+    async fn get_catalogue(
+        &self,
+        request: Request<pb::CatalogueRequest>,
+    ) -> Result<Response<pb::CatalogueResponse>, Status> {
+        let started = Instant::now();
+        let result = self.inner.get_catalogue(request).await;
+        self.record(Method::GetCatalogue, started, &result);
+        result
+    }
+
+    type QueryAreaStream = handlers::AreaStream;
+
+    async fn query_area(
+        &self,
+        request: Request<pb::AreaRequest>,
+    ) -> Result<Response<Self::QueryAreaStream>, Status> {
+        let started = Instant::now();
+        match self.inner.query_area(request).await {
+            Ok(response) => match &self.recorder {
+                // The call ends with its stream: count it then, with the stream's outcome.
+                Some(recorder) => Ok(response.map(|stream| {
+                    Box::pin(MeteredStream {
+                        inner: stream,
+                        recorder: Some(Arc::clone(recorder)),
+                        started,
+                    }) as handlers::AreaStream
+                })),
+                None => Ok(response),
+            },
+            Err(status) => {
+                if let Some(recorder) = &self.recorder {
+                    recorder.record_request(
+                        Method::QueryArea,
+                        i32::from(status.code()),
+                        started.elapsed(),
+                    );
+                }
+                Err(status)
+            }
+        }
+    }
+
+    async fn query_position(
+        &self,
+        request: Request<pb::PositionRequest>,
+    ) -> Result<Response<pb::PositionResponse>, Status> {
+        let started = Instant::now();
+        let result = self.inner.query_position(request).await;
+        self.record(Method::QueryPosition, started, &result);
+        result
+    }
+
+    async fn query_profile(
+        &self,
+        request: Request<pb::ProfileRequest>,
+    ) -> Result<Response<pb::ProfileResponse>, Status> {
+        let started = Instant::now();
+        let result = self.inner.query_profile(request).await;
+        self.record(Method::QueryProfile, started, &result);
+        result
+    }
+
+    async fn query_trajectory(
+        &self,
+        request: Request<pb::TrajectoryRequest>,
+    ) -> Result<Response<pb::TrajectoryResponse>, Status> {
+        let started = Instant::now();
+        let result = self.inner.query_trajectory(request).await;
+        self.record(Method::QueryTrajectory, started, &result);
+        result
+    }
+}
+
+/// An area stream that counts its call once, when it ends: OK at the end of the stream, the
+/// code of the first error it carries, or CANCELLED when the client goes away first (the
+/// stream is dropped unfinished).
+struct MeteredStream {
+    inner: handlers::AreaStream,
+    /// Taken when the call has been counted.
+    recorder: Option<Arc<Recorder>>,
+    started: Instant,
+}
+
+impl MeteredStream {
+    fn count(&mut self, code: tonic::Code) {
+        if let Some(recorder) = self.recorder.take() {
+            recorder.record_request(Method::QueryArea, i32::from(code), self.started.elapsed());
+        }
+    }
+}
+
+impl tokio_stream::Stream for MeteredStream {
+    type Item = Result<pb::AreaChunk, Status>;
+
+    fn poll_next(self: Pin<&mut Self>, cx: &mut Context<'_>) -> Poll<Option<Self::Item>> {
+        let this = self.get_mut();
+        let next = this.inner.as_mut().poll_next(cx);
+        match &next {
+            Poll::Ready(None) => this.count(tonic::Code::Ok),
+            Poll::Ready(Some(Err(status))) => this.count(status.code()),
+            Poll::Ready(Some(Ok(_))) | Poll::Pending => {}
+        }
+        next
+    }
+}
+
+impl Drop for MeteredStream {
+    fn drop(&mut self) {
+        self.count(tonic::Code::Cancelled);
+    }
 }
 
 /// The health reporter, and whether shutdown has begun (after which nothing sets SERVING).
