@@ -711,6 +711,7 @@ fn add_globals(
 }
 
 fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
+    let _session = crate::netcdf_session::lock();
     let mut file = netcdf::create_with(path, netcdf::Options::NETCDF4)
         .map_err(nc_err(path, "creating the file"))?;
     let caution = "Any precipitation-type or freezing-level guidance made from this file is an \
@@ -971,6 +972,7 @@ fn write_synthetic_file(path: &Path, spec: &SyntheticGlobal) -> Result<(), DemoE
         .map(|i| synthetic_height(latitudes[i / cols], longitudes[i % cols]))
         .collect();
 
+    let _session = crate::netcdf_session::lock();
     let mut file = netcdf::create_with(path, netcdf::Options::NETCDF4)
         .map_err(nc_err(path, "creating the file"))?;
     add_globals(

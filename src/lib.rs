@@ -12,6 +12,7 @@ pub mod grid;
 pub mod ingest;
 pub mod metrics;
 pub mod model;
+pub mod netcdf_session;
 pub mod output;
 pub mod physics;
 pub mod query;

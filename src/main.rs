@@ -8,6 +8,16 @@ use std::process::ExitCode;
 use clap::Parser;
 
 fn main() -> ExitCode {
+    // HDF5 1.10 locks every file it opens (flock). A lock is tied to the open file description,
+    // so a process that forks while it has a NetCDF-4 file open hands the lock to the child,
+    // and a reader elsewhere then fails to open that file ("netcdf: hdf error"); the same
+    // locks fail outright on some network filesystems. hypsogrid never shares a file between
+    // writer and reader while it is written (the data folder's settle and rename rules see to
+    // that), so it turns HDF5's locking off unless the caller has set it. This runs before
+    // any thread exists.
+    if std::env::var_os("HDF5_USE_FILE_LOCKING").is_none() {
+        std::env::set_var("HDF5_USE_FILE_LOCKING", "FALSE");
+    }
     let args = cli::Cli::parse();
     match cli::run(args) {
         Ok(()) => ExitCode::SUCCESS,

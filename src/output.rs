@@ -454,6 +454,7 @@ fn write_file(
     options: &OutputOptions,
     partial: &Path,
 ) -> Result<(), OutputError> {
+    let _session = crate::netcdf_session::lock();
     let mut file = netcdf::create_with(partial, netcdf::Options::NETCDF4)
         .map_err(plan.nc_error(format!("creating '{}'", partial.display())))?;
 

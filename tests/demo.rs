@@ -433,3 +433,24 @@ fn demo_through_ingest_compute_and_output_keeps_the_scenario_promises() {
         .unwrap();
     assert_eq!(levels[0], 10_000.0, "written in the demo's top-down order");
 }
+
+/// Regression for a damaged demo file: two threads writing NetCDF-4 files at once interleaved
+/// inside HDF5 (`netcdf: hdf error` on reading one back, seen when tests ran in parallel).
+/// Every writer and reader now holds `netcdf_session::lock` for the life of its file.
+#[test]
+fn demo_files_written_from_several_threads_at_once_read_back_whole() {
+    let dirs: Vec<tempfile::TempDir> = (0..4).map(|_| tempfile::tempdir().unwrap()).collect();
+    let paths: Vec<std::path::PathBuf> = std::thread::scope(|scope| {
+        let handles: Vec<_> = dirs
+            .iter()
+            .map(|d| scope.spawn(move || hypsogrid::demo::write_demo_cycle(d.path()).unwrap()))
+            .collect();
+        handles.into_iter().map(|h| h.join().unwrap()).collect()
+    });
+    for path in &paths {
+        let cycle =
+            hypsogrid::ingest::read_cycle(path, &hypsogrid::ingest::IngestConfig::default())
+                .unwrap_or_else(|e| panic!("{e}"));
+        assert_eq!(cycle.lead_times_s.len(), 7);
+    }
+}

@@ -513,6 +513,9 @@ impl FixtureSpec {
             Format::Netcdf4 => Options::NETCDF4,
             Format::Netcdf4Classic => Options::NETCDF4 | Options::CLASSIC,
         };
+        // The NetCDF and HDF5 libraries are not thread-safe: hold the crate's session lock
+        // for the whole file, as the library's own readers and writers do.
+        let _session = hypsogrid::netcdf_session::lock();
         let mut f = netcdf::create_with(path, opts)?;
         let mut pend: Vec<(String, Data)> = Vec::new();
         let pend = &mut pend;
