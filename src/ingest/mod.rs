@@ -134,6 +134,16 @@ pub enum IngestError {
         /// The value, where it is, and what probably went wrong.
         found: Box<Implausibility>,
     },
+    /// A field in which no value is present: every point is a fill value, a `missing_value`
+    /// or outside the valid range. Served, it would be a cycle of missing heights that
+    /// displaces a good one as the newest.
+    #[error("variable '{variable}' in '{file}' holds no valid value: every point is a fill value, a missing_value or outside the valid range")]
+    NoValidData {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+    },
     /// Dimensions or shapes that do not fit together.
     #[error("variable '{variable}' in '{file}' {detail}")]
     Layout {
@@ -233,11 +243,12 @@ impl std::fmt::Display for Implausibility {
 /// bottom-up levels, `[member, time, level, lat, lon]`, humidity aligned onto the temperature
 /// levels by pressure value, surface fields broadcast to every member and time step.
 pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestError> {
-    hdf5::quiet_on_this_thread();
     let label = path.display().to_string();
     if check_signature(path, &label)? {
         check_classic_length(path, &label)?;
     }
+    let _session = crate::netcdf_session::lock();
+    hdf5::quiet_on_this_thread();
     let file = netcdf::open(path).map_err(|e| IngestError::Damaged {
         file: label.clone(),
         detail: e.to_string().to_lowercase(),

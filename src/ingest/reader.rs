@@ -444,6 +444,12 @@ impl<'f> Reader<'f> {
         let t_conv = self.conversion(&t_var, Quantity::Temperature)?;
         let temperature =
             self.read_field(&t_var, &t_layout, &vaxis, t_conv, Some(TEMPERATURE_RANGE))?;
+        if temperature.data.iter().all(|v| v.is_nan()) {
+            return Err(IngestError::NoValidData {
+                file: self.label.clone(),
+                variable: t_var.name(),
+            });
+        }
         self.variables
             .push(("air_temperature".into(), t_var.name()));
         let target = [
@@ -1182,6 +1188,12 @@ impl<'f> Reader<'f> {
             let conv = self.conversion(&var, quantity)?;
             let (values, missing_levels) =
                 self.read_on_levels(&var, vaxis, conv, Some(check), target, role.key())?;
+            if values.iter().all(|v| v.is_nan()) {
+                return Err(IngestError::NoValidData {
+                    file: self.label.clone(),
+                    variable: var.name(),
+                });
+            }
             self.variables.push((role.key().to_string(), var.name()));
             let mut note = format!("humidity: using '{}' ({})", var.name(), role.key());
             if !passed_over.is_empty() {

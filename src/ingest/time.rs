@@ -87,7 +87,8 @@ pub fn parse_time_units(units: &str) -> Result<TimeUnits, TimeUnitsError> {
 }
 
 /// Parse `YYYY-MM-DD[( |T)hh[:mm[:ss[.fff]]]][Z| UTC|±hh[:mm]]` to seconds since the Unix
-/// epoch (UTC); fractional seconds are rounded to the nearest second.
+/// epoch (UTC); fractional seconds are rounded to the nearest second. Years are 0000–9999
+/// (RFC 3339 dates have four digits), and so is the instant after the zone offset.
 pub fn parse_date_time(text: &str) -> Option<i64> {
     let text = text.trim();
     // Split the date from the rest at the first 'T' or space.
@@ -101,7 +102,7 @@ pub fn parse_date_time(text: &str) -> Option<i64> {
         let y: i64 = parts.next()?.parse().ok()?;
         let m: u32 = parts.next()?.parse().ok()?;
         let d: u32 = parts.next()?.parse().ok()?;
-        if parts.next().is_some() {
+        if parts.next().is_some() || !(0..=9999).contains(&y) {
             return None;
         }
         (y, m, d)
@@ -113,9 +114,15 @@ pub fn parse_date_time(text: &str) -> Option<i64> {
     let (clock, zone_offset_s) = split_zone(rest)?;
     let clock_s = parse_clock(clock)?;
     let days = days_from_civil(year, month, day);
-    days.checked_mul(86_400)?
+    let instant = days
+        .checked_mul(86_400)?
         .checked_add(clock_s)?
-        .checked_sub(zone_offset_s)
+        .checked_sub(zone_offset_s)?;
+    // A zone offset may carry the instant out of years 0000-9999; refuse it there too, so
+    // that every instant accepted formats back to RFC 3339 and parses to itself.
+    let first = days_from_civil(0, 1, 1) * 86_400;
+    let end = days_from_civil(10_000, 1, 1) * 86_400;
+    (first..end).contains(&instant).then_some(instant)
 }
 
 /// Split `hh:mm:ssZ`, `hh:mm:ss+01:00`, `hh:mm:ss UTC` into the clock and the zone offset,
@@ -146,7 +153,9 @@ fn split_zone(rest: &str) -> Option<(&str, i64)> {
             ),
             None => (digits.parse::<i64>().ok()?, 0),
         };
-        if hh > 23 || mm > 59 {
+        // Both parts are unsigned: the sign was read above, so a second one ("--05") is
+        // refused rather than taken as a negative hour.
+        if !(0..=23).contains(&hh) || !(0..=59).contains(&mm) {
             return None;
         }
         return Some((clock, sign * (hh * 3600 + mm * 60)));
@@ -372,5 +381,35 @@ mod tests {
             let (y, m, d) = civil_from_days(days);
             proptest::prop_assert_eq!(days_from_civil(y, m, d), days);
         }
+    }
+
+    /// Regression (found by the `cf_attributes` fuzz target): a second sign before the zone
+    /// offset (`--0011303…`) parsed as a negative hour that passed the `hh > 23` check and
+    /// overflowed `hh * 3600` (a panic with overflow checks, a wrong date without).
+    #[test]
+    fn regression_a_doubled_zone_sign_overflowed_the_offset() {
+        let units = "hours since 2011-01-10 13333314Td\u{d7}0--00113033333333331000";
+        assert!(parse_time_units(units).is_err());
+        assert_eq!(parse_date_time("2011-01-10 12:00:00--05:00"), None);
+        assert_eq!(parse_date_time("2011-01-10 12:00:00+05:-30"), None);
+        // The single-signed forms still parse (RFC 3339, §5.6).
+        assert_eq!(
+            parse_date_time("2011-01-10 12:00:00-05:00"),
+            parse_date_time("2011-01-10T17:00:00Z")
+        );
+    }
+
+    /// Regression: a year of 19 digits overflowed the era arithmetic of
+    /// `days_from_civil`; years are now 0000–9999 and so is the instant after the offset.
+    #[test]
+    fn regression_a_huge_year_overflowed_the_day_count() {
+        assert_eq!(parse_date_time("9223372036854775807-01-01"), None);
+        assert_eq!(parse_date_time("10000-01-01"), None);
+        assert_eq!(parse_date_time("0000-01-01T00:00:00+01:00"), None);
+        assert_eq!(parse_date_time("9999-12-31T23:00:00-05:00"), None);
+        let last = parse_date_time("9999-12-31T23:59:59Z").expect("the last second");
+        assert_eq!(format_rfc3339_utc(last), "9999-12-31T23:59:59Z");
+        let first = parse_date_time("0000-01-01").expect("the first day");
+        assert_eq!(format_rfc3339_utc(first), "0000-01-01T00:00:00Z");
     }
 }

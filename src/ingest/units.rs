@@ -92,7 +92,9 @@ impl Quantity {
 ///
 /// `"kg  kg**-1"`, `"kg kg^-1"` and `"kg.kg-1"` all become `"kg kg-1"`.
 pub fn normalise_units(units: &str) -> String {
-    let replaced = units.trim().replace("**", "").replace('^', "");
+    // Carets first: removing one can join two stars into a `**` marker (`m*^*2`), which the
+    // second replacement then removes, so that normalising twice changes nothing.
+    let replaced = units.trim().replace('^', "").replace("**", "");
     // A '.' between two letters or a letter and a digit is the UDUNITS product operator.
     let mut chars: Vec<char> = Vec::with_capacity(replaced.len());
     let raw: Vec<char> = replaced.chars().collect();
@@ -425,5 +427,22 @@ mod tests {
             proptest::prop_assert_eq!(parse_mass_ratio_units(&padded), parse_mass_ratio_units(&units));
             proptest::prop_assert_eq!(parse_height_units(&padded), parse_height_units(&units));
         }
+    }
+
+    /// Regression (found by the `units` fuzz target): removing `^` after `**` could form a
+    /// new `**`, so `^ddm*^*` normalised to `ddm**` and only a second pass gave `ddm`; a
+    /// string and its normal form could then parse differently.
+    #[test]
+    fn regression_normalising_twice_changed_a_string_whose_caret_joined_two_stars() {
+        for text in ["^ddm*^*", "m*^*2 s*^*-2", "kg kg*^*-1"] {
+            let once = normalise_units(text);
+            assert_eq!(normalise_units(&once), once, "{text}");
+        }
+        assert_eq!(normalise_units("^ddm*^*"), "ddm");
+        assert_eq!(normalise_units("m*^*2 s*^*-2"), "m2 s-2");
+        assert_eq!(
+            parse_mass_ratio_units("kg kg*^*-1"),
+            parse_mass_ratio_units("kg kg-1")
+        );
     }
 }
