@@ -3,7 +3,7 @@
 //!
 //! [`Recorder`] is the one place where the service counts: requests by method and gRPC status
 //! code, a latency histogram per method with fixed buckets, load failures and evictions of the
-//! [`CycleStore`]. Recording is a few relaxed atomic additions, with no lock, so it costs the
+//! [`CycleStore`]. Counting is a few relaxed atomic additions, with no lock, so it costs the
 //! request path nothing measurable. Gauges (cycles loaded, the newest cycle's age, memory
 //! held) are read from the store's current snapshot when the page is rendered, so they are
 //! never stale.

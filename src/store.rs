@@ -162,7 +162,7 @@ impl CycleStore {
 
     /// Adds a cycle, replacing one with the same id; clears a failure recorded for its path;
     /// then evicts beyond `keep_newest` cycles or the memory budget, oldest reference time
-    /// first, recording why.
+    /// first, noting why.
     pub fn insert(&self, cycle: LoadedCycle) {
         let config = self.config;
         let cycle = Arc::new(cycle);

@@ -308,7 +308,7 @@ pub async fn serve_on(
     result
 }
 
-/// The handlers with every call counted: method, final status code and latency. Recording is
+/// The handlers with every call counted: method, final status code and latency. Counting is
 /// a few atomic additions ([`Recorder`]); without a recorder this only forwards.
 #[derive(Clone, Debug)]
 struct Metered {
