@@ -7,17 +7,13 @@
 //! the 56-byte two-block message); certificates are made by the `openssl` command (the test
 //! says so and returns when it is missing).
 
-use std::io::{BufRead, BufReader};
-use std::process::{Child, Command, Output, Stdio};
-use std::sync::mpsc;
-use std::sync::{Arc, Mutex};
+use std::process::{Command, Output};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use hypsogrid::pb;
 use hypsogrid::pb::height_service_client::HeightServiceClient;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
-
-const BIN: &str = env!("CARGO_BIN_EXE_hypsogrid");
 
 /// SHA-256("abc"): FIPS 180-2, Appendix B.1.
 const ABC_SHA256: &str = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad";
@@ -25,70 +21,14 @@ const ABC_SHA256: &str = "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff
 const TWO_BLOCK: &str = "abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq";
 const TWO_BLOCK_SHA256: &str = "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1";
 
-/// A `hypsogrid serve` child process; killed if a test fails before stopping it.
-struct Server {
-    child: Child,
-    address: String,
-    stderr: Arc<Mutex<Vec<String>>>,
-}
+mod common;
+
+use common::serve_child::{ServeChild as Server, BIN};
 
 impl Server {
-    /// Starts the server and waits for its "listening on" line.
-    fn start(args: &[&str], env: &[(&str, &str)]) -> Server {
-        let mut cmd = Command::new(BIN);
-        cmd.arg("serve")
-            .args(args)
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped())
-            .env_remove("HYPSOGRID_ALLOW_INSECURE_REMOTE");
-        for (k, v) in env {
-            cmd.env(k, v);
-        }
-        let mut child = cmd.spawn().expect("starting hypsogrid serve");
-        let stderr = child.stderr.take().expect("stderr is piped");
-        let lines = Arc::new(Mutex::new(Vec::new()));
-        let (tx, rx) = mpsc::channel();
-        let keep = Arc::clone(&lines);
-        std::thread::spawn(move || {
-            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-                if let Some(addr) = line.strip_prefix("listening on ") {
-                    let _ = tx.send(addr.trim().to_string());
-                }
-                keep.lock().unwrap().push(line);
-            }
-        });
-        let address = match rx.recv_timeout(Duration::from_secs(60)) {
-            Ok(a) => a,
-            Err(_) => {
-                let _ = child.kill();
-                panic!(
-                    "the server printed no 'listening on' line:\n{}",
-                    lines.lock().unwrap().join("\n")
-                );
-            }
-        };
-        Server {
-            child,
-            address,
-            stderr: lines,
-        }
-    }
-
-    fn log(&self) -> String {
-        self.stderr.lock().unwrap().join("\n")
-    }
-
-    fn port(&self) -> u16 {
-        self.address
-            .rsplit(':')
-            .next()
-            .and_then(|p| p.parse().ok())
-            .unwrap_or_else(|| panic!("no port in '{}'", self.address))
-    }
-
     /// `hypsogrid catalogue` against this server, with a token when given.
     fn catalogue(&self, token: Option<&str>) -> Output {
-        let url = format!("http://{}", self.address);
+        let url = self.url();
         let mut cmd = Command::new(BIN);
         cmd.args(["catalogue", "--server", &url, "--timeout", "10s"])
             .env_remove("HYPSOGRID_TOKEN");
@@ -114,12 +54,6 @@ impl Server {
         false
     }
 
-    fn signal(&self, signal: libc::c_int) {
-        // SAFETY: kill(2) on the pid of a child this test started and has not reaped.
-        let rc = unsafe { libc::kill(self.child.id() as libc::pid_t, signal) };
-        assert_eq!(rc, 0, "sending signal {signal}");
-    }
-
     /// Waits until `condition` holds, or fails with the server log.
     fn wait_until(&self, what: &str, mut condition: impl FnMut() -> bool) {
         let deadline = Instant::now() + Duration::from_secs(20);
@@ -133,29 +67,6 @@ impl Server {
             "{what} did not happen within 20 s; server log:\n{}",
             self.log()
         );
-    }
-
-    /// Sends SIGTERM and returns the exit code.
-    fn terminate(mut self) -> Option<i32> {
-        self.signal(libc::SIGTERM);
-        let started = Instant::now();
-        loop {
-            if let Some(status) = self.child.try_wait().expect("waiting for the server") {
-                return status.code();
-            }
-            if started.elapsed() > Duration::from_secs(15) {
-                let _ = self.child.kill();
-                panic!("no exit within 15 s of SIGTERM:\n{}", self.log());
-            }
-            std::thread::sleep(Duration::from_millis(50));
-        }
-    }
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
     }
 }
 
@@ -235,7 +146,11 @@ fn digest_lines_are_accepted_and_sighup_swaps_the_token_file() {
     });
     assert!(server.accepts("fresh-token-2031"));
 
-    assert_eq!(server.terminate(), Some(0), "SIGHUP never ends the process");
+    assert_eq!(
+        server.terminate().0,
+        Some(0),
+        "SIGHUP never ends the process"
+    );
 }
 
 #[test]
@@ -274,12 +189,12 @@ fn a_non_loopback_address_is_refused_without_tls_tokens_or_an_explicit_yes() {
         &[],
     );
     assert!(server.address.starts_with("0.0.0.0:"), "{}", server.address);
-    assert_eq!(server.terminate(), Some(0));
+    assert_eq!(server.terminate().0, Some(0));
     let server = Server::start(
         &["--data", &data, "--listen", "0.0.0.0:0"],
         &[("HYPSOGRID_ALLOW_INSECURE_REMOTE", "true")],
     );
-    assert_eq!(server.terminate(), Some(0));
+    assert_eq!(server.terminate().0, Some(0));
 
     // Tokens protect it: no flag needed.
     let tokens = dir.path().join("tokens.txt");
@@ -295,7 +210,7 @@ fn a_non_loopback_address_is_refused_without_tls_tokens_or_an_explicit_yes() {
         ],
         &[],
     );
-    assert_eq!(server.terminate(), Some(0));
+    assert_eq!(server.terminate().0, Some(0));
 }
 
 /// The PEM files of a test PKI made with the `openssl` command.
@@ -480,7 +395,7 @@ async fn tls_client_ca_serves_only_clients_with_a_certificate_from_that_authorit
     let again = catalogue_over_tls(port, &pki.ca, Some((&pki.client_cert, &pki.client_key))).await;
     assert_eq!(again, Ok(0));
     assert_eq!(
-        tokio::task::spawn_blocking(move || server.terminate())
+        tokio::task::spawn_blocking(move || server.terminate().0)
             .await
             .unwrap(),
         Some(0)

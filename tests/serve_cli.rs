@@ -2,11 +2,8 @@
 //! subcommands against it (table and JSON), hot reload of a file renamed into place, settings
 //! from flags, environment and file in that order, bearer tokens, JSON logs, and SIGTERM.
 
-use std::io::{BufRead, BufReader};
 use std::path::Path;
-use std::process::{Child, Command, Output, Stdio};
-use std::sync::mpsc;
-use std::sync::{Arc, Mutex};
+use std::process::{Command, Output};
 use std::time::{Duration, Instant};
 
 use hypsogrid::compute::{compute_heights, ComputeConfig};
@@ -14,64 +11,11 @@ use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::model::Layer;
 
-const BIN: &str = env!("CARGO_BIN_EXE_hypsogrid");
+mod common;
 
-/// A `hypsogrid serve` child process; killed if a test fails before stopping it.
-struct Server {
-    child: Child,
-    address: String,
-    stderr: Arc<Mutex<Vec<String>>>,
-}
+use common::serve_child::{ServeChild as Server, BIN};
 
 impl Server {
-    /// Starts the server and waits for its "listening on" line.
-    fn start(args: &[&str], env: &[(&str, &str)]) -> Server {
-        let mut cmd = Command::new(BIN);
-        cmd.arg("serve")
-            .args(args)
-            .stdout(Stdio::null())
-            .stderr(Stdio::piped());
-        for (k, v) in env {
-            cmd.env(k, v);
-        }
-        let mut child = cmd.spawn().expect("starting hypsogrid serve");
-        let stderr = child.stderr.take().expect("stderr is piped");
-        let lines = Arc::new(Mutex::new(Vec::new()));
-        let (tx, rx) = mpsc::channel();
-        let keep = Arc::clone(&lines);
-        std::thread::spawn(move || {
-            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
-                if let Some(addr) = line.strip_prefix("listening on ") {
-                    let _ = tx.send(addr.trim().to_string());
-                }
-                keep.lock().unwrap().push(line);
-            }
-        });
-        let address = match rx.recv_timeout(Duration::from_secs(60)) {
-            Ok(a) => a,
-            Err(_) => {
-                let _ = child.kill();
-                panic!(
-                    "the server printed no 'listening on' line:\n{}",
-                    lines.lock().unwrap().join("\n")
-                );
-            }
-        };
-        Server {
-            child,
-            address,
-            stderr: lines,
-        }
-    }
-
-    fn url(&self) -> String {
-        format!("http://{}", self.address)
-    }
-
-    fn log(&self) -> String {
-        self.stderr.lock().unwrap().join("\n")
-    }
-
     /// Runs a client subcommand against this server.
     fn client(&self, args: &[&str]) -> Output {
         let url = self.url();
@@ -105,36 +49,6 @@ impl Server {
             std::thread::sleep(Duration::from_millis(100));
         }
         panic!("the server never became SERVING:\n{}", self.log());
-    }
-
-    /// Sends SIGTERM and returns the exit code and how long the exit took.
-    fn terminate(mut self) -> (Option<i32>, Duration) {
-        let started = Instant::now();
-        // SAFETY: kill(2) on the pid of a child this test started and has not reaped.
-        let rc = unsafe { libc::kill(self.child.id() as libc::pid_t, libc::SIGTERM) };
-        assert_eq!(rc, 0, "sending SIGTERM");
-        loop {
-            if let Some(status) = self.child.try_wait().expect("waiting for the server") {
-                return (status.code(), started.elapsed());
-            }
-            if started.elapsed() > Duration::from_secs(15) {
-                let _ = self.child.kill();
-                panic!(
-                    "the server did not exit within 15 s of SIGTERM:\n{}",
-                    self.log()
-                );
-            }
-            std::thread::sleep(Duration::from_millis(50));
-        }
-    }
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        // Only reached on a failing test (terminate() consumes the child by waiting on it);
-        // killing an exited child is harmless.
-        let _ = self.child.kill();
-        let _ = self.child.wait();
     }
 }
 

@@ -1,0 +1,121 @@
+//! `hypsogrid serve` as a child process on 127.0.0.1:0, for tests that run the binary the
+//! way an operator does: its bound address read from the "listening on" line, its stderr kept
+//! for failure messages, signals sent with kill(2), and a kill on drop if a test fails early.
+#![allow(dead_code)]
+
+use std::io::{BufRead, BufReader};
+use std::process::{Child, Command, Stdio};
+use std::sync::mpsc;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+/// The binary under test.
+pub const BIN: &str = env!("CARGO_BIN_EXE_hypsogrid");
+
+/// A running `hypsogrid serve` child.
+pub struct ServeChild {
+    /// The child process.
+    pub child: Child,
+    /// The address it listens on, `127.0.0.1:PORT`.
+    pub address: String,
+    stderr: Arc<Mutex<Vec<String>>>,
+}
+
+impl ServeChild {
+    /// Starts `hypsogrid serve ARGS` with extra environment `env` (an inherited
+    /// HYPSOGRID_ALLOW_INSECURE_REMOTE is removed, so that only the test decides) and waits for
+    /// its "listening on" line.
+    pub fn start(args: &[&str], env: &[(&str, &str)]) -> ServeChild {
+        let mut cmd = Command::new(BIN);
+        cmd.arg("serve")
+            .args(args)
+            .stdout(Stdio::null())
+            .stderr(Stdio::piped())
+            .env_remove("HYPSOGRID_ALLOW_INSECURE_REMOTE");
+        for (k, v) in env {
+            cmd.env(k, v);
+        }
+        let mut child = cmd.spawn().expect("starting hypsogrid serve");
+        let stderr = child.stderr.take().expect("stderr is piped");
+        let lines = Arc::new(Mutex::new(Vec::new()));
+        let (tx, rx) = mpsc::channel();
+        let keep = Arc::clone(&lines);
+        std::thread::spawn(move || {
+            for line in BufReader::new(stderr).lines().map_while(Result::ok) {
+                if let Some(addr) = line.strip_prefix("listening on ") {
+                    let _ = tx.send(addr.trim().to_string());
+                }
+                keep.lock().unwrap().push(line);
+            }
+        });
+        let address = match rx.recv_timeout(Duration::from_secs(60)) {
+            Ok(a) => a,
+            Err(_) => {
+                let _ = child.kill();
+                panic!(
+                    "the server printed no 'listening on' line:\n{}",
+                    lines.lock().unwrap().join("\n")
+                );
+            }
+        };
+        ServeChild {
+            child,
+            address,
+            stderr: lines,
+        }
+    }
+
+    /// `http://ADDRESS`, for `--server`.
+    pub fn url(&self) -> String {
+        format!("http://{}", self.address)
+    }
+
+    /// The port it listens on.
+    pub fn port(&self) -> u16 {
+        self.address
+            .rsplit(':')
+            .next()
+            .and_then(|p| p.parse().ok())
+            .unwrap_or_else(|| panic!("no port in '{}'", self.address))
+    }
+
+    /// Everything it has written to stderr so far.
+    pub fn log(&self) -> String {
+        self.stderr.lock().unwrap().join("\n")
+    }
+
+    /// Sends a signal.
+    pub fn signal(&self, signal: libc::c_int) {
+        // SAFETY: kill(2) on the pid of a child this test started and has not reaped.
+        let rc = unsafe { libc::kill(self.child.id() as libc::pid_t, signal) };
+        assert_eq!(rc, 0, "sending signal {signal}");
+    }
+
+    /// Sends SIGTERM and returns the exit code and how long the exit took (at most 15 s).
+    pub fn terminate(mut self) -> (Option<i32>, Duration) {
+        self.signal(libc::SIGTERM);
+        let started = Instant::now();
+        loop {
+            if let Some(status) = self.child.try_wait().expect("waiting for the server") {
+                return (status.code(), started.elapsed());
+            }
+            if started.elapsed() > Duration::from_secs(15) {
+                let _ = self.child.kill();
+                panic!(
+                    "the server did not exit within 15 s of SIGTERM:\n{}",
+                    self.log()
+                );
+            }
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+}
+
+impl Drop for ServeChild {
+    fn drop(&mut self) {
+        // Only reached on a failing test (terminate() waits for the child); killing an exited
+        // child is harmless.
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
