@@ -36,6 +36,15 @@ use crate::physics::hypsometric::{
 /// File name [`write_demo_cycle`] writes inside its directory.
 pub const DEMO_FILE_NAME: &str = "hypsogrid_demo_cycle.nc";
 
+/// File name [`write_demo_ensemble`] writes inside its directory.
+pub const DEMO_ENSEMBLE_FILE_NAME: &str = "hypsogrid_demo_ensemble.nc";
+
+/// Members of the invented demo ensemble.
+pub const DEMO_ENSEMBLE_MEMBERS: usize = 10;
+
+/// Lead times of the demo ensemble, hours after its reference time.
+pub const DEMO_ENSEMBLE_LEAD_HOURS: [u32; 3] = [0, 24, 48];
+
 /// Lead times of the demo cycle, hours after its reference time.
 pub const DEMO_LEAD_HOURS: [u32; 7] = [0, 6, 12, 18, 24, 36, 48];
 
@@ -193,8 +202,33 @@ pub fn write_demo_cycle(dir: &Path) -> Result<PathBuf, DemoError> {
             dir: dir.to_path_buf(),
         });
     }
-    let fields = demo_fields();
-    let result = write_demo_file(&path, &fields);
+    write_fields(path, &demo_fields())
+}
+
+/// Writes the invented ensemble of the demo scenario into `dir` and returns its path.
+/// Deterministic.
+///
+/// The same region, levels and variables as [`write_demo_cycle`], with a `realization` axis of
+/// [`DEMO_ENSEMBLE_MEMBERS`] members at lead times [`DEMO_ENSEMBLE_LEAD_HOURS`]: each member
+/// moves the front a little faster or slower and warms or cools the columns a little, both
+/// growing from nothing at the start to their full size at 48 hours, so that the spread grows
+/// with lead time and the rain–snow line is uncertain where the front passes.
+pub fn write_demo_ensemble(dir: &Path) -> Result<PathBuf, DemoError> {
+    let path = dir.join(DEMO_ENSEMBLE_FILE_NAME);
+    if !dir.is_dir() {
+        return Err(DemoError::MissingDirectory {
+            path,
+            dir: dir.to_path_buf(),
+        });
+    }
+    write_fields(
+        path,
+        &demo_fields_for(&DEMO_ENSEMBLE_LEAD_HOURS, &demo_perturbations()),
+    )
+}
+
+fn write_fields(path: PathBuf, fields: &DemoFields) -> Result<PathBuf, DemoError> {
+    let result = write_demo_file(&path, fields);
     if result.is_err() {
         // Never leave a half-written demo behind; the file may not exist, so a failed
         // removal is expected and carries no information.
@@ -465,8 +499,8 @@ fn terrain_height(x: f64, y: f64) -> f64 {
 /// Position of the front in the along-flow coordinate `u` (0 south-west corner, 1 north-east
 /// corner) at a lead time: it starts in the north-east and moves south-west, with a gentle
 /// wave along it.
-fn front_u(x: f64, y: f64, lead_h: f64) -> f64 {
-    FRONT_START_U - FRONT_TRAVEL_U * (lead_h / 48.0)
+fn front_u(x: f64, y: f64, lead_h: f64, shift: f64) -> f64 {
+    FRONT_START_U + shift - FRONT_TRAVEL_U * (lead_h / 48.0)
         + 0.03 * (std::f64::consts::TAU * 1.2 * (x - y) + lead_h / 12.0).sin()
 }
 
@@ -478,19 +512,59 @@ fn along_flow(x: f64, y: f64) -> f64 {
     0.55 * x + 0.45 * y
 }
 
+/// How one member of the invented ensemble departs from the demo's own weather.
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct Perturbation {
+    /// Shift of the front in the along-flow coordinate `u`, growing linearly with lead time
+    /// from zero at the start to this value at 48 hours (positive: the cold air is slower).
+    front_shift: f64,
+    /// Warming of the whole column, K, growing the same way.
+    warmth_k: f64,
+}
+
+impl Perturbation {
+    /// The demo's own weather (the deterministic cycle).
+    const NONE: Perturbation = Perturbation {
+        front_shift: 0.0,
+        warmth_k: 0.0,
+    };
+}
+
+/// The members of the invented ensemble: fronts spread over about ±0.1 in `u` (about
+/// ±150 km) and columns over about ±1.2 K by 48 hours, in a fixed, deterministic pattern.
+fn demo_perturbations() -> Vec<Perturbation> {
+    (0..DEMO_ENSEMBLE_MEMBERS)
+        .map(|m| {
+            let centred = m as f64 - (DEMO_ENSEMBLE_MEMBERS as f64 - 1.0) / 2.0;
+            Perturbation {
+                front_shift: 0.022 * centred,
+                warmth_k: 1.2 * (1.7 * m as f64 + 0.4).sin(),
+            }
+        })
+        .collect()
+}
+
 /// The column inputs of the scenario at one point and lead time.
+#[cfg(test)]
 fn scenario_column(x: f64, y: f64, lead_h: f64) -> ColumnSpec {
+    scenario_member_column(x, y, lead_h, &Perturbation::NONE)
+}
+
+/// The column inputs of one ensemble member at one point and lead time.
+fn scenario_member_column(x: f64, y: f64, lead_h: f64, member: &Perturbation) -> ColumnSpec {
+    let growth = (lead_h / 48.0).clamp(0.0, 1.0);
     let u = along_flow(x, y);
-    let to_cold = u - front_u(x, y, lead_h);
+    let to_cold = u - front_u(x, y, lead_h, member.front_shift * growth);
     // 0 in the mild sector, 1 in the cold air, across a frontal zone about 0.07 wide
     // (about 100 km).
     let cold = 0.5 * (1.0 + (to_cold / 0.07).tanh());
-    let tv_mild = 290.5 - 3.0 * y;
-    let tv_cold = 268.5 - 3.0 * to_cold.clamp(0.0, 1.0);
+    let warmth = member.warmth_k * growth;
+    let tv_mild = 290.5 - 3.0 * y + warmth;
+    let tv_cold = 268.5 - 3.0 * to_cold.clamp(0.0, 1.0) + warmth;
     // Sea-level pressure: higher to the north-west behind the cold air, a low on the front
     // that runs north-eastward along it.
     let s = -0.15 + 0.30 * lead_h / 48.0;
-    let u_low = FRONT_START_U - FRONT_TRAVEL_U * lead_h / 48.0;
+    let u_low = FRONT_START_U + member.front_shift * growth - FRONT_TRAVEL_U * lead_h / 48.0;
     let y_low = u_low - 0.55 * s;
     let x_low = y_low + s;
     let d2 = (x - x_low).powi(2) + (y - y_low).powi(2);
@@ -530,16 +604,24 @@ struct DemoFields {
     longitudes: Vec<f64>,
     /// Levels in file order (top-down), hPa.
     levels_hpa: Vec<f64>,
-    /// `[time][level (file order)][lat][lon]`.
+    /// Lead times, hours.
+    lead_hours: Vec<u32>,
+    /// Ensemble members (1: a deterministic cycle, written without a member axis).
+    members: usize,
+    /// `[member][time][level (file order)][lat][lon]`.
     temperature: Vec<f32>,
     specific_humidity: Vec<f32>,
-    /// `[time][lat][lon]`.
+    /// `[member][time][lat][lon]`.
     surface_pressure: Vec<f32>,
     /// `[lat][lon]`.
     surface_altitude: Vec<f32>,
 }
 
 fn demo_fields() -> DemoFields {
+    demo_fields_for(&DEMO_LEAD_HOURS, &[Perturbation::NONE])
+}
+
+fn demo_fields_for(lead_hours: &[u32], members: &[Perturbation]) -> DemoFields {
     let c = Constants::default();
     let latitudes = demo_latitudes();
     let longitudes = demo_longitudes();
@@ -554,11 +636,16 @@ fn demo_fields() -> DemoFields {
         .iter()
         .map(|&(x, y)| terrain_height(x, y) as f32)
         .collect();
-    let columns: Vec<Column> = DEMO_LEAD_HOURS
+    let steps: Vec<(Perturbation, u32)> = members
+        .iter()
+        .flat_map(|m| lead_hours.iter().map(move |&lead| (*m, lead)))
+        .collect();
+    let columns: Vec<Column> = steps
         .par_iter()
-        .flat_map_iter(|&lead| {
-            xy.iter()
-                .map(move |&(x, y)| Column::build(&scenario_column(x, y, f64::from(lead)), &c))
+        .flat_map_iter(|(member, lead)| {
+            xy.iter().map(move |&(x, y)| {
+                Column::build(&scenario_member_column(x, y, f64::from(*lead), member), &c)
+            })
         })
         .collect();
     let surface_pressure: Vec<f32> = columns.iter().map(|col| col.p_sfc as f32).collect();
@@ -574,6 +661,8 @@ fn demo_fields() -> DemoFields {
         latitudes,
         longitudes,
         levels_hpa,
+        lead_hours: lead_hours.to_vec(),
+        members: members.len(),
         temperature,
         specific_humidity,
         surface_pressure,
@@ -742,15 +831,45 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
                  at 6.5 K/km nearer the ground.",
             ),
             ("caution", caution),
-            ("history", "written by hypsogrid::demo::write_demo_cycle"),
+            ("history", "written by hypsogrid::demo"),
         ],
     )?;
+    if f.members > 1 {
+        add_globals(
+            &mut file,
+            path,
+            &[(
+                "ensemble",
+                "INVENTED ensemble: each member moves the front a little faster or slower and \
+                 warms or cools the columns a little, growing from nothing at the start to \
+                 the full departure at 48 hours.",
+            )],
+        )?;
+    }
     let (times, levels, rows, cols) = (
-        DEMO_LEAD_HOURS.len(),
+        f.lead_hours.len(),
         f.levels_hpa.len(),
         f.latitudes.len(),
         f.longitudes.len(),
     );
+    let ensemble = f.members > 1;
+    if ensemble {
+        file.add_dimension("realization", f.members)
+            .map_err(nc_err(path, "defining dimension 'realization'"))?;
+        let numbers: Vec<i32> = (0..f.members as i32).collect();
+        add_var::<i32>(
+            &mut file,
+            path,
+            "realization",
+            &["realization"],
+            &[
+                ("standard_name", "realization"),
+                ("long_name", "ensemble member number"),
+            ],
+        )?
+        .put_values(&numbers, ..)
+        .map_err(nc_err(path, "writing variable 'realization'"))?;
+    }
     for (name, len) in [
         ("time", times),
         ("pressure_level", levels),
@@ -760,7 +879,7 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
         file.add_dimension(name, len)
             .map_err(nc_err(path, format!("defining dimension '{name}'")))?;
     }
-    let hours: Vec<f64> = DEMO_LEAD_HOURS.iter().map(|&h| f64::from(h)).collect();
+    let hours: Vec<f64> = f.lead_hours.iter().map(|&h| f64::from(h)).collect();
     write_time_axes(&mut file, path, &hours, Some("validity time"))?;
     {
         let mut var = add_var::<f64>(
@@ -797,7 +916,16 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
         var.put_values(values, ..)
             .map_err(nc_err(path, format!("writing variable '{name}'")))?;
     }
-    let dims3 = ["time", "pressure_level", "lat", "lon"];
+    let dims3: &[&str] = if ensemble {
+        &["realization", "time", "pressure_level", "lat", "lon"]
+    } else {
+        &["time", "pressure_level", "lat", "lon"]
+    };
+    let dims2: &[&str] = if ensemble {
+        &["realization", "time", "lat", "lon"]
+    } else {
+        &["time", "lat", "lon"]
+    };
     for (name, standard_name, long_name, units, values) in [
         (
             "air_temp",
@@ -818,7 +946,7 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
             &mut file,
             path,
             name,
-            &dims3,
+            dims3,
             &[
                 ("standard_name", standard_name),
                 ("long_name", long_name),
@@ -836,7 +964,7 @@ fn write_demo_file(path: &Path, f: &DemoFields) -> Result<(), DemoError> {
             &mut file,
             path,
             name,
-            &["time", "lat", "lon"],
+            dims2,
             &[
                 ("standard_name", "surface_air_pressure"),
                 ("long_name", "surface pressure"),
@@ -905,10 +1033,25 @@ fn validate_synthetic(path: &Path, spec: &SyntheticGlobal) -> Result<(), DemoErr
     Ok(())
 }
 
-/// Levels of a synthetic cycle, Pa, bottom-up: evenly spaced in ln p from 1000 to 1 hPa.
+/// The 37 isobaric levels many global producers distribute, hPa, bottom-up.
+const STANDARD_37_LEVELS_HPA: [f64; 37] = [
+    1000.0, 975.0, 950.0, 925.0, 900.0, 875.0, 850.0, 825.0, 800.0, 775.0, 750.0, 700.0, 650.0,
+    600.0, 550.0, 500.0, 450.0, 400.0, 350.0, 300.0, 250.0, 225.0, 200.0, 175.0, 150.0, 125.0,
+    100.0, 70.0, 50.0, 30.0, 20.0, 10.0, 7.0, 5.0, 3.0, 2.0, 1.0,
+];
+
+/// Levels of a synthetic cycle, Pa, bottom-up: for 37 levels the common 37-level set from
+/// 1000 to 1 hPa (so that 1000, 850, 700 and 500 hPa are levels, as on real cycles); for any
+/// other count, evenly spaced in ln p from 1000 to 1 hPa.
 fn synthetic_levels_pa(levels: usize) -> Vec<f64> {
     if levels == 1 {
         return vec![100_000.0];
+    }
+    if levels == STANDARD_37_LEVELS_HPA.len() {
+        return STANDARD_37_LEVELS_HPA
+            .iter()
+            .map(|hpa| hpa * 100.0)
+            .collect();
     }
     (0..levels)
         .map(|k| 100_000.0 * (1.0e-3_f64).powf(k as f64 / (levels - 1) as f64))
