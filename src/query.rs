@@ -28,6 +28,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime};
 
 use ndarray::{s, ArrayView3, Axis};
+use rayon::prelude::*;
 
 use crate::compute::{compute_heights, ColumnScratch, ComputeConfig, ComputeError, StepColumns};
 use crate::grid::{locate, SampleError, Stencil};
@@ -1039,12 +1040,18 @@ fn locate_point(lc: &LoadedCycle, prefix: &str, lat: f64, lon: f64) -> Result<St
 // Area.
 // ---------------------------------------------------------------------------------------------
 
-/// The rows and columns an area query selects, in answer order.
-struct AreaSelection {
-    rows: Vec<usize>,
-    latitudes: Vec<f64>,
-    cols: Vec<usize>,
-    longitudes: Vec<f64>,
+/// The grid rows and columns a box selects, in answer order (north to south, west to east
+/// in the box's frame), thinned by a stride.
+#[derive(Clone, Debug, PartialEq)]
+pub struct AreaSelection {
+    /// Grid row of each answer row.
+    pub rows: Vec<usize>,
+    /// Latitude of each answer row, degrees north.
+    pub latitudes: Vec<f64>,
+    /// Grid column of each answer column.
+    pub cols: Vec<usize>,
+    /// Longitude of each answer column, degrees east in the box's frame.
+    pub longitudes: Vec<f64>,
 }
 
 /// A validated area query.
@@ -1098,8 +1105,14 @@ fn select_longitudes(grid_lons: &[f64], west: f64, east: f64) -> Vec<(f64, usize
     picked
 }
 
-fn plan_area(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaPlan, QueryError> {
-    let b = &q.bbox;
+/// Validates a box and a stride against a cycle's grid and selects its rows and columns,
+/// exactly as an area query does (the products' area answers use it).
+pub fn select_area(
+    lc: &LoadedCycle,
+    bbox: &BoundingBox,
+    stride: usize,
+) -> Result<AreaSelection, QueryError> {
+    let b = bbox;
     for (field, lat) in [("bbox.south", b.south), ("bbox.north", b.north)] {
         check_latitude(field.to_string(), lat)?;
     }
@@ -1114,15 +1127,12 @@ fn plan_area(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaPlan, QueryError> {
             ),
         ));
     }
-    if q.stride == 0 {
+    if stride == 0 {
         return Err(invalid(
             "stride",
             "stride must be at least 1 (1 keeps every grid point)",
         ));
     }
-    check_member(lc, q.member)?;
-    let time = resolve_time(lc, &q.time, "")?;
-    let plans = plan_quantities(lc, &q.quantities, q.allow_extrapolation)?;
 
     let grid = &lc.cycle.grid;
     let mut rows: Vec<(f64, usize)> = grid
@@ -1145,12 +1155,24 @@ fn plan_area(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaPlan, QueryError> {
             ),
         ));
     }
-    let selection = AreaSelection {
-        latitudes: rows.iter().step_by(q.stride).map(|r| r.0).collect(),
-        rows: rows.iter().step_by(q.stride).map(|r| r.1).collect(),
-        longitudes: cols.iter().step_by(q.stride).map(|c| c.2).collect(),
-        cols: cols.iter().step_by(q.stride).map(|c| c.1).collect(),
-    };
+    Ok(AreaSelection {
+        latitudes: rows.iter().step_by(stride).map(|r| r.0).collect(),
+        rows: rows.iter().step_by(stride).map(|r| r.1).collect(),
+        longitudes: cols.iter().step_by(stride).map(|c| c.2).collect(),
+        cols: cols.iter().step_by(stride).map(|c| c.1).collect(),
+    })
+}
+
+/// The time step a selector names, validated against the cycle (the error names `time`).
+pub fn time_index(lc: &LoadedCycle, time: &TimeSelector) -> Result<usize, QueryError> {
+    resolve_time(lc, time, "")
+}
+
+fn plan_area(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaPlan, QueryError> {
+    let selection = select_area(lc, &q.bbox, q.stride)?;
+    check_member(lc, q.member)?;
+    let time = resolve_time(lc, &q.time, "")?;
+    let plans = plan_quantities(lc, &q.quantities, q.allow_extrapolation)?;
     if matches!(lc.cycle.vertical, Vertical::Hybrid { .. }) {
         let columns = selection
             .rows
@@ -1198,6 +1220,76 @@ pub fn area(lc: &LoadedCycle, q: &AreaQuery, limits: &Limits) -> Result<AreaAnsw
         "ask for a smaller box, a larger stride or fewer quantities",
     )?;
     fill_area(lc, q, &plan, 0, nrows)
+}
+
+/// One quantity at every grid point of one (member, time) step, in the file's own row and
+/// column order (the grid's latitudes and longitudes as [`LoadedCycle::cycle`] holds them).
+#[derive(Clone, Debug, PartialEq)]
+pub struct GridField {
+    /// The quantity.
+    pub quantity: Quantity,
+    /// Index of the time step.
+    pub time_index: usize,
+    /// Ensemble member index.
+    pub member: usize,
+    /// Values, geopotential metres, `[row, col]`; `NaN` where masked.
+    pub values: ndarray::Array2<f32>,
+    /// [`FLAG_BELOW_GROUND`] and [`FLAG_MISSING`] bits, `[row, col]`.
+    pub flags: ndarray::Array2<u8>,
+}
+
+/// Answers one quantity at every grid point of member `member`, time step `time_index`, in
+/// the file's order, exactly as an area query answers each point (the products, which work
+/// on whole grids, start here).
+pub fn grid_field(
+    lc: &LoadedCycle,
+    quantity: &Quantity,
+    time_index: usize,
+    member: usize,
+    allow_extrapolation: bool,
+) -> Result<GridField, QueryError> {
+    check_member(lc, member)?;
+    let times = lc.cycle.lead_times_s.len();
+    if time_index >= times {
+        return Err(not_found(
+            "time_index",
+            format!(
+                "time step {time_index} is not in cycle '{}', which has {times} time step{}",
+                lc.id,
+                if times == 1 { "" } else { "s" }
+            ),
+        ));
+    }
+    let plans = plan_quantities(lc, std::slice::from_ref(quantity), allow_extrapolation)?;
+    let (rows, cols) = (lc.cycle.grid.rows(), lc.cycle.grid.cols());
+    let columns = (0..rows).flat_map(|r| (0..cols).map(move |c| (r, c)));
+    check_hybrid_range(lc, &plans, member, time_index, columns, allow_extrapolation)?;
+    let mut values = ndarray::Array2::<f32>::from_elem((rows, cols), f32::NAN);
+    let mut flags = ndarray::Array2::<u8>::zeros((rows, cols));
+    let plans = &plans;
+    let results: Vec<Result<(), QueryError>> = values
+        .axis_iter_mut(Axis(0))
+        .into_par_iter()
+        .zip(flags.axis_iter_mut(Axis(0)).into_par_iter())
+        .enumerate()
+        .map(|(row, (mut v_row, mut f_row))| {
+            let mut ev = Evaluator::new(lc, plans, member, time_index, allow_extrapolation)?;
+            for col in 0..cols {
+                let (v, f) = ev.value(0, row, col);
+                v_row[col] = v as f32;
+                f_row[col] = f;
+            }
+            Ok(())
+        })
+        .collect();
+    results.into_iter().collect::<Result<(), QueryError>>()?;
+    Ok(GridField {
+        quantity: *quantity,
+        time_index,
+        member,
+        values,
+        flags,
+    })
 }
 
 /// Answers rows `[row_start, row_end)` of an area query's rows only (after the stride), so
@@ -1363,7 +1455,9 @@ pub fn position(
         .iter()
         .enumerate()
         .map(|(i, &(lat, lon))| {
-            locate_point(lc, &format!("points[{i}]"), lat, lon)
+            // The field names are built only for an error: thousands of points a call.
+            locate(&lc.cycle.grid, lat, lon)
+                .or_else(|_| locate_point(lc, &format!("points[{i}]"), lat, lon))
                 .map(|st| Corners::new(&st, q.interpolation))
         })
         .collect::<Result<_, _>>()?;
@@ -1376,16 +1470,18 @@ pub fn position(
         .map(|&t| Evaluator::new(lc, &plans, q.member, t, q.allow_extrapolation))
         .collect::<Result<_, _>>()?;
     let nq = plans.len();
+    // Parsed once, not once per sample.
+    let valid: Vec<Option<i64>> = times.iter().map(|&t| lc.valid_time_unix_s(t)).collect();
     let mut out = Vec::with_capacity(q.points.len());
     for (&(latitude, longitude), corner) in q.points.iter().zip(&corners) {
         let mut samples = Vec::with_capacity(times.len());
-        for (&t, ev) in times.iter().zip(evaluators.iter_mut()) {
+        for ((&t, ev), &valid_time_unix_s) in times.iter().zip(evaluators.iter_mut()).zip(&valid) {
             let mut values = vec![0.0; nq];
             let mut flags = vec![0u8; nq];
             ev.sample(corner, &mut values, &mut flags);
             samples.push(Sample {
                 lead_time_s: lc.cycle.lead_times_s[t],
-                valid_time_unix_s: lc.valid_time_unix_s(t),
+                valid_time_unix_s,
                 values,
                 flags,
             });
