@@ -17,5 +17,7 @@ pub mod hybrid;
 pub mod hypsometric;
 /// The U.S. Standard Atmosphere 1976 below 84.852 geopotential kilometres.
 pub mod standard_atmosphere;
+/// Wet-bulb temperature (isobaric, by the psychrometric equation).
+pub mod wetbulb;
 
 pub use constants::Constants;
