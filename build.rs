@@ -7,6 +7,7 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let protos = [
         "proto/hypsogrid/v1/cycle.proto",
         "proto/hypsogrid/v1/service.proto",
+        "proto/hypsogrid/v1/products.proto",
     ];
     for p in &protos {
         println!("cargo:rerun-if-changed={p}");

@@ -15,6 +15,7 @@ pub mod model;
 pub mod netcdf_session;
 pub mod output;
 pub mod physics;
+pub mod products;
 pub mod query;
 pub mod service;
 pub mod store;

@@ -51,16 +51,37 @@ pub enum Method {
     QueryProfile,
     /// `QueryTrajectory`.
     QueryTrajectory,
+    /// `ProductService.GetIsolines`.
+    GetIsolines,
+    /// `ProductService.RenderChart`.
+    RenderChart,
+    /// `ProductService.GetGuidanceArea`.
+    GetGuidanceArea,
+    /// `ProductService.GetGuidancePoints`.
+    GetGuidancePoints,
+    /// `ProductService.GetEnsembleArea`.
+    GetEnsembleArea,
+    /// `ProductService.GetEnsemblePoints`.
+    GetEnsemblePoints,
+    /// `ProductService.Verify`.
+    Verify,
 }
 
 impl Method {
     /// Every method, in label order.
-    pub const ALL: [Method; 5] = [
+    pub const ALL: [Method; 12] = [
         Method::GetCatalogue,
         Method::QueryArea,
         Method::QueryPosition,
         Method::QueryProfile,
         Method::QueryTrajectory,
+        Method::GetIsolines,
+        Method::RenderChart,
+        Method::GetGuidanceArea,
+        Method::GetGuidancePoints,
+        Method::GetEnsembleArea,
+        Method::GetEnsemblePoints,
+        Method::Verify,
     ];
 
     /// The method's name in the protos, used as the `method` label.
@@ -71,6 +92,13 @@ impl Method {
             Method::QueryPosition => "QueryPosition",
             Method::QueryProfile => "QueryProfile",
             Method::QueryTrajectory => "QueryTrajectory",
+            Method::GetIsolines => "GetIsolines",
+            Method::RenderChart => "RenderChart",
+            Method::GetGuidanceArea => "GetGuidanceArea",
+            Method::GetGuidancePoints => "GetGuidancePoints",
+            Method::GetEnsembleArea => "GetEnsembleArea",
+            Method::GetEnsemblePoints => "GetEnsemblePoints",
+            Method::Verify => "Verify",
         }
     }
 

@@ -32,7 +32,8 @@ fn files_in(dir: &Path) -> Vec<String> {
 
 #[test]
 fn demo_prints_the_thickness_table_and_the_caution() {
-    let out = hypsogrid(&[os("demo")]);
+    let dir = tempfile::tempdir().unwrap();
+    let out = hypsogrid(&[os("demo"), os("--keep"), dir.path().as_os_str()]);
     assert!(out.status.success(), "demo failed: {}", stderr(&out));
     let text = String::from_utf8_lossy(&out.stdout);
     for site in hypsogrid::demo::demo_sites() {
@@ -54,6 +55,35 @@ fn demo_prints_the_thickness_table_and_the_caution() {
     // The scenario promises that the critical line crosses the region: some sites are on
     // the cold side at some lead time, and some are not.
     assert!(text.contains('*'), "some values below 5400 m:\n{text}");
+    // The products: a chart, the guidance chart and an isoline file, written where asked,
+    // and the guidance table with its caution.
+    let names = files_in(dir.path());
+    for name in [
+        "thickness_1000_500_24h.png",
+        "precipitation_type_24h.png",
+        "thickness_1000_500_24h.geojson",
+        "hypsogrid_demo_ensemble.nc",
+    ] {
+        assert!(names.iter().any(|n| n == name), "{name} in {names:?}");
+    }
+    let png = std::fs::read(dir.path().join("precipitation_type_24h.png")).unwrap();
+    assert_eq!(
+        &png[..8],
+        b"\x89PNG\r\n\x1a\n",
+        "a PNG file (ISO/IEC 15948 signature)"
+    );
+    let geojson: serde_json::Value = serde_json::from_slice(
+        &std::fs::read(dir.path().join("thickness_1000_500_24h.geojson")).unwrap(),
+    )
+    .unwrap();
+    assert_eq!(geojson["type"], "FeatureCollection");
+    assert!(!geojson["features"].as_array().unwrap().is_empty());
+    assert!(text.contains("Precipitation-type guidance"), "{text}");
+    assert!(text.contains("P(< 5400 m)"), "the ensemble table:\n{text}");
+    assert!(
+        text.contains("licensed forecasters decide"),
+        "the guidance caution:\n{text}"
+    );
 }
 
 #[test]

@@ -142,7 +142,7 @@ fn python_client_checks_health_lists_services_and_queries_catalogue_area_and_pos
     let data = dir.path().to_string_lossy().into_owned();
     // A small message limit, so that the whole-region area comes in several chunks that the
     // client must put back together.
-    let server = Server::start(&data, &["--max-message-bytes", "16KiB"]);
+    let server = Server::start(&data, &["--max-message-bytes", "32KiB"]);
     server.wait_serving();
 
     let out = Command::new(&python)
@@ -195,13 +195,20 @@ fn python_client_checks_health_lists_services_and_queries_catalogue_area_and_pos
         .unwrap_or_else(|| panic!("no chunk count in:\n{stdout}"));
     assert!(
         chunks >= 2,
-        "16 KiB messages split the area: {chunks} chunk(s)"
+        "32 KiB messages split the area: {chunks} chunk(s)"
     );
     assert!(stdout.contains("thickness 1000-500 hPa: min"), "{stdout}");
     assert!(stdout.contains("height 500 hPa: min"), "{stdout}");
     assert!(stdout.contains("position: 2 point(s)"), "{stdout}");
     assert!(stdout.contains("55.4, -42.9: +0h"), "{stdout}");
     assert!(stdout.contains("caution"), "{stdout}");
+    // The product service through the same Python client: guidance at both points (the
+    // demo's mild sector at 55.4 N 42.9 W and the cold north-east at 58.65 N 29.4 W), and a
+    // PNG chart.
+    assert!(stdout.contains("guidance: lead"), "{stdout}");
+    assert!(stdout.contains("55.4, -42.9: "), "{stdout}");
+    assert!(stdout.contains("bytes of PNG"), "{stdout}");
+    assert!(stdout.contains("licensed forecasters decide"), "{stdout}");
 }
 
 #[test]

@@ -32,7 +32,7 @@ import tempfile
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 DEFAULT_PROTO_DIR = os.path.normpath(os.path.join(HERE, "..", "..", "proto"))
-PROTO_FILES = ["hypsogrid/v1/cycle.proto", "hypsogrid/v1/service.proto"]
+PROTO_FILES = ["hypsogrid/v1/cycle.proto", "hypsogrid/v1/service.proto", "hypsogrid/v1/products.proto"]
 
 
 def fail(message):
@@ -219,7 +219,30 @@ def main():
             if len(series.samples) != len(leads):
                 fail(f"position: {len(series.samples)} samples for {len(leads)} lead times")
         print("values in geopotential metres; '~' below ground (extrapolated)")
-        print("caution: guidance from model fields, not a forecast or warning")
+
+        # 5. Products: rain-snow guidance at the same points, and the guidance chart.
+        pp = importlib.import_module("hypsogrid.v1.products_pb2")
+        pr = importlib.import_module("hypsogrid.v1.products_pb2_grpc")
+        products = pr.ProductServiceStub(channel)
+        field = pp.FieldSelection(cycle_id=cycle.id, time=pb.TimeSelection(lead_time_s=lead),
+                                  quantity=quantities[0])
+        guidance = products.GetGuidancePoints(
+            pp.GuidancePointsRequest(field=field, points=points), metadata=metadata, timeout=30)
+        print(f"guidance: lead {lead_label(guidance.field.lead_time_s)}, "
+              f"critical 1000-500 hPa {guidance.thresholds.thickness_1000_500_m:.0f} m")
+        for p in guidance.points:
+            name = pp.PrecipitationType.Name(p.category).removeprefix("PRECIPITATION_TYPE_").lower()
+            print(f"  {p.point.latitude_deg}, {p.point.longitude_deg}: {name} ({p.rule}), "
+                  f"0 degC level {p.freezing_level_m:.0f} m, wet-bulb 0 degC {p.wet_bulb_zero_m:.0f} m")
+        if len(guidance.points) != len(points) or not guidance.caution:
+            fail("guidance: every point answered, with the caution")
+        chart = products.RenderChart(
+            pp.ChartRequest(field=field, kind=pp.CHART_KIND_PRECIPITATION_TYPE, width=400, height=300),
+            metadata=metadata, timeout=60)
+        if not chart.png.startswith(b"\x89PNG\r\n\x1a\n"):
+            fail("chart: the answer is not a PNG")
+        print(f"chart: precipitation-type guidance, {len(chart.png)} bytes of PNG")
+        print(f"caution: {guidance.caution}")
     return 0
 
 

@@ -14,5 +14,5 @@ mkdir -p "$out"
 include="$("$python" -c 'import grpc_tools, os; print(os.path.join(os.path.dirname(grpc_tools.__file__), "_proto"))')"
 "$python" -m grpc_tools.protoc -I"$repo/proto" -I"$include" \
   --python_out="$out" --grpc_python_out="$out" \
-  hypsogrid/v1/cycle.proto hypsogrid/v1/service.proto
+  hypsogrid/v1/cycle.proto hypsogrid/v1/service.proto hypsogrid/v1/products.proto
 echo "stubs written to $out" >&2

@@ -13,7 +13,7 @@ use std::time::Duration;
 use anyhow::{bail, Context, Result};
 
 use hypsogrid::compute::ComputeConfig;
-use hypsogrid::demo::{demo_sites, write_demo_cycle, Site, DEMO_FILE_NAME};
+use hypsogrid::demo::{demo_sites, write_demo_cycle, write_demo_ensemble, Site, DEMO_FILE_NAME};
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::Layer;
 use hypsogrid::pb;
@@ -26,6 +26,8 @@ use super::client::{
 };
 use super::format::lead_label;
 use super::DemoArgs;
+
+mod products;
 
 /// Common-practice rain–snow line for 1000–500 hPa thickness in North American practice
 /// (GUIDE §3); many European offices use about 5280 m. Guidance only.
@@ -51,28 +53,18 @@ const LAYER_850_700: Layer = Layer {
 const FLAG_BELOW_GROUND: u8 = pb::PointFlag::BelowGround as u8;
 
 pub(super) fn run(args: DemoArgs) -> Result<()> {
-    let temp;
-    let dir: PathBuf = match &args.keep {
-        Some(dir) => {
-            std::fs::create_dir_all(dir)
-                .with_context(|| format!("creating folder '{}'", dir.display()))?;
-            dir.clone()
-        }
-        None => {
-            temp = tempfile::tempdir().context("creating a temporary folder for the demo")?;
-            temp.path().to_path_buf()
-        }
-    };
+    let dir: PathBuf = args.keep.clone();
+    std::fs::create_dir_all(&dir)
+        .with_context(|| format!("creating folder '{}'", dir.display()))?;
     let input = write_demo_cycle(&dir)?;
+    let ensemble = write_demo_ensemble(&dir)?;
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()
         .context("starting the async runtime")?;
     let text = runtime.block_on(serve_and_query(dir.clone()))?;
     print!("{text}");
-    if args.keep.is_some() {
-        println!("input:  {}", input.display());
-    }
+    println!("inputs: {} and {}", input.display(), ensemble.display());
     Ok(())
 }
 
@@ -119,7 +111,12 @@ async fn serve_and_query(dir: PathBuf) -> Result<String> {
             let _ = stop_rx.await;
         },
     ));
-    let answer = query(address).await;
+    let answer = match query(address).await {
+        Ok(heights) => products::query(address, &dir)
+            .await
+            .map(|products| format!("{heights}\n{products}")),
+        Err(e) => Err(e),
+    };
     let _ = stop_tx.send(());
     server
         .await

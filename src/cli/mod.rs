@@ -9,6 +9,7 @@ mod client;
 mod compute;
 mod demo;
 mod format;
+mod products;
 mod serve;
 
 use std::path::PathBuf;
@@ -50,18 +51,37 @@ enum Command {
     Trajectory(TrajectoryArgs),
     /// Ask a server whether it is serving; exit 0 only when it is (for container probes).
     Health(HealthArgs),
+    /// Contour lines of a thickness or height field from a file, as RFC 7946 GeoJSON.
+    Isolines(products::IsolinesArgs),
+    /// A PNG chart from a file: thickness or height isolines, or precipitation-type guidance.
+    Chart(products::ChartArgs),
+    /// Rain-snow guidance from a file: partial thicknesses, freezing levels, categories.
+    Guidance(products::GuidanceArgs),
+    /// Ensemble mean, spread and threshold probabilities from a file with members.
+    Ensemble(products::EnsembleArgs),
+    /// Scores of a forecast file against an analysis file, or of a file against its own
+    /// heights: bias, RMSE, MAE, SD, correlation per level and region.
+    Verify(products::VerifyArgs),
 }
 
-/// Settings shared by every command that reads a cycle.
+/// Settings of `compute`: how to read the cycle and which layers to write.
 #[derive(Debug, Args)]
 pub(crate) struct ReadArgs {
+    #[command(flatten)]
+    dataset: DatasetArgs,
+    /// Layers for thickness, as BOTTOM:TOP in hPa, comma separated.
+    #[arg(long, value_delimiter = ',', default_value = "1000:500,1000:850,850:700", value_parser = parse_layer)]
+    layers: Vec<Layer>,
+}
+
+/// How to read a cycle from a file and compute its heights; shared by every command that
+/// reads a file itself.
+#[derive(Debug, Args)]
+pub(crate) struct DatasetArgs {
     /// Dataset config (TOML): variable names for files without CF standard names, the
     /// producer's constants, the relative-humidity phase convention.
     #[arg(long, value_name = "FILE")]
     config: Option<PathBuf>,
-    /// Layers for thickness, as BOTTOM:TOP in hPa, comma separated.
-    #[arg(long, value_delimiter = ',', default_value = "1000:500,1000:850,850:700", value_parser = parse_layer)]
-    layers: Vec<Layer>,
     /// Without surface fields: anchor columns to the file's height at the lowest level
     /// (`lowest`), at a given level in hPa (`500`), or to the standard atmosphere (`standard`).
     #[arg(long, default_value = "lowest", value_parser = parse_reference)]
@@ -82,19 +102,44 @@ enum Saturation {
 
 impl ReadArgs {
     fn ingest_config(&self) -> Result<IngestConfig> {
+        self.dataset.ingest_config()
+    }
+
+    fn compute_config(&self, ingest: &IngestConfig) -> ComputeConfig {
+        ComputeConfig {
+            layers: self.layers.clone(),
+            ..self.dataset.compute_config(ingest)
+        }
+    }
+}
+
+impl DatasetArgs {
+    fn ingest_config(&self) -> Result<IngestConfig> {
         Ok(match &self.config {
             Some(path) => load_config(path)?,
             None => IngestConfig::default(),
         })
     }
 
+    /// The compute settings, with no layers (products ask for their own).
     fn compute_config(&self, ingest: &IngestConfig) -> ComputeConfig {
         ComputeConfig {
-            layers: self.layers.clone(),
+            layers: Vec::new(),
             no_surface_reference: self.reference,
             saturation_formula: self.saturation.formula(),
             rh_phase: ingest.rh_phase,
         }
+    }
+
+    /// Reads a cycle and computes its heights on every level, as the server does on load.
+    fn load(&self, path: &std::path::Path) -> Result<hypsogrid::query::LoadedCycle> {
+        let ingest = self.ingest_config()?;
+        let compute = self.compute_config(&ingest);
+        let lc = hypsogrid::query::LoadedCycle::load(path, &ingest, &compute)?;
+        for note in &lc.cycle.notes {
+            tracing::info!("{}: {note}", path.display());
+        }
+        Ok(lc)
     }
 }
 
@@ -123,9 +168,9 @@ struct ComputeArgs {
 
 #[derive(Debug, Args)]
 struct DemoArgs {
-    /// Keep the generated input and output files in this folder instead of a temporary one.
-    #[arg(long, value_name = "DIR")]
-    keep: Option<PathBuf>,
+    /// Folder for the generated cycles and the products (charts, isoline GeoJSON)
+    #[arg(long, value_name = "DIR", default_value = "hypsogrid-demo")]
+    keep: PathBuf,
 }
 
 /// Settings of `hypsogrid serve`. Each setting can also come from an environment variable
@@ -372,6 +417,11 @@ pub(crate) fn run(cli: Cli) -> Result<()> {
         Command::Profile(args) => client::profile(args),
         Command::Trajectory(args) => client::trajectory(args),
         Command::Health(args) => client::health(args),
+        Command::Isolines(args) => products::isolines(args),
+        Command::Chart(args) => products::chart(args),
+        Command::Guidance(args) => products::guidance(args),
+        Command::Ensemble(args) => products::ensemble(args),
+        Command::Verify(args) => products::verify(args),
     }
 }
 

@@ -56,8 +56,8 @@ pub struct HeightServiceHandlers {
 }
 
 /// What a call holds for its whole life.
-struct Call {
-    snapshot: Arc<Snapshot>,
+pub(super) struct Call {
+    pub(super) snapshot: Arc<Snapshot>,
     /// When the call must have answered.
     deadline: Instant,
     /// The time budget the deadline came from, for the error message.
@@ -89,8 +89,13 @@ impl HeightServiceHandlers {
         &self.store
     }
 
+    /// The settings the handlers work with.
+    pub fn settings(&self) -> &HandlerSettings {
+        &self.settings
+    }
+
     /// The common start of every call.
-    fn begin(&self, metadata: &MetadataMap) -> Result<Call, Status> {
+    pub(super) fn begin(&self, metadata: &MetadataMap) -> Result<Call, Status> {
         if let Some(tokens) = &self.settings.tokens {
             tokens.check(metadata)?;
         }
@@ -348,7 +353,7 @@ impl HeightService for HeightServiceHandlers {
 }
 
 /// The cycle a request names in the snapshot it holds; empty selects the newest.
-fn find_cycle(snapshot: &Snapshot, id: &str) -> Result<Arc<LoadedCycle>, Status> {
+pub(super) fn find_cycle(snapshot: &Snapshot, id: &str) -> Result<Arc<LoadedCycle>, Status> {
     match snapshot.find(id) {
         Some(c) => {
             Span::current().record("cycle_id", c.id.as_str());
@@ -362,7 +367,7 @@ fn find_cycle(snapshot: &Snapshot, id: &str) -> Result<Arc<LoadedCycle>, Status>
 }
 
 /// Runs CPU work on a blocking thread, within the call's deadline.
-async fn blocking<R: Send + 'static>(
+pub(super) async fn blocking<R: Send + 'static>(
     call: &Call,
     work: impl FnOnce() -> R + Send + 'static,
 ) -> Result<R, Status> {
@@ -383,7 +388,10 @@ async fn blocking<R: Send + 'static>(
 }
 
 /// Records the end of a unary call on its span and logs it.
-fn finish<T: Message>(started: Instant, result: Result<T, Status>) -> Result<Response<T>, Status> {
+pub(super) fn finish<T: Message>(
+    started: Instant,
+    result: Result<T, Status>,
+) -> Result<Response<T>, Status> {
     let span = Span::current();
     match result {
         Ok(message) => {

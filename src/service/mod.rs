@@ -28,6 +28,8 @@ pub mod auth;
 pub mod convert;
 /// The RPC handlers.
 pub mod handlers;
+/// The product RPCs: isolines, charts, guidance, ensembles, verification.
+pub mod products;
 /// Errors to `tonic::Status`, in one place.
 pub mod status;
 
@@ -262,6 +264,9 @@ pub async fn serve_on(
         .concurrency_limit_per_connection(config.max_concurrent_requests)
         .load_shed(true);
 
+    let products = crate::pb::product_service_server::ProductServiceServer::new(handlers.clone())
+        .max_decoding_message_size(config.max_message_bytes)
+        .max_encoding_message_size(config.max_message_bytes);
     let service = HeightServiceServer::new(handlers)
         .max_decoding_message_size(config.max_message_bytes)
         .max_encoding_message_size(config.max_message_bytes);
@@ -280,7 +285,8 @@ pub async fn serve_on(
         .add_service(health_service)
         .add_service(reflection_v1)
         .add_service(reflection_v1alpha)
-        .add_service(service);
+        .add_service(service)
+        .add_service(products);
     // TCP_NODELAY: without it Nagle's algorithm holds each small response for the peer's
     // delayed ACK, about 40 ms a request even on loopback.
     let incoming = tonic::transport::server::TcpIncoming::from(listener).with_nodelay(Some(true));
@@ -399,6 +405,101 @@ impl HeightService for Metered {
         let started = Instant::now();
         let result = self.inner.query_trajectory(request).await;
         self.record(Method::QueryTrajectory, started, &result);
+        result
+    }
+}
+
+/// The product service, counted the same way as the height service.
+#[tonic::async_trait]
+impl crate::pb::product_service_server::ProductService for Metered {
+    async fn get_isolines(
+        &self,
+        request: Request<pb::IsolinesRequest>,
+    ) -> Result<Response<pb::IsolinesResponse>, Status> {
+        let started = Instant::now();
+        let result =
+            crate::pb::product_service_server::ProductService::get_isolines(&self.inner, request)
+                .await;
+        self.record(Method::GetIsolines, started, &result);
+        result
+    }
+
+    async fn render_chart(
+        &self,
+        request: Request<pb::ChartRequest>,
+    ) -> Result<Response<pb::ChartResponse>, Status> {
+        let started = Instant::now();
+        let result =
+            crate::pb::product_service_server::ProductService::render_chart(&self.inner, request)
+                .await;
+        self.record(Method::RenderChart, started, &result);
+        result
+    }
+
+    async fn get_guidance_area(
+        &self,
+        request: Request<pb::GuidanceAreaRequest>,
+    ) -> Result<Response<pb::GuidanceAreaResponse>, Status> {
+        let started = Instant::now();
+        let result = crate::pb::product_service_server::ProductService::get_guidance_area(
+            &self.inner,
+            request,
+        )
+        .await;
+        self.record(Method::GetGuidanceArea, started, &result);
+        result
+    }
+
+    async fn get_guidance_points(
+        &self,
+        request: Request<pb::GuidancePointsRequest>,
+    ) -> Result<Response<pb::GuidancePointsResponse>, Status> {
+        let started = Instant::now();
+        let result = crate::pb::product_service_server::ProductService::get_guidance_points(
+            &self.inner,
+            request,
+        )
+        .await;
+        self.record(Method::GetGuidancePoints, started, &result);
+        result
+    }
+
+    async fn get_ensemble_area(
+        &self,
+        request: Request<pb::EnsembleAreaRequest>,
+    ) -> Result<Response<pb::EnsembleAreaResponse>, Status> {
+        let started = Instant::now();
+        let result = crate::pb::product_service_server::ProductService::get_ensemble_area(
+            &self.inner,
+            request,
+        )
+        .await;
+        self.record(Method::GetEnsembleArea, started, &result);
+        result
+    }
+
+    async fn get_ensemble_points(
+        &self,
+        request: Request<pb::EnsemblePointsRequest>,
+    ) -> Result<Response<pb::EnsemblePointsResponse>, Status> {
+        let started = Instant::now();
+        let result = crate::pb::product_service_server::ProductService::get_ensemble_points(
+            &self.inner,
+            request,
+        )
+        .await;
+        self.record(Method::GetEnsemblePoints, started, &result);
+        result
+    }
+
+    async fn verify(
+        &self,
+        request: Request<pb::VerifyRequest>,
+    ) -> Result<Response<pb::VerifyResponse>, Status> {
+        let started = Instant::now();
+        let result =
+            crate::pb::product_service_server::ProductService::verify(&self.inner, request).await;
+        self.record(Method::Verify, started, &result);
         result
     }
 }

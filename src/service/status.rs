@@ -11,6 +11,7 @@ use tonic::{Code, Status};
 
 use super::auth::AuthFailure;
 use super::convert::FieldError;
+use crate::products::ProductError;
 use crate::query::QueryError;
 
 /// Which request a domain error came from, to spell its field names as that request's wire
@@ -150,6 +151,146 @@ pub fn busy(limit: usize) -> Status {
 /// The server failed on its own account (a computation panicked); not a client mistake.
 pub fn internal(what: &str) -> Status {
     Status::internal(format!("server: {what}"))
+}
+
+/// A product error as a status. `field` is the wire path of the request's field selection
+/// (`field` in most product requests; empty when the request names the cycle at top level),
+/// to which query errors about the quantity, time and member are attached.
+pub fn product_error(e: ProductError, selection: &str) -> Status {
+    use crate::products::chart::ChartError;
+    use crate::products::ensemble::EnsembleError;
+    use crate::products::guidance::GuidanceError;
+    use crate::products::isolines::IsolineError;
+    use crate::products::verify::VerifyError;
+    let within = |name: &str| {
+        if selection.is_empty() {
+            name.to_string()
+        } else {
+            format!("{selection}.{name}")
+        }
+    };
+    let query = |q: QueryError| -> Status {
+        let (code, field, message) = match q {
+            QueryError::InvalidArgument { field, message } => {
+                (Code::InvalidArgument, field, message)
+            }
+            QueryError::NotFound { field, message } => (Code::NotFound, field, message),
+            QueryError::OutOfRange { field, message } => (Code::OutOfRange, field, message),
+            QueryError::ResourceExhausted { field, message } => {
+                (Code::ResourceExhausted, field, message)
+            }
+        };
+        // The domain names the single quantity of a product `quantities[0]`; the wire
+        // names it `quantity` inside the selection.
+        let field = match field.strip_prefix("quantities[0]") {
+            Some(rest) => within(&format!("quantity{rest}")),
+            None if field.starts_with("bbox") => wire_field(&field, Rpc::Area),
+            None if field.starts_with("points") => wire_field(&field, Rpc::Position),
+            None if field.is_empty() => within("quantity"),
+            None => within(&wire_field(&field, Rpc::Area)),
+        };
+        Status::new(code, format!("{field}: {message}"))
+    };
+    let isolines = |e: IsolineError| -> Status {
+        let message = e.to_string();
+        match e {
+            IsolineError::BadLevel { index, .. } => {
+                Status::invalid_argument(format!("values[{index}]: {message}"))
+            }
+            IsolineError::BadInterval { .. } | IsolineError::TooManyLevels { .. } => {
+                Status::invalid_argument(format!("interval: {message}"))
+            }
+            IsolineError::BadBase { .. } => Status::invalid_argument(format!("base: {message}")),
+            IsolineError::ShapeMismatch { .. }
+            | IsolineError::TooSmall { .. }
+            | IsolineError::BadAxis { .. }
+            | IsolineError::NotGlobal { .. } => Status::failed_precondition(format!(
+                "{}: the cycle's grid cannot be contoured: {message}",
+                within("cycle_id")
+            )),
+        }
+    };
+    match e {
+        ProductError::Query(q) => query(q),
+        ProductError::Isolines(i) => isolines(i),
+        ProductError::Chart(c) => {
+            let message = c.to_string();
+            match c {
+                ChartError::Isolines(i) => isolines(i),
+                ChartError::Size { .. } | ChartError::NoRoomForMap { .. } => {
+                    Status::invalid_argument(format!("width: {message}"))
+                }
+                ChartError::BadCritical { .. } => {
+                    Status::invalid_argument(format!("critical: {message}"))
+                }
+                ChartError::ClassShape { .. }
+                | ChartError::UnknownClass { .. }
+                | ChartError::TooManyCategories { .. }
+                | ChartError::Encode(_) => {
+                    tracing::error!(error = %message, "chart drawing failed");
+                    internal("the chart could not be drawn; the server log has details")
+                }
+            }
+        }
+        ProductError::Guidance(g) => {
+            let message = g.to_string();
+            match g {
+                GuidanceError::Setting { field, .. } => {
+                    Status::invalid_argument(format!("thresholds.{field}: {message}"))
+                }
+                GuidanceError::Member { .. } => {
+                    Status::not_found(format!("{}: {message}", within("member")))
+                }
+                GuidanceError::TimeIndex { .. } => {
+                    Status::not_found(format!("{}: {message}", within("time")))
+                }
+                GuidanceError::Position(_) => Status::out_of_range(format!("points: {message}")),
+                GuidanceError::Compute(_) => {
+                    Status::failed_precondition(format!("{}: {message}", within("cycle_id")))
+                }
+                GuidanceError::SettingsToml { .. } => {
+                    tracing::error!(error = %message, "guidance settings");
+                    internal(
+                        "the server's guidance settings are unusable; the server log has details",
+                    )
+                }
+            }
+        }
+        ProductError::Ensemble(e) => {
+            let message = e.to_string();
+            match e {
+                EnsembleError::Deterministic { .. } => {
+                    Status::failed_precondition(format!("{}: {message}", within("cycle_id")))
+                }
+                EnsembleError::BadThreshold { .. } | EnsembleError::NoStatistic => {
+                    Status::invalid_argument(message)
+                }
+                EnsembleError::Query { source, .. } => query(source),
+            }
+        }
+        ProductError::Verify(v) => {
+            let message = v.to_string();
+            match v {
+                VerifyError::TimeMismatch { .. } => {
+                    Status::failed_precondition(format!("analysis_cycle_id: {message}"))
+                }
+                VerifyError::TimeNotFound { .. } => {
+                    Status::not_found(format!("lead_time_s: {message}"))
+                }
+                VerifyError::MemberNotFound { .. } => {
+                    Status::not_found(format!("member: {message}"))
+                }
+                VerifyError::NoFileHeights { .. } | VerifyError::NoDefaultItems { .. } => {
+                    Status::failed_precondition(format!("analysis_cycle_id: {message}"))
+                }
+                VerifyError::ItemNotOnLevels { index, .. } => {
+                    Status::invalid_argument(format!("quantities[{index}]: {message}"))
+                }
+                VerifyError::BadRegion { .. } => Status::invalid_argument(message),
+                VerifyError::Query { source, .. } => query(source),
+            }
+        }
+    }
 }
 
 #[cfg(test)]
