@@ -59,12 +59,16 @@ struct Args {
     #[arg(
         long,
         conflicts_with = "serve_demo",
-        required_unless_present = "serve_demo"
+        required_unless_present_any = ["serve_demo", "serve_synthetic"]
     )]
     target: Option<String>,
     /// Start an in-process server on the invented demo cycle and measure it.
-    #[arg(long)]
+    #[arg(long, conflicts_with = "serve_synthetic")]
     serve_demo: bool,
+    /// Start an in-process server on a synthetic 0.5° global cycle (361 × 720 points, 37
+    /// levels; large enough for 200 × 200 areas) and measure it.
+    #[arg(long, conflicts_with = "target")]
+    serve_synthetic: bool,
     /// Concurrent clients, each with its own connection (1-512).
     #[arg(long, default_value_t = 16)]
     clients: usize,
@@ -485,14 +489,38 @@ struct DemoServer {
     _dir: tempfile::TempDir,
 }
 
-async fn serve_demo() -> anyhow::Result<DemoServer> {
+/// Which cycle an in-process server holds.
+#[derive(Clone, Copy, Debug)]
+enum LocalCycle {
+    /// The invented demo scenario (49 × 81 points).
+    Demo,
+    /// A synthetic 0.5° global cycle, one time step.
+    SyntheticGlobal,
+}
+
+async fn serve_local(which: LocalCycle) -> anyhow::Result<DemoServer> {
     use hypsogrid::compute::ComputeConfig;
     use hypsogrid::ingest::IngestConfig;
     use hypsogrid::store::{CycleStore, StoreConfig};
     use hypsogrid::watch::{scan_once, WatchConfig, WatchState};
 
     let dir = tempfile::tempdir().context("temporary data folder")?;
-    hypsogrid::demo::write_demo_cycle(dir.path()).context("writing the demo cycle")?;
+    match which {
+        LocalCycle::Demo => {
+            hypsogrid::demo::write_demo_cycle(dir.path()).context("writing the demo cycle")?;
+        }
+        LocalCycle::SyntheticGlobal => {
+            let spec = hypsogrid::demo::SyntheticGlobal {
+                rows: 361,
+                cols: 720,
+                levels: 37,
+                times: 1,
+                deflate_level: None,
+            };
+            hypsogrid::demo::write_synthetic_global(&dir.path().join("synthetic_0p5.nc"), &spec)
+                .context("writing the synthetic global cycle")?;
+        }
+    }
     let store = Arc::new(CycleStore::new(StoreConfig::default()));
     // The file was written just now and completely: no need to wait for it to settle.
     let watch = WatchConfig {
@@ -607,14 +635,16 @@ async fn run(args: Args) -> anyhow::Result<bool> {
     }
     let mix = Arc::new(parse_mix(&args.mix)?);
     let demo = if args.serve_demo {
-        Some(serve_demo().await?)
+        Some(serve_local(LocalCycle::Demo).await?)
+    } else if args.serve_synthetic {
+        Some(serve_local(LocalCycle::SyntheticGlobal).await?)
     } else {
         None
     };
     let addr = match (&demo, &args.target) {
         (Some(d), _) => d.addr,
         (None, Some(t)) => loopback_target(t)?,
-        (None, None) => bail!("give --target HOST:PORT or --serve-demo"),
+        (None, None) => bail!("give --target HOST:PORT, --serve-demo or --serve-synthetic"),
     };
     let first = connect(addr).await?;
     let plan = fetch_plan(
