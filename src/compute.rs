@@ -1,13 +1,17 @@
 //! The grid kernel: heights and layer thickness for every column of a cycle, in parallel.
 //!
-//! Work is split by latitude row (rayon), each row walks its columns with one reused
-//! [`ColumnNodes`] scratch buffer, so the inner loop allocates nothing. Fields are `f32`;
-//! every column is gathered into `f64`, integrated in `f64`, and scattered back as `f32`.
-//! A missing input masks what depends on it in that column only: nothing crosses columns.
+//! [`compute_heights`] sends the common case (isobaric levels, surface fields, specific
+//! humidity, mixing ratio or none) to the row-wise [`crate::kernel::IsobaricKernel`], and
+//! everything else to the column path here, [`compute_heights_by_columns`]: work split by
+//! latitude row (rayon), each row walking its columns with one reused [`ColumnNodes`]
+//! scratch buffer, so the inner loop allocates nothing. Fields are `f32`; every column is
+//! gathered into `f64`, integrated in `f64`, and scattered back as `f32`. On both paths a
+//! missing input masks what depends on it in that column only: nothing crosses columns.
 
 use ndarray::{s, Array5, ArrayView2, ArrayView3, ArrayViewMut2, Axis};
 use rayon::prelude::*;
 
+use crate::kernel::IsobaricKernel;
 use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
 use crate::physics::column::{thickness_between, ColumnAnchor, ColumnNodes};
 use crate::physics::humidity::{
@@ -85,11 +89,37 @@ pub enum ComputeError {
 /// missing from the file), then per column [`ColumnNodes::isobaric`] or
 /// [`ColumnNodes::hybrid`] (constant-lapse-rate layers; Simmons & Burridge 1981 on hybrid
 /// levels), and thickness by [`thickness_between`] on the same column.
+///
+/// Isobaric cycles with surface fields and specific humidity, mixing ratio or no humidity
+/// (the common case) run the row-wise [`crate::kernel::IsobaricKernel`], which gives the
+/// same answers as the column path to well within a millimetre and several times faster;
+/// everything else runs [`compute_heights_by_columns`].
 pub fn compute_heights(
     cycle: &Cycle,
     config: &ComputeConfig,
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Heights, ComputeError> {
+    check_layers(config)?;
+    let kernel = match IsobaricKernel::new(cycle, &config.layers) {
+        Ok(kernel) => kernel,
+        Err(_) => return compute_heights_by_columns(cycle, config, progress),
+    };
+    // Same validation as the column path (a cycle with surface fields always resolves).
+    let reference = StepColumns::new(cycle, config, 0, 0)?.reference;
+    match kernel.run(cycle, progress) {
+        Ok(out) => Ok(Heights {
+            geopotential_height: out.geopotential_height,
+            below_ground: out.below_ground,
+            thickness: out.thickness,
+            constants: cycle.constants,
+            method: method_sentence(cycle, reference),
+        }),
+        // Not reached: the kernel was prepared for this very cycle.
+        Err(_) => compute_heights_by_columns(cycle, config, progress),
+    }
+}
+
+fn check_layers(config: &ComputeConfig) -> Result<(), ComputeError> {
     for layer in &config.layers {
         let ordered =
             layer.bottom_pa.partial_cmp(&layer.top_pa) == Some(std::cmp::Ordering::Greater);
@@ -100,6 +130,19 @@ pub fn compute_heights(
             });
         }
     }
+    Ok(())
+}
+
+/// [`compute_heights`] on the column path for every cycle: each column is gathered, built
+/// with [`StepColumns::build`] and interpolated with [`thickness_between`]. It is the
+/// reference the fast kernel is tested against, and the path for hybrid levels, relative
+/// humidity, dewpoint and cycles without surface fields.
+pub fn compute_heights_by_columns(
+    cycle: &Cycle,
+    config: &ComputeConfig,
+    progress: &(dyn Fn(usize) + Sync),
+) -> Result<Heights, ComputeError> {
+    check_layers(config)?;
     let (members, times, levels, rows, cols) = cycle.temperature.dim();
     // Validates the cycle against the settings once, before any allocation.
     let reference = StepColumns::new(cycle, config, 0, 0)?.reference;

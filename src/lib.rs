@@ -10,6 +10,7 @@ pub mod compute;
 pub mod demo;
 pub mod grid;
 pub mod ingest;
+pub mod kernel;
 pub mod metrics;
 pub mod model;
 pub mod netcdf_session;

@@ -1,0 +1,1199 @@
+//! The fast batch kernel for the common case: isobaric levels, heights tied to the surface,
+//! humidity as specific humidity, mixing ratio or none.
+//!
+//! [`crate::compute::compute_heights`] dispatches here when [`IsobaricKernel::new`] accepts
+//! the cycle; everything else (hybrid levels, relative humidity, dewpoint, cycles without
+//! surface fields) stays on the column path of [`crate::physics::column::ColumnNodes`].
+//!
+//! # Why it is fast
+//! The column path gathers one column at a time across 37 level planes that lie megabytes
+//! apart. Here a latitude row is walked level by level instead: for each level the inner
+//! loop runs over the row's contiguous columns, reading temperature and humidity once and
+//! writing each height once, with no branch in the loop (the per-column surface level is a
+//! select), so that the compiler turns it into SIMD lanes. Each column's running height,
+//! virtual temperature and surface values live in small per-thread row buffers (a few
+//! kilobytes per row, in L1/L2). The logarithms of the level pressures and of their ratios are
+//! taken once per cycle, and the logarithmic mean of each layer needs no logarithm at all
+//! ([`logarithmic_mean_by_series`]). Rows run in parallel with rayon.
+//!
+//! # Where the time goes
+//! At 0.25° (721 x 1440 x 37) the outputs are 154 MB of heights and 38 MB of flags in fresh
+//! allocations, and touching fresh pages costs about as much as the arithmetic on a virtual
+//! machine with 4 KiB pages (see `benches/kernel.rs`, which also times a memory-floor pass
+//! that only reads temperature and humidity and writes one value per point-level). With
+//! glibc, `GLIBC_TUNABLES=glibc.malloc.hugetlb=1` in the environment of the process lets
+//! large allocations use transparent huge pages where the kernel allows them (`madvise`
+//! mode), which removes most of that cost.
+//!
+//! # Same answers as the column path
+//! The arithmetic is that of [`crate::physics::column::ColumnNodes::isobaric`] step for step
+//! (accumulation in `f64`, storage in `f32`): the surface virtual temperature is that of the
+//! lowest level above ground extrapolated to the surface pressure at 6.5 K/km; levels below
+//! ground follow that 6.5 K/km polytrope from the surface and are flagged; a level exactly at
+//! the surface pressure has the surface height and is not below ground; a missing (or not
+//! finite and positive) virtual temperature above ground masks that level and every level
+//! above it; a missing surface value, or a surface above the top level, masks the column.
+//! The two paths differ only by rounding in the last bits of `f64`, far below a millimetre;
+//! `tests/kernel.rs` checks them against each other column by column.
+
+use ndarray::{
+    s, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2, Axis,
+};
+use rayon::prelude::*;
+
+use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Vertical};
+use crate::physics::constants::STANDARD_LAPSE_RATE;
+use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
+
+/// Largest `|u| = |Tv1 − Tv2| / (Tv1 + Tv2)` for which the kernel trusts
+/// [`logarithmic_mean_by_series`]; layers beyond it (a 22 % jump in virtual temperature
+/// between adjacent levels, which no real atmosphere has) are recomputed with
+/// [`logarithmic_mean_temperature`].
+pub const SERIES_LIMIT: f64 = 0.1;
+
+/// `1 / (2j + 1)` for `j = 1..=7`: the coefficients of `artanh(u)/u` in powers of `u²`.
+const ATANH_COEFFS: [f64; 7] = [
+    1.0 / 3.0,
+    1.0 / 5.0,
+    1.0 / 7.0,
+    1.0 / 9.0,
+    1.0 / 11.0,
+    1.0 / 13.0,
+    1.0 / 15.0,
+];
+
+/// Logarithmic mean of two virtual temperatures without a logarithm, by the series of artanh.
+///
+/// # Units
+/// - `t1`, `t2`: K, finite and positive
+/// - returns: K
+///
+/// # Method
+/// With `u = (t1 − t2)/(t1 + t2)`, `ln(t1/t2) = 2 artanh u`, so the logarithmic mean is
+/// `(t1 − t2)/ln(t1/t2) = ((t1 + t2)/2) / S(u²)` with
+/// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1) = 1 + s/3 + s²/5 + s³/7 + …`.
+/// The sum is kept to `j = 7` (the `s⁷/15` term), evaluated by Estrin's scheme.
+///
+/// Truncation bound: every omitted coefficient is at most 1/17, so the remainder is
+/// `R = Σ_{j≥8} s^j/(2j + 1) ≤ (s⁸/17) Σ_{i≥0} s^i = s⁸ / (17 (1 − s))`. For
+/// `|u| ≤ SERIES_LIMIT = 0.1`, `s ≤ 0.01` and `R ≤ 1e-16 / 16.83 < 6.0e-18`; since `S ≥ 1`,
+/// that is also the relative error of `S` and of the mean, below half an ulp of `f64`
+/// (1.1e-16). Adjacent isobaric levels of real atmospheres have `|u|` below about 0.05
+/// (30 K across a layer near 250 K), where `R < 4e-23`. Outside the limit the function
+/// still answers, with relative error below `s⁸ / (17 (1 − s))`, and `t1 = t2` gives `t1`
+/// exactly. Inputs that are not finite and positive give meaningless values: the kernel
+/// turns such virtual temperatures into `NaN` first.
+///
+/// # References
+/// Wallace, J. M. and Hobbs, P. V. (2006), *Atmospheric Science*, 2nd ed., §3.2 (the mean
+/// virtual temperature of a layer); the series of artanh, Abramowitz, M. and Stegun, I. A.
+/// (1964), *Handbook of Mathematical Functions*, 4.6.33 (from memory).
+#[inline(always)]
+pub fn logarithmic_mean_by_series(t1: f64, t2: f64) -> f64 {
+    let sum = t1 + t2;
+    let u = (t1 - t2) / sum;
+    0.5 * sum / atanh_over_u(u * u)
+}
+
+/// `artanh(u)/u` as the series `Σ_{j=0}^{7} s^j/(2j + 1)` in `s = u²` (bound in
+/// [`logarithmic_mean_by_series`]).
+///
+/// Evaluated by Estrin's scheme (pairs of terms combined with `s²` and `s⁴`) rather than
+/// Horner's rule: the same polynomial with a dependency chain of three multiply-add steps
+/// instead of seven, which lets the processor overlap more columns (the rounding differs
+/// from Horner's by an ulp or so).
+#[inline(always)]
+fn atanh_over_u(s: f64) -> f64 {
+    let c = &ATANH_COEFFS;
+    let s2 = s * s;
+    let s4 = s2 * s2;
+    let low = (1.0 + c[0] * s) + s2 * (c[1] + c[2] * s);
+    let high = (c[3] + c[4] * s) + s2 * (c[5] + c[6] * s);
+    low + s4 * high
+}
+
+/// Largest `|x|` for which [`exp_by_series`] is used in the surface set-up.
+///
+/// `x = κ ln(p_s/p_k0)` with `κ = R_d Γ/g0 ≈ 0.190` and `p_s/p_k0 ≤ 11/9` (the range of
+/// [`SERIES_LIMIT`] for the ratio), so `|x| ≤ 0.0382` for the usual constants.
+const EXP_LIMIT: f64 = 0.04;
+
+/// `e^x` by its Taylor series to `x⁸/8!`, for `|x| ≤ EXP_LIMIT`.
+///
+/// Truncation: the remainder is at most `|x|⁹/9! · e^{|x|}`, which for `|x| ≤ 0.04` is
+/// below `0.04⁹ / 362880 · 1.05 < 8e-19`, and `e^x ≥ 0.96` there: relative error below
+/// 1e-18, under half an ulp of `f64` (Abramowitz and Stegun 1964, 4.2.1 and 4.2.3, the
+/// series and its remainder, from memory).
+#[inline(always)]
+fn exp_by_series(x: f64) -> f64 {
+    const C: [f64; 8] = [
+        1.0 / 2.0,
+        1.0 / 6.0,
+        1.0 / 24.0,
+        1.0 / 120.0,
+        1.0 / 720.0,
+        1.0 / 5040.0,
+        1.0 / 40320.0,
+        1.0,
+    ];
+    1.0 + x
+        * (C[7]
+            + x * (C[0]
+                + x * (C[1] + x * (C[2] + x * (C[3] + x * (C[4] + x * (C[5] + x * C[6])))))))
+}
+
+/// Why a cycle goes to the column path instead of this kernel.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum NotApplicable {
+    /// Hybrid sigma-pressure levels.
+    #[error("the cycle is on hybrid levels")]
+    HybridLevels,
+    /// No surface pressure and height to tie the columns to.
+    #[error("the cycle has no surface pressure and surface height")]
+    NoSurface,
+    /// Humidity that needs a saturation formula per point.
+    #[error(
+        "humidity is given as {kind}: only specific humidity and mixing ratio are converted here"
+    )]
+    Humidity {
+        /// The CF standard name of the humidity the cycle carries.
+        kind: &'static str,
+    },
+    /// Level pressures the column path masks (not finite, positive and strictly decreasing),
+    /// or more levels than the kernel's per-column level index holds.
+    #[error("the {levels} isobaric levels are not finite, positive and strictly decreasing, or more than 255")]
+    Levels {
+        /// Number of levels.
+        levels: usize,
+    },
+    /// Field shapes that do not agree with the temperature's.
+    #[error("field '{field}' has shape {found:?} where {expected:?} was expected")]
+    Shape {
+        /// Which field.
+        field: &'static str,
+        /// Its shape.
+        found: Vec<usize>,
+        /// The shape the temperature implies.
+        expected: Vec<usize>,
+    },
+    /// [`IsobaricKernel::run`] was given a cycle whose levels or humidity differ from those
+    /// of the cycle the kernel was prepared for.
+    #[error("'{file}' has other levels or humidity than the cycle the kernel was prepared for")]
+    OtherCycle {
+        /// The source file of the cycle given.
+        file: String,
+    },
+    /// A layer bound that is not a finite positive pressure.
+    #[error(
+        "layer {bottom_pa} Pa to {top_pa} Pa has a bound that is not a finite positive pressure"
+    )]
+    LayerBound {
+        /// Bottom pressure, Pa.
+        bottom_pa: f64,
+        /// Top pressure, Pa.
+        top_pa: f64,
+    },
+}
+
+/// What the kernel produced for one cycle (the parts of [`crate::model::Heights`] that
+/// depend on the data).
+#[derive(Clone, Debug)]
+pub struct KernelOutput {
+    /// Geopotential height on every level, geopotential metres, `[member, time, level, lat,
+    /// lon]`; `NaN` where masked.
+    pub geopotential_height: Array5<f32>,
+    /// 1 where the level lies below the ground, else 0.
+    pub below_ground: Array5<u8>,
+    /// One entry per layer, in the order asked for.
+    pub thickness: Vec<LayerThickness>,
+}
+
+/// How a level's virtual temperature is formed.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Moisture {
+    /// No humidity (none in the file, or this level missing from the file's humidity axis).
+    Dry,
+    /// Specific humidity, kg kg⁻¹.
+    Specific,
+    /// Mixing ratio, kg kg⁻¹.
+    Mixing,
+}
+
+/// Where one layer bound sits on the levels (fixed for the whole grid).
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Bound {
+    /// Exactly on level `level`, whose heights are captured in `slot`.
+    OnLevel { slot: usize },
+    /// Strictly between levels `upper - 1` and `upper`, captured in `lower_slot` and
+    /// `upper_slot`.
+    Between {
+        p_pa: f64,
+        upper: usize,
+        upper_slot: usize,
+        lower_slot: usize,
+    },
+    /// Below every level: only reachable by extrapolation below the ground, or between the
+    /// surface and level 0 when the surface pressure is higher still.
+    BelowLowest { p_pa: f64, level0_slot: usize },
+    /// Above the top level: never computed (the column path answers `None` there too).
+    AboveTop,
+}
+
+/// Constants of one level step.
+#[derive(Clone, Copy, Debug)]
+struct StepParams {
+    /// Whether some column of the row is below or at the ground at this level.
+    full: bool,
+    /// The level index as `f64`, compared with each column's surface level.
+    k_f: f64,
+    /// `(R_d/g0) ln(p_{k−1}/p_k)`: the factor of the layer's mean virtual temperature.
+    c1: f64,
+    /// `p_k^κ` for the 6.5 K/km polytrope below ground.
+    pow_k: f64,
+    /// `1/ε − 1`, for specific humidity.
+    kq: f64,
+    /// `1/ε`, for mixing ratio.
+    inv_eps: f64,
+}
+
+/// The per-column state of one row, read by a level step.
+struct StepIn<'s> {
+    t: &'s [f32],
+    q: &'s [f32],
+    zp: &'s [f64],
+    tvp: &'s [f64],
+    k0f: &'s [f64],
+    zs: &'s [f64],
+    tvs: &'s [f64],
+    tvsop: &'s [f64],
+}
+
+/// What a level step writes per column.
+struct StepOut<'s> {
+    zp: &'s mut [f64],
+    tvp: &'s mut [f64],
+    z: &'s mut [f64],
+}
+
+/// `1/Γ` for the 6.5 K/km polytrope, m K⁻¹ (multiplying by it instead of dividing by Γ
+/// changes the last bit only).
+const INV_STANDARD_LAPSE_RATE: f64 = 1.0 / STANDARD_LAPSE_RATE;
+
+/// Virtual temperature from temperature and humidity, as the column path forms it
+/// ([`crate::physics::humidity::virtual_temperature_from_specific_humidity`] and
+/// [`crate::physics::humidity::virtual_temperature_from_mixing_ratio`]), with anything not
+/// finite and positive turned into `NaN` (the column path's "usable" test).
+#[inline(always)]
+fn virtual_temperature<const M: u8>(t: f32, q: f32, kq: f64, inv_eps: f64) -> f64 {
+    let t = f64::from(t);
+    let tv = match M {
+        MOIST_SPECIFIC => t * (1.0 + kq * f64::from(q)),
+        MOIST_MIXING => {
+            let r = f64::from(q);
+            t * (1.0 + r * inv_eps) / (1.0 + r)
+        }
+        _ => t,
+    };
+    if (tv > 0.0) & (tv <= f64::MAX) {
+        tv
+    } else {
+        f64::NAN
+    }
+}
+
+const MOIST_DRY: u8 = 0;
+const MOIST_SPECIFIC: u8 = 1;
+const MOIST_MIXING: u8 = 2;
+
+/// One level of one row: the inner loop, with no branch on the data (selects only), so that
+/// it compiles to SIMD lanes. Returns how many columns had a layer beyond [`SERIES_LIMIT`].
+///
+/// `FULL` handles columns for which this level is below or at the ground; without it every
+/// column of the row must be above ground at this level (`k > k0` everywhere), which holds for
+/// most levels and saves the selects.
+#[inline(always)]
+fn level_lanes<const M: u8, const FULL: bool>(
+    p: &StepParams,
+    i: &StepIn<'_>,
+    o: &mut StepOut<'_>,
+) -> u64 {
+    let n = o.z.len();
+    // Equal lengths up front let the compiler drop every bounds check in the loop.
+    let (t, q, zp, tvp) = (&i.t[..n], &i.q[..n], &i.zp[..n], &i.tvp[..n]);
+    let (k0f, zs, tvs, tvsop) = (&i.k0f[..n], &i.zs[..n], &i.tvs[..n], &i.tvsop[..n]);
+    let (zp_out, tvp_out, z_out) = (&mut o.zp[..n], &mut o.tvp[..n], &mut o.z[..n]);
+    let mut large = 0u64;
+    for c in 0..n {
+        let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
+        let a = tvp[c];
+        let u = (a - tv) / (a + tv);
+        let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
+        if FULL {
+            let above = p.k_f > k0f[c];
+            large += u64::from(above & (u.abs() > SERIES_LIMIT));
+            let z_next = if above { z_up } else { zp[c] };
+            tvp_out[c] = if above { tv } else { a };
+            zp_out[c] = z_next;
+            let z_below = zs[c] - (tvsop[c] * p.pow_k - tvs[c]) * INV_STANDARD_LAPSE_RATE;
+            z_out[c] = if p.k_f < k0f[c] { z_below } else { z_next };
+        } else {
+            large += u64::from(u.abs() > SERIES_LIMIT);
+            tvp_out[c] = tv;
+            zp_out[c] = z_up;
+            z_out[c] = z_up;
+        }
+    }
+    large
+}
+
+/// The level step for the moisture of this level.
+#[inline(always)]
+fn level_step_body(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
+    match (m, p.full) {
+        (Moisture::Dry, true) => level_lanes::<MOIST_DRY, true>(p, i, o),
+        (Moisture::Specific, true) => level_lanes::<MOIST_SPECIFIC, true>(p, i, o),
+        (Moisture::Mixing, true) => level_lanes::<MOIST_MIXING, true>(p, i, o),
+        (Moisture::Dry, false) => level_lanes::<MOIST_DRY, false>(p, i, o),
+        (Moisture::Specific, false) => level_lanes::<MOIST_SPECIFIC, false>(p, i, o),
+        (Moisture::Mixing, false) => level_lanes::<MOIST_MIXING, false>(p, i, o),
+    }
+}
+
+/// The surface set-up of a row, in lanes: from each column's surface pressure and height,
+/// the pressure, virtual temperature and `1/p^κ` of its lowest level above ground, the
+/// surface virtual temperature (6.5 K/km from that level), the height of that level, and
+/// `T_v,s / p_s^κ` for the levels below ground. Returns how many columns are outside the
+/// series' range (the caller recomputes them with the exact forms).
+#[inline(always)]
+fn surface_lanes(kappa: f64, rd_g0: f64, i: &SurfaceIn<'_>, o: &mut SurfaceOut<'_>) -> u64 {
+    let n = o.z0.len();
+    let (ps, zs, pk0, tv0, ipk0) = (
+        &i.ps[..n],
+        &i.zs[..n],
+        &i.pk0[..n],
+        &i.tv0[..n],
+        &i.ipk0[..n],
+    );
+    let (tvs_out, tvsop_out, z0_out) = (&mut o.tvs[..n], &mut o.tvsop[..n], &mut o.z0[..n]);
+    let mut large = 0u64;
+    for c in 0..n {
+        // ln(p_s/p_k0) = 2 artanh(w): the ratio is at least 1 and small, as in a layer.
+        let rho = ps[c] / pk0[c];
+        let w = (rho - 1.0) / (rho + 1.0);
+        let ln_rho = 2.0 * w * atanh_over_u(w * w);
+        let x = kappa * ln_rho;
+        large += u64::from((w > SERIES_LIMIT) | (x.abs() > EXP_LIMIT));
+        let tvs = tv0[c] * exp_by_series(x);
+        tvs_out[c] = tvs;
+        tvsop_out[c] = tv0[c] * ipk0[c];
+        z0_out[c] = zs[c] + rd_g0 * logarithmic_mean_by_series(tvs, tv0[c]) * ln_rho;
+    }
+    large
+}
+
+/// Inputs of [`surface_lanes`], per column.
+struct SurfaceIn<'s> {
+    ps: &'s [f64],
+    zs: &'s [f64],
+    pk0: &'s [f64],
+    tv0: &'s [f64],
+    ipk0: &'s [f64],
+}
+
+/// Outputs of [`surface_lanes`], per column.
+struct SurfaceOut<'s> {
+    tvs: &'s mut [f64],
+    tvsop: &'s mut [f64],
+    z0: &'s mut [f64],
+}
+
+/// The surface set-up compiled for the baseline instruction set.
+fn surface_step_portable(kappa: f64, rd_g0: f64, i: &SurfaceIn<'_>, o: &mut SurfaceOut<'_>) -> u64 {
+    surface_lanes(kappa, rd_g0, i, o)
+}
+
+/// The surface set-up compiled with AVX2.
+///
+/// # Safety
+/// The processor must support AVX2.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn surface_step_avx2(
+    kappa: f64,
+    rd_g0: f64,
+    i: &SurfaceIn<'_>,
+    o: &mut SurfaceOut<'_>,
+) -> u64 {
+    surface_lanes(kappa, rd_g0, i, o)
+}
+
+/// The surface set-up, AVX2 where the processor has it (as [`level_step`]).
+#[inline]
+fn surface_step(
+    avx2: bool,
+    kappa: f64,
+    rd_g0: f64,
+    i: &SurfaceIn<'_>,
+    o: &mut SurfaceOut<'_>,
+) -> u64 {
+    #[cfg(target_arch = "x86_64")]
+    if avx2 {
+        // SAFETY: as in `level_step`: `avx2` is true only when the processor has AVX2.
+        return unsafe { surface_step_avx2(kappa, rd_g0, i, o) };
+    }
+    let _ = avx2;
+    surface_step_portable(kappa, rd_g0, i, o)
+}
+
+/// The level step compiled for the baseline instruction set of the target.
+fn level_step_portable(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
+    level_step_body(m, p, i, o)
+}
+
+/// A level step: the portable build, or on x86-64 the AVX2 build of the same code when the
+/// processor has it (checked once in [`IsobaricKernel::new`]).
+#[inline]
+fn level_step(avx2: bool, m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
+    #[cfg(target_arch = "x86_64")]
+    if avx2 {
+        // SAFETY: `avx2` is true only when `is_x86_feature_detected!("avx2")` said so for
+        // this processor, which is the one requirement of a `target_feature` function; the
+        // body is the same safe code as the portable build.
+        return unsafe { level_step_avx2(m, p, i, o) };
+    }
+    let _ = avx2;
+    level_step_portable(m, p, i, o)
+}
+
+/// The level step compiled with AVX2 (four `f64` lanes instead of two).
+///
+/// # Safety
+/// The processor must support AVX2.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn level_step_avx2(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
+    level_step_body(m, p, i, o)
+}
+
+/// The fast kernel prepared for one cycle and one list of layers: per-level logarithms and
+/// powers, the moisture of each level, and where each layer bound falls on the levels.
+#[derive(Clone, Debug)]
+pub struct IsobaricKernel {
+    /// Level pressures, Pa, bottom-up.
+    levels: Vec<f64>,
+    /// `ln p` of each level.
+    ln_p: Vec<f64>,
+    /// `(R_d/g0) ln(p_{k−1}/p_k)` of each level (0 at level 0).
+    c1: Vec<f64>,
+    /// `p^κ` of each level, `κ = R_d Γ / g0`.
+    pow_kappa: Vec<f64>,
+    /// `1/p^κ` of each level.
+    inv_pow_kappa: Vec<f64>,
+    /// `κ = R_d Γ / g0` for Γ = 6.5 K/km.
+    kappa: f64,
+    /// `R_d / g0`, m K⁻¹.
+    rd_g0: f64,
+    /// `1/ε − 1` and `1/ε`.
+    kq: f64,
+    inv_eps: f64,
+    /// How each level's virtual temperature is formed.
+    moisture: Vec<Moisture>,
+    /// The layers, with their bounds placed on the levels.
+    layers: Vec<(Layer, Bound, Bound)>,
+    /// Levels whose heights and virtual temperatures are kept per row for the thickness.
+    captures: Vec<usize>,
+    /// Whether to run the AVX2 build of the level step.
+    avx2: bool,
+}
+
+/// Surface of one column as the kernel sees it.
+#[derive(Clone, Copy, Debug)]
+struct ColumnSurface {
+    alive: bool,
+    ps: f64,
+    zs: f64,
+    tvs: f64,
+    k0: usize,
+}
+
+/// Per-thread buffers for one row, reused from row to row (a few kilobytes per array).
+struct RowScratch {
+    ps: Vec<f64>,
+    zs: Vec<f64>,
+    tvs: Vec<f64>,
+    tvsop: Vec<f64>,
+    pk0: Vec<f64>,
+    ipk0: Vec<f64>,
+    k0f: Vec<f64>,
+    k0: Vec<u8>,
+    alive: Vec<bool>,
+    zp_in: Vec<f64>,
+    tvp_in: Vec<f64>,
+    zp_out: Vec<f64>,
+    tvp_out: Vec<f64>,
+    z: Vec<f64>,
+    cap_z: Vec<Vec<f64>>,
+    cap_tv: Vec<Vec<f64>>,
+    tbuf: Vec<f32>,
+    qbuf: Vec<f32>,
+}
+
+impl RowScratch {
+    fn new(cols: usize, captures: usize) -> Self {
+        let v = || vec![f64::NAN; cols];
+        Self {
+            ps: v(),
+            zs: v(),
+            tvs: v(),
+            tvsop: v(),
+            pk0: v(),
+            ipk0: v(),
+            k0f: v(),
+            k0: vec![0; cols],
+            alive: vec![false; cols],
+            zp_in: v(),
+            tvp_in: v(),
+            zp_out: v(),
+            tvp_out: v(),
+            z: v(),
+            cap_z: (0..captures).map(|_| v()).collect(),
+            cap_tv: (0..captures).map(|_| v()).collect(),
+            tbuf: Vec::with_capacity(cols),
+            qbuf: Vec::with_capacity(cols),
+        }
+    }
+}
+
+/// The outputs of one row: heights and flags `[level, col]`, and per layer `[col]`.
+struct RowOut<'o> {
+    /// Heights and flags on every level, or `None` when only layers are wanted.
+    z: Option<ArrayViewMut2<'o, f32>>,
+    below: Option<ArrayViewMut2<'o, u8>>,
+    thick: Vec<ArrayViewMut1<'o, f32>>,
+    thick_below: Vec<ArrayViewMut1<'o, u8>>,
+}
+
+/// The inputs of one (member, time) step.
+struct StepViews<'a> {
+    t: ArrayView3<'a, f32>,
+    q: Option<ArrayView3<'a, f32>>,
+    ps: ArrayView2<'a, f32>,
+    zs: ArrayView2<'a, f32>,
+}
+
+/// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
+fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
+    match v.to_slice() {
+        Some(sl) => sl,
+        None => {
+            buf.clear();
+            buf.extend(v.iter().copied());
+            buf
+        }
+    }
+}
+
+/// Stores a row of heights as `f32`: a plain slice loop (which vectorises) where the output
+/// row is contiguous, as it is in arrays this module allocates.
+fn store_heights(mut lane: ArrayViewMut1<'_, f32>, z: &[f64]) {
+    match lane.as_slice_mut() {
+        Some(out) => {
+            for (o, &v) in out.iter_mut().zip(z) {
+                *o = v as f32;
+            }
+        }
+        None => {
+            for (o, &v) in lane.iter_mut().zip(z) {
+                *o = v as f32;
+            }
+        }
+    }
+}
+
+/// Stores the below-ground flags of level `k` of a row: 1 where `k` is under the column's
+/// lowest level above ground.
+fn store_flags(mut lane: ArrayViewMut1<'_, u8>, k: usize, k0: &[u8]) {
+    let k8 = u8::try_from(k).unwrap_or(u8::MAX);
+    match lane.as_slice_mut() {
+        Some(out) => {
+            for (o, &l) in out.iter_mut().zip(k0) {
+                *o = u8::from(k8 < l);
+            }
+        }
+        None => {
+            for (o, &l) in lane.iter_mut().zip(k0) {
+                *o = u8::from(k8 < l);
+            }
+        }
+    }
+}
+
+fn place_bound(levels: &[f64], p: f64, captures: &mut Vec<usize>) -> Bound {
+    let mut slot = |k: usize| match captures.iter().position(|&c| c == k) {
+        Some(s) => s,
+        None => {
+            captures.push(k);
+            captures.len() - 1
+        }
+    };
+    let n = levels.len();
+    if let Some(k) = levels.iter().position(|&l| l == p) {
+        return Bound::OnLevel { slot: slot(k) };
+    }
+    if p < levels[n - 1] {
+        return Bound::AboveTop;
+    }
+    if p > levels[0] {
+        return Bound::BelowLowest {
+            p_pa: p,
+            level0_slot: slot(0),
+        };
+    }
+    // Strictly inside: the first level above p, and the one below it.
+    let upper = levels.partition_point(|&l| l > p);
+    Bound::Between {
+        p_pa: p,
+        upper,
+        upper_slot: slot(upper),
+        lower_slot: slot(upper - 1),
+    }
+}
+
+impl IsobaricKernel {
+    /// Prepares the kernel for `cycle` and `layers`, or says why the cycle must take the
+    /// column path. Layer bounds may be anywhere (on a level or between levels); their
+    /// order is checked by the caller.
+    pub fn new(cycle: &Cycle, layers: &[Layer]) -> Result<Self, NotApplicable> {
+        let levels = match &cycle.vertical {
+            Vertical::Isobaric { pressure_pa } => pressure_pa.clone(),
+            Vertical::Hybrid { .. } => return Err(NotApplicable::HybridLevels),
+        };
+        let n = levels.len();
+        let ordered = levels.iter().all(|p| p.is_finite() && *p > 0.0)
+            && levels.windows(2).all(|w| w[1] < w[0]);
+        if n == 0 || n > usize::from(u8::MAX) || !ordered {
+            return Err(NotApplicable::Levels { levels: n });
+        }
+        let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
+        let (members, times, nz, rows, cols) = cycle.temperature.dim();
+        let expected3 = vec![members, times, nz, rows, cols];
+        if nz != n {
+            return Err(NotApplicable::Shape {
+                field: "air_temperature",
+                found: expected3.clone(),
+                expected: vec![members, times, n, rows, cols],
+            });
+        }
+        let expected2 = vec![members, times, rows, cols];
+        for (field, a) in [
+            ("surface_air_pressure", &surface.pressure_pa),
+            ("surface_height", &surface.height_m),
+        ] {
+            if a.shape() != expected2.as_slice() {
+                return Err(NotApplicable::Shape {
+                    field,
+                    found: a.shape().to_vec(),
+                    expected: expected2.clone(),
+                });
+            }
+        }
+        let mut moisture = vec![Moisture::Dry; n];
+        if let Some(h) = &cycle.humidity {
+            let kind = match h.kind {
+                HumidityKind::SpecificHumidity => Moisture::Specific,
+                HumidityKind::MixingRatio => Moisture::Mixing,
+                other => {
+                    return Err(NotApplicable::Humidity {
+                        kind: other.standard_name(),
+                    })
+                }
+            };
+            if h.values.shape() != expected3.as_slice() {
+                return Err(NotApplicable::Shape {
+                    field: "humidity",
+                    found: h.values.shape().to_vec(),
+                    expected: expected3,
+                });
+            }
+            moisture.fill(kind);
+            for &k in &h.missing_levels {
+                if let Some(m) = moisture.get_mut(k) {
+                    *m = Moisture::Dry;
+                }
+            }
+        }
+        let mut captures = Vec::new();
+        let mut placed = Vec::with_capacity(layers.len());
+        for layer in layers {
+            let good = |p: f64| p.is_finite() && p > 0.0;
+            if !(good(layer.bottom_pa) && good(layer.top_pa)) {
+                return Err(NotApplicable::LayerBound {
+                    bottom_pa: layer.bottom_pa,
+                    top_pa: layer.top_pa,
+                });
+            }
+            let bottom = place_bound(&levels, layer.bottom_pa, &mut captures);
+            let top = place_bound(&levels, layer.top_pa, &mut captures);
+            placed.push((*layer, bottom, top));
+        }
+        // The same expressions as the column path's cached logarithms and powers.
+        let c = &cycle.constants;
+        let rd_g0 = c.rd_over_g0();
+        let kappa = rd_g0 * STANDARD_LAPSE_RATE;
+        let ln_p: Vec<f64> = levels.iter().map(|p| p.ln()).collect();
+        let c1 = (0..n)
+            .map(|k| {
+                if k == 0 {
+                    0.0
+                } else {
+                    rd_g0 * (levels[k - 1] / levels[k]).ln()
+                }
+            })
+            .collect();
+        let pow_kappa: Vec<f64> = ln_p.iter().map(|&l| (kappa * l).exp()).collect();
+        let inv_pow_kappa = pow_kappa.iter().map(|&x| 1.0 / x).collect();
+        let eps = c.molar_mass_ratio;
+        #[cfg(target_arch = "x86_64")]
+        let avx2 = std::is_x86_feature_detected!("avx2");
+        #[cfg(not(target_arch = "x86_64"))]
+        let avx2 = false;
+        Ok(Self {
+            levels,
+            ln_p,
+            c1,
+            pow_kappa,
+            inv_pow_kappa,
+            kappa,
+            rd_g0,
+            kq: 1.0 / eps - 1.0,
+            inv_eps: 1.0 / eps,
+            moisture,
+            layers: placed,
+            captures,
+            avx2,
+        })
+    }
+
+    /// The same kernel with the AVX2 build switched off (`false`) or back on where the
+    /// processor has it (`true`), to compare the two builds.
+    pub fn with_avx2(mut self, wanted: bool) -> Self {
+        #[cfg(target_arch = "x86_64")]
+        {
+            self.avx2 = wanted && std::is_x86_feature_detected!("avx2");
+        }
+        #[cfg(not(target_arch = "x86_64"))]
+        {
+            let _ = wanted;
+            self.avx2 = false;
+        }
+        self
+    }
+
+    /// Whether the AVX2 build of the inner loop runs.
+    pub fn uses_avx2(&self) -> bool {
+        self.avx2
+    }
+
+    /// Heights on every level, below-ground flags and layer thicknesses for every member and
+    /// time step of `cycle` (the cycle given to [`IsobaricKernel::new`]). `progress` is
+    /// called after each (member, time) step with the number done so far.
+    ///
+    /// A cycle whose levels, humidity or shapes differ from those the kernel was prepared
+    /// for is refused with the reason, before any allocation.
+    ///
+    /// # Method
+    /// As [`crate::physics::column::ColumnNodes::isobaric`] and
+    /// [`crate::physics::column::thickness_between`], row by row and level by level (see
+    /// the module documentation).
+    pub fn run(
+        &self,
+        cycle: &Cycle,
+        progress: &(dyn Fn(usize) + Sync),
+    ) -> Result<KernelOutput, NotApplicable> {
+        self.check_cycle(cycle)?;
+        // Zeroed allocations come from the system as untouched pages: the kernel writes
+        // every element once, so no separate fill pass runs over these hundreds of megabytes.
+        let mut geopotential_height = Array5::<f32>::zeros(cycle.temperature.dim());
+        let mut below_ground = Array5::<u8>::zeros(cycle.temperature.dim());
+        if let Some(z) = geopotential_height.as_slice_mut() {
+            advise_huge_pages(z);
+        }
+        if let Some(b) = below_ground.as_slice_mut() {
+            advise_huge_pages(b);
+        }
+        let thickness = self.run_steps(
+            cycle,
+            Some((&mut geopotential_height, &mut below_ground)),
+            progress,
+        )?;
+        Ok(KernelOutput {
+            geopotential_height,
+            below_ground,
+            thickness,
+        })
+    }
+
+    /// The layer thicknesses alone, the same values as [`IsobaricKernel::run`] gives, without
+    /// storing heights: only the levels up to the highest one a layer needs are read, and
+    /// nothing three-dimensional is written.
+    pub fn run_layers(
+        &self,
+        cycle: &Cycle,
+        progress: &(dyn Fn(usize) + Sync),
+    ) -> Result<Vec<LayerThickness>, NotApplicable> {
+        self.check_cycle(cycle)?;
+        self.run_steps(cycle, None, progress)
+    }
+
+    /// Refuses a cycle other than the one the kernel was prepared for.
+    fn check_cycle(&self, cycle: &Cycle) -> Result<(), NotApplicable> {
+        let fresh = Self::new(cycle, &[])?;
+        if fresh.levels != self.levels || fresh.moisture != self.moisture {
+            return Err(NotApplicable::OtherCycle {
+                file: cycle.source.display().to_string(),
+            });
+        }
+        Ok(())
+    }
+
+    /// Both runs: every (member, time) step, rows in parallel; heights and flags stored
+    /// into `heights` when given (shaped as the temperature).
+    fn run_steps(
+        &self,
+        cycle: &Cycle,
+        mut heights: Option<(&mut Array5<f32>, &mut Array5<u8>)>,
+        progress: &(dyn Fn(usize) + Sync),
+    ) -> Result<Vec<LayerThickness>, NotApplicable> {
+        let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
+        let (members, times, levels, rows, cols) = cycle.temperature.dim();
+        let n_levels = if heights.is_some() {
+            levels
+        } else {
+            self.captures.iter().max().map_or(0, |&k| k + 1)
+        };
+        let nl = self.layers.len();
+        let mut thick: Vec<Array4<f32>> = (0..nl)
+            .map(|_| Array4::zeros((members, times, rows, cols)))
+            .collect();
+        let mut thick_below: Vec<Array4<u8>> = (0..nl)
+            .map(|_| Array4::zeros((members, times, rows, cols)))
+            .collect();
+        let mut done = 0usize;
+        for m in 0..members {
+            for t in 0..times {
+                let views = StepViews {
+                    t: cycle.temperature.slice(s![m, t, .., .., ..]),
+                    q: cycle
+                        .humidity
+                        .as_ref()
+                        .map(|h| h.values.slice(s![m, t, .., .., ..])),
+                    ps: surface.pressure_pa.slice(s![m, t, .., ..]),
+                    zs: surface.height_m.slice(s![m, t, .., ..]),
+                };
+                let mut outs: Vec<RowOut<'_>> = (0..rows)
+                    .map(|_| RowOut {
+                        z: None,
+                        below: None,
+                        thick: Vec::with_capacity(nl),
+                        thick_below: Vec::with_capacity(nl),
+                    })
+                    .collect();
+                if let Some((height, below)) = heights.as_mut() {
+                    let z_rows = height
+                        .slice_mut(s![m, t, .., .., ..])
+                        .into_axis_iter_mut(Axis(1));
+                    let b_rows = below
+                        .slice_mut(s![m, t, .., .., ..])
+                        .into_axis_iter_mut(Axis(1));
+                    for (out, (z, b)) in outs.iter_mut().zip(z_rows.zip(b_rows)) {
+                        out.z = Some(z);
+                        out.below = Some(b);
+                    }
+                }
+                for (th, tb) in thick.iter_mut().zip(thick_below.iter_mut()) {
+                    let th_rows = th.slice_mut(s![m, t, .., ..]).into_axis_iter_mut(Axis(0));
+                    let tb_rows = tb.slice_mut(s![m, t, .., ..]).into_axis_iter_mut(Axis(0));
+                    for (out, (a, b)) in outs.iter_mut().zip(th_rows.zip(tb_rows)) {
+                        out.thick.push(a);
+                        out.thick_below.push(b);
+                    }
+                }
+                outs.into_par_iter().enumerate().for_each_init(
+                    || RowScratch::new(cols, self.captures.len()),
+                    |scratch, (row, out)| self.row(&views, row, n_levels, scratch, out),
+                );
+                done += 1;
+                progress(done);
+            }
+        }
+        Ok(self
+            .layers
+            .iter()
+            .zip(thick.into_iter().zip(thick_below))
+            .map(|(&(layer, _, _), (values, below_ground))| LayerThickness {
+                layer,
+                values,
+                below_ground,
+            })
+            .collect())
+    }
+}
+
+impl IsobaricKernel {
+    /// Virtual temperature at level `k` of column (`r`, `c`), `NaN` where not usable.
+    fn tv_at(&self, v: &StepViews<'_>, k: usize, r: usize, c: usize) -> f64 {
+        let t = v.t[[k, r, c]];
+        let q = v.q.as_ref().map_or(0.0, |q| q[[k, r, c]]);
+        match self.moisture[k] {
+            Moisture::Dry => virtual_temperature::<MOIST_DRY>(t, q, self.kq, self.inv_eps),
+            Moisture::Specific => {
+                virtual_temperature::<MOIST_SPECIFIC>(t, q, self.kq, self.inv_eps)
+            }
+            Moisture::Mixing => virtual_temperature::<MOIST_MIXING>(t, q, self.kq, self.inv_eps),
+        }
+    }
+
+    /// One latitude row: surface set-up per column, then the levels bottom-up, then the
+    /// layers.
+    ///
+    /// Only levels `0..n` are integrated (all when heights are wanted; up to the highest
+    /// level a layer needs otherwise).
+    fn row(&self, v: &StepViews<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
+        let all = self.levels.len();
+        let cols = s.z.len();
+        // The surface of every column and the lowest level above it (`k0`), as the column
+        // path: the surface virtual temperature is level k0's extrapolated to p_s at 6.5 K/km.
+        // First, per column, what needs a gather; then the arithmetic in lanes.
+        let mut k_max = 0usize;
+        for c in 0..cols {
+            let ps = f64::from(v.ps[[r, c]]);
+            let zs = f64::from(v.zs[[r, c]]);
+            s.ps[c] = ps;
+            // Levels strictly decrease, so the levels below ground are a prefix: count them
+            // without branches.
+            let k0: usize = self.levels.iter().map(|&p| usize::from(p > ps)).sum();
+            let surface_ok = ps.is_finite() && ps > 0.0 && zs.is_finite() && k0 < all;
+            let tv0 = if surface_ok {
+                self.tv_at(v, k0, r, c)
+            } else {
+                f64::NAN
+            };
+            if surface_ok && !tv0.is_nan() {
+                s.zs[c] = zs;
+                s.tvp_in[c] = tv0;
+                s.pk0[c] = self.levels[k0];
+                s.ipk0[c] = self.inv_pow_kappa[k0];
+                s.k0f[c] = k0 as f64;
+                // `k0 < all <= 255` (checked in `new`).
+                s.k0[c] = u8::try_from(k0).unwrap_or(u8::MAX);
+                s.alive[c] = true;
+                k_max = k_max.max(k0);
+            } else {
+                // A masked column: NaN runs through every level, nothing is below ground.
+                s.zs[c] = f64::NAN;
+                s.tvp_in[c] = f64::NAN;
+                s.pk0[c] = 1.0;
+                s.ipk0[c] = 1.0;
+                s.k0f[c] = 0.0;
+                s.k0[c] = 0;
+                s.alive[c] = false;
+            }
+        }
+        let surface_in = SurfaceIn {
+            ps: &s.ps,
+            zs: &s.zs,
+            pk0: &s.pk0,
+            tv0: &s.tvp_in,
+            ipk0: &s.ipk0,
+        };
+        let mut surface_out = SurfaceOut {
+            tvs: &mut s.tvs,
+            tvsop: &mut s.tvsop,
+            z0: &mut s.zp_in,
+        };
+        let large = surface_step(
+            self.avx2,
+            self.kappa,
+            self.rd_g0,
+            &surface_in,
+            &mut surface_out,
+        );
+        if large > 0 {
+            // Surfaces far from their lowest level above ground (p_s/p_k0 > 11/9, only near
+            // the top of a column): the column path's exact forms.
+            for c in 0..cols {
+                let (ps, pk0) = (s.ps[c], s.pk0[c]);
+                let rho = ps / pk0;
+                let w = (rho - 1.0) / (rho + 1.0);
+                let x = self.kappa * 2.0 * w * atanh_over_u(w * w);
+                if s.alive[c] && ((w > SERIES_LIMIT) | (x.abs() > EXP_LIMIT)) {
+                    let k0 = usize::from(s.k0[c]);
+                    let tv0 = s.tvp_in[c];
+                    let ln_ps = ps.ln();
+                    let ps_pow = (self.kappa * ln_ps).exp();
+                    let tvs = tv0 * (ps_pow / self.pow_kappa[k0]);
+                    s.tvs[c] = tvs;
+                    s.tvsop[c] = tvs / ps_pow;
+                    s.zp_in[c] = s.zs[c]
+                        + self.rd_g0
+                            * logarithmic_mean_temperature(tvs, tv0)
+                            * (ln_ps - self.ln_p[k0]);
+                }
+            }
+        }
+
+        for k in 0..n {
+            let m = self.moisture[k];
+            let t = lane(v.t.slice(s![k, r, ..]), &mut s.tbuf);
+            let q = match (&v.q, m) {
+                (Some(q3), Moisture::Specific | Moisture::Mixing) => {
+                    lane(q3.slice(s![k, r, ..]), &mut s.qbuf)
+                }
+                _ => t,
+            };
+            let p = StepParams {
+                full: k <= k_max,
+                k_f: k as f64,
+                c1: self.c1[k],
+                pow_k: self.pow_kappa[k],
+                kq: self.kq,
+                inv_eps: self.inv_eps,
+            };
+            let input = StepIn {
+                t,
+                q,
+                zp: &s.zp_in,
+                tvp: &s.tvp_in,
+                k0f: &s.k0f,
+                zs: &s.zs,
+                tvs: &s.tvs,
+                tvsop: &s.tvsop,
+            };
+            let mut output = StepOut {
+                zp: &mut s.zp_out,
+                tvp: &mut s.tvp_out,
+                z: &mut s.z,
+            };
+            let large = level_step(self.avx2, m, &p, &input, &mut output);
+            if large > 0 {
+                // Layers beyond the series' range (see `SERIES_LIMIT`): the exact form.
+                for c in 0..cols {
+                    let (a, b) = (s.tvp_in[c], s.tvp_out[c]);
+                    if p.k_f > s.k0f[c] && ((a - b) / (a + b)).abs() > SERIES_LIMIT {
+                        let z = s.zp_in[c] + p.c1 * logarithmic_mean_temperature(a, b);
+                        s.zp_out[c] = z;
+                        s.z[c] = z;
+                    }
+                }
+            }
+            if let Some(z_out) = out.z.as_mut() {
+                store_heights(z_out.index_axis_mut(Axis(0), k), &s.z);
+            }
+            if let Some(b_out) = out.below.as_mut() {
+                store_flags(b_out.index_axis_mut(Axis(0), k), k, &s.k0);
+            }
+            if let Some(slot) = self.captures.iter().position(|&l| l == k) {
+                s.cap_z[slot].copy_from_slice(&s.z);
+                s.cap_tv[slot].copy_from_slice(&s.tvp_out);
+            }
+            std::mem::swap(&mut s.zp_in, &mut s.zp_out);
+            std::mem::swap(&mut s.tvp_in, &mut s.tvp_out);
+        }
+
+        for (l, &(layer, bottom, top)) in self.layers.iter().enumerate() {
+            let (th, tb) = (&mut out.thick[l], &mut out.thick_below[l]);
+            if let (Bound::OnLevel { slot: sb }, Bound::OnLevel { slot: st }) = (bottom, top) {
+                for ((o, &zt), &zb) in th.iter_mut().zip(&s.cap_z[st]).zip(&s.cap_z[sb]) {
+                    *o = (zt - zb) as f32;
+                }
+            } else {
+                for (c, o) in th.iter_mut().enumerate() {
+                    let col = ColumnSurface {
+                        alive: s.alive[c],
+                        ps: s.ps[c],
+                        zs: s.zs[c],
+                        tvs: s.tvs[c],
+                        k0: usize::from(s.k0[c]),
+                    };
+                    let zt = self.bound_height(top, col, c, s);
+                    let zb = self.bound_height(bottom, col, c, s);
+                    *o = (zt - zb) as f32;
+                }
+            }
+            for (o, &ps) in tb.iter_mut().zip(&s.ps) {
+                *o = u8::from(layer.bottom_pa > ps);
+            }
+        }
+    }
+
+    /// Height at a layer bound on one column, as
+    /// [`crate::physics::column::ColumnNodes::height_at_pressure`] gives it: the captured
+    /// level height on a level; between nodes (levels, or the surface and a level) the
+    /// polytropic interpolation; below the ground the 6.5 K/km polytrope from the surface.
+    fn bound_height(&self, b: Bound, col: ColumnSurface, c: usize, s: &RowScratch) -> f64 {
+        if !col.alive {
+            return f64::NAN;
+        }
+        let node =
+            |level: usize, slot: usize| (self.levels[level], s.cap_tv[slot][c], s.cap_z[slot][c]);
+        let (p, lower, upper) = match b {
+            Bound::OnLevel { slot } => return s.cap_z[slot][c],
+            Bound::AboveTop => return f64::NAN,
+            Bound::BelowLowest { p_pa, level0_slot } => (p_pa, None, node(0, level0_slot)),
+            Bound::Between {
+                p_pa,
+                upper,
+                upper_slot,
+                lower_slot,
+            } => {
+                let lower = (upper > col.k0).then(|| node(upper - 1, lower_slot));
+                (p_pa, lower, node(upper, upper_slot))
+            }
+        };
+        if p > col.ps {
+            let tv = col.tvs * (self.kappa * (p / col.ps).ln()).exp();
+            return col.zs - (tv - col.tvs) / STANDARD_LAPSE_RATE;
+        }
+        if p == col.ps {
+            return col.zs;
+        }
+        let (p1, t1, z1) = lower.unwrap_or((col.ps, col.tvs, col.zs));
+        let (p2, t2, z2) = upper;
+        let big_x = (p1 / p2).ln();
+        let x = (p1 / p).ln();
+        let kappa = (t1 / t2).ln() / big_x;
+        let frac =
+            x * one_minus_exp_neg_over(kappa * x) / (big_x * one_minus_exp_neg_over(kappa * big_x));
+        z1 + (z2 - z1) * frac
+    }
+}
+
+/// Asks the kernel to back a large, not yet touched allocation with transparent huge pages
+/// (`madvise(MADV_HUGEPAGE)` on its 2 MiB-aligned interior), so that the first write faults
+/// in 2 MiB at a time instead of 4 KiB: on the 0.25° grid about half of the kernel's time was
+/// page faults on its fresh output. Linux only; elsewhere, or when the system refuses (THP
+/// disabled), nothing changes but the speed.
+fn advise_huge_pages<T>(buffer: &mut [T]) {
+    #[cfg(target_os = "linux")]
+    {
+        const HUGE_PAGE: usize = 2 << 20;
+        let start = buffer.as_mut_ptr() as usize;
+        let end = start + std::mem::size_of_val(buffer);
+        let aligned_start = start.div_ceil(HUGE_PAGE) * HUGE_PAGE;
+        let aligned_end = end / HUGE_PAGE * HUGE_PAGE;
+        if aligned_end > aligned_start {
+            // SAFETY: the range lies inside `buffer`, which this function borrows mutably, and
+            // MADV_HUGEPAGE changes only how the kernel backs the pages, never their contents
+            // or their mapping: no Rust-visible memory changes.
+            let _ = unsafe {
+                libc::madvise(
+                    aligned_start as *mut libc::c_void,
+                    aligned_end - aligned_start,
+                    libc::MADV_HUGEPAGE,
+                )
+            };
+        }
+    }
+    #[cfg(not(target_os = "linux"))]
+    let _ = buffer;
+}

@@ -1,0 +1,610 @@
+//! The fast row-wise kernel (`hypsogrid::kernel`) against the column path
+//! (`compute::compute_heights_by_columns`, built on `ColumnNodes::isobaric`), column by
+//! column, and against closed forms and published tables.
+//!
+//! Agreement is asked to 1 mm, or one `f32` rounding step where that is larger (about 4 mm
+//! at 48 km): both paths integrate in `f64` and store `f32`, so a last-bit difference in
+//! `f64` may round a height to the neighbouring `f32`.
+
+use std::path::PathBuf;
+
+use ndarray::{s, Array4, Array5, ShapeBuilder};
+
+use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
+use hypsogrid::ingest::{read_cycle, IngestConfig};
+use hypsogrid::kernel::{logarithmic_mean_by_series, IsobaricKernel, NotApplicable, SERIES_LIMIT};
+use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
+use hypsogrid::physics::hypsometric::scale_height;
+use hypsogrid::physics::standard_atmosphere::{
+    us_standard_atmosphere_height_at_pressure, us_standard_atmosphere_temperature,
+};
+use hypsogrid::physics::Constants;
+
+/// The 31 levels of a GFS-like isobaric file from 1000 to 1 hPa, Pa, bottom-up (a subset of
+/// the NCEP 0.25° pressure levels, from memory).
+const LEVELS_HPA: [f64; 31] = [
+    1000.0, 975.0, 950.0, 925.0, 900.0, 850.0, 800.0, 750.0, 700.0, 650.0, 600.0, 550.0, 500.0,
+    450.0, 400.0, 350.0, 300.0, 250.0, 200.0, 150.0, 100.0, 70.0, 50.0, 30.0, 20.0, 10.0, 7.0, 5.0,
+    3.0, 2.0, 1.0,
+];
+
+fn levels_pa() -> Vec<f64> {
+    LEVELS_HPA.iter().map(|h| h * 100.0).collect()
+}
+
+/// A deterministic stream of numbers in [0, 1) (a 64-bit linear congruential generator,
+/// Knuth's MMIX constants, from memory): invented inputs, whose answer is the column path's.
+struct Lcg(u64);
+
+impl Lcg {
+    fn next(&mut self) -> f64 {
+        self.0 = self
+            .0
+            .wrapping_mul(6364136223846793005)
+            .wrapping_add(1442695040888963407);
+        (self.0 >> 11) as f64 / (1u64 << 53) as f64
+    }
+}
+
+/// A cycle on an `rows x cols` grid with `members x times` steps: smooth temperature with
+/// noise, a tropopause and a warm stratosphere, surfaces from sea level to high mountains.
+fn invented_cycle(
+    members: usize,
+    times: usize,
+    rows: usize,
+    cols: usize,
+    kind: Option<HumidityKind>,
+) -> Cycle {
+    let p = levels_pa();
+    let n = p.len();
+    let mut rng = Lcg(20_240_601);
+    let mut t = Array5::<f32>::zeros((members, times, n, rows, cols));
+    let mut q = Array5::<f32>::zeros((members, times, n, rows, cols));
+    let mut ps = Array4::<f32>::zeros((members, times, rows, cols));
+    let mut zs = Array4::<f32>::zeros((members, times, rows, cols));
+    for m in 0..members {
+        for ti in 0..times {
+            for r in 0..rows {
+                for c in 0..cols {
+                    let t0 = 300.0 - 40.0 * r as f64 / rows as f64 + 4.0 * rng.next();
+                    let z_ground = 4500.0 * rng.next().powi(3);
+                    // Surface pressure from the ground height on a 8 km scale height.
+                    ps[[m, ti, r, c]] =
+                        (101_500.0 * (-z_ground / 8000.0).exp() + 800.0 * rng.next()) as f32;
+                    zs[[m, ti, r, c]] = z_ground as f32;
+                    for (k, &pk) in p.iter().enumerate() {
+                        let z = us_standard_atmosphere_height_at_pressure(pk);
+                        let trop = (t0 - 0.0065 * z).max(205.0 + 5.0 * rng.next());
+                        let strat = if z > 20_000.0 {
+                            0.0015 * (z - 20_000.0)
+                        } else {
+                            0.0
+                        };
+                        t[[m, ti, k, r, c]] = (trop + strat + 1.5 * rng.next()) as f32;
+                        let rh = 0.2 + 0.7 * rng.next();
+                        let es = 611.2 * (17.62 * (trop - 273.15) / (trop - 30.03)).exp();
+                        let spec = 0.622 * rh * es / pk.max(es * 1.01);
+                        q[[m, ti, k, r, c]] = spec.min(0.03) as f32;
+                    }
+                }
+            }
+        }
+    }
+    Cycle {
+        source: PathBuf::from("invented-kernel-cycle.nc"),
+        reference_time: None,
+        lead_times_s: (0..times as i64).map(|i| i * 21_600).collect(),
+        members,
+        grid: Grid {
+            latitudes: (0..rows).map(|r| 60.0 - r as f64).collect(),
+            longitudes: (0..cols).map(|c| c as f64).collect(),
+        },
+        vertical: Vertical::Isobaric { pressure_pa: p },
+        levels_top_down_in_file: false,
+        temperature: t,
+        humidity: kind.map(|kind| Humidity {
+            kind,
+            values: q,
+            missing_levels: Vec::new(),
+        }),
+        surface: Some(Surface {
+            pressure_pa: ps,
+            height_m: zs,
+        }),
+        file_heights: None,
+        constants: Constants::default(),
+        variables: Vec::new(),
+        notes: Vec::new(),
+    }
+}
+
+/// Layers on levels, between levels, below the lowest level, from the surface region to the
+/// top, and one above the top level (always masked).
+fn layers() -> Vec<Layer> {
+    [
+        (100_000.0, 50_000.0),
+        (100_000.0, 85_000.0),
+        (85_000.0, 70_000.0),
+        (96_250.0, 41_000.0),
+        (105_000.0, 92_500.0),
+        (103_000.0, 99_000.0),
+        (70_500.0, 150.0),
+        (80_000.0, 50.0),
+    ]
+    .into_iter()
+    .map(|(bottom_pa, top_pa)| Layer { bottom_pa, top_pa })
+    .collect()
+}
+
+/// The largest allowed difference between two stored heights: 1 mm, or one `f32` step.
+fn tolerance(z: f32) -> f32 {
+    let ulp = f32::from_bits(z.abs().to_bits() + 1) - z.abs();
+    (1.0e-3f32).max(ulp)
+}
+
+/// Compares two outputs element by element; returns (largest difference in m, compared
+/// finite values). NaN must meet NaN, flags must be equal.
+fn compare(a: &Heights, b: &Heights) -> (f64, usize) {
+    assert_eq!(a.geopotential_height.dim(), b.geopotential_height.dim());
+    assert_eq!(a.below_ground, b.below_ground, "below-ground flags differ");
+    let mut worst = 0.0f64;
+    let mut finite = 0usize;
+    let mut check = |x: f32, y: f32, what: &str| {
+        if x.is_nan() || y.is_nan() {
+            assert!(x.is_nan() && y.is_nan(), "{what}: {x} vs {y}");
+            return;
+        }
+        if x == y {
+            finite += 1;
+            return;
+        }
+        let d = (x - y).abs();
+        assert!(d <= tolerance(x.max(y)), "{what}: {x} vs {y}");
+        worst = worst.max(f64::from(d));
+        finite += 1;
+    };
+    for ((idx, &x), &y) in a
+        .geopotential_height
+        .indexed_iter()
+        .zip(b.geopotential_height.iter())
+    {
+        check(x, y, &format!("height at {idx:?}"));
+    }
+    assert_eq!(a.thickness.len(), b.thickness.len());
+    for (ta, tb) in a.thickness.iter().zip(&b.thickness) {
+        assert_eq!(ta.layer, tb.layer);
+        assert_eq!(ta.below_ground, tb.below_ground, "{}", ta.layer.label_hpa());
+        for ((idx, &x), &y) in ta.values.indexed_iter().zip(tb.values.iter()) {
+            check(
+                x,
+                y,
+                &format!("thickness {} at {idx:?}", ta.layer.label_hpa()),
+            );
+        }
+    }
+    (worst, finite)
+}
+
+fn both_paths(cycle: &Cycle, layers: Vec<Layer>) -> (Heights, Heights) {
+    let config = ComputeConfig {
+        layers,
+        ..ComputeConfig::default()
+    };
+    IsobaricKernel::new(cycle, &config.layers).expect("the fast kernel applies");
+    let fast = compute_heights(cycle, &config, &|_| {}).expect("fast path");
+    let columns = compute_heights_by_columns(cycle, &config, &|_| {}).expect("column path");
+    (fast, columns)
+}
+
+/// Puts the edge cases of GUIDE §2 and `ColumnNodes::isobaric` into row 0 of step (0, 0).
+fn plant_edge_cases(cycle: &mut Cycle) {
+    let p = levels_pa();
+    let n = p.len();
+    let t = &mut cycle.temperature;
+    let sf = cycle.surface.as_mut().expect("surface fields");
+    let (ps, zs) = (&mut sf.pressure_pa, &mut sf.height_m);
+    let mut set_surface = |c: usize, p_s: f32, z_s: f32| {
+        ps[[0, 0, 0, c]] = p_s;
+        zs[[0, 0, 0, c]] = z_s;
+    };
+    // Surface exactly on a level (1000, 925, 850 hPa) and exactly on the top level.
+    set_surface(0, 100_000.0, 110.0);
+    set_surface(1, 92_500.0, 760.0);
+    set_surface(2, 85_000.0, 1460.0);
+    set_surface(3, 100.0, 48_000.0);
+    // Surface above the top level: nothing can be computed.
+    set_surface(4, 80.0, 50_000.0);
+    // Surface below the lowest level (p_s > 1000 hPa), and below sea level.
+    set_surface(5, 104_500.0, -350.0);
+    // Missing surface pressure, missing surface height, non-positive surface pressure.
+    set_surface(6, f32::NAN, 100.0);
+    set_surface(7, 95_000.0, f32::NAN);
+    set_surface(8, -5.0, 100.0);
+    // Missing temperature above ground (at 500 hPa), masking it and everything above.
+    set_surface(9, 99_000.0, 90.0);
+    t[[0, 0, 12, 0, 9]] = f32::NAN;
+    // Missing temperature at the lowest level above ground: the column is masked.
+    set_surface(10, 97_000.0, 300.0);
+    t[[0, 0, 2, 0, 10]] = f32::NAN;
+    // Missing and fill temperatures below ground must not matter.
+    set_surface(11, 84_000.0, 1550.0);
+    t[[0, 0, 0, 0, 11]] = f32::NAN;
+    t[[0, 0, 1, 0, 11]] = 9.96921e36;
+    t[[0, 0, 2, 0, 11]] = -999.0;
+    // An isothermal column.
+    set_surface(12, 101_000.0, 20.0);
+    for k in 0..n {
+        t[[0, 0, k, 0, 12]] = 250.0;
+    }
+    // Temperature not positive above ground (masks from there up).
+    set_surface(13, 101_000.0, 20.0);
+    t[[0, 0, 20, 0, 13]] = -3.0;
+    // A jump beyond the series' limit between adjacent levels (u = 0.33 at 700 hPa).
+    set_surface(14, 101_000.0, 20.0);
+    t[[0, 0, 8, 0, 14]] = 500.0;
+    // Infinite temperature above ground masks too.
+    set_surface(15, 101_000.0, 20.0);
+    t[[0, 0, 5, 0, 15]] = f32::INFINITY;
+    // A missing humidity value above ground (a level the file has) masks like temperature.
+    set_surface(16, 101_000.0, 20.0);
+    if let Some(h) = cycle.humidity.as_mut() {
+        h.values[[0, 0, 6, 0, 16]] = f32::NAN;
+    }
+    // The surface between two levels very close to one of them.
+    set_surface(17, 85_000.01, 1450.0);
+    set_surface(18, 84_999.99, 1450.0);
+    // Surfaces high in the column: p_s/p_k0 = 1.8 (beyond the series' range of the
+    // surface set-up, exact forms) and 1.12 (inside it).
+    set_surface(19, 180.0, 45_000.0);
+    set_surface(20, 560.0, 36_000.0);
+    let _ = p;
+}
+
+#[test]
+fn kernel_matches_the_column_path_on_many_columns_with_specific_humidity() {
+    let mut cycle = invented_cycle(2, 2, 9, 40, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let (fast, columns) = both_paths(&cycle, layers());
+    let (worst, n) = compare(&fast, &columns);
+    println!("specific humidity: {n} values, largest difference {worst:e} m");
+    assert!(n > 2 * 2 * 9 * 40 * 25, "most values are finite ({n})");
+    // The planted cases did what they say on the fast path itself.
+    let z = |k: usize, c: usize| fast.geopotential_height[[0, 0, k, 0, c]];
+    let b = |k: usize, c: usize| fast.below_ground[[0, 0, k, 0, c]];
+    assert_eq!(
+        z(0, 0),
+        110.0,
+        "level at the surface has the surface height"
+    );
+    assert_eq!(b(0, 0), 0);
+    assert_eq!((z(3, 1), b(3, 1), b(2, 1)), (760.0, 0, 1));
+    assert_eq!(z(30, 3), 48_000.0);
+    assert!(
+        (0..31).all(|k| z(k, 4).is_nan() && b(k, 4) == 0),
+        "surface above the top"
+    );
+    assert!(
+        z(0, 5) > -350.0 && b(0, 5) == 0,
+        "1000 hPa above a surface at 1045 hPa"
+    );
+    for c in [6, 7, 8, 10] {
+        assert!(
+            (0..31).all(|k| z(k, c).is_nan() && b(k, c) == 0),
+            "column {c}"
+        );
+    }
+    assert!(z(11, 9).is_finite() && z(12, 9).is_nan() && z(30, 9).is_nan());
+    assert!(
+        (0..31).all(|k| z(k, 11).is_finite()),
+        "buried fill values unused"
+    );
+    assert!(z(19, 13).is_finite() && z(20, 13).is_nan());
+    assert!(
+        z(30, 14).is_finite(),
+        "a large jump is computed, not masked"
+    );
+    assert!(z(4, 15).is_finite() && z(5, 15).is_nan());
+    assert!(z(5, 16).is_finite() && z(6, 16).is_nan());
+    assert!(
+        z(30, 19).is_finite() && b(29, 19) == 1,
+        "surface between 2 and 1 hPa"
+    );
+    assert!(z(30, 20).is_finite() && b(26, 20) == 1 && b(27, 20) == 0);
+}
+
+#[test]
+fn kernel_matches_the_column_path_with_mixing_ratio_dry_air_and_missing_humidity_levels() {
+    for kind in [Some(HumidityKind::MixingRatio), None] {
+        let mut cycle = invented_cycle(1, 2, 7, 36, kind);
+        plant_edge_cases(&mut cycle);
+        if let Some(h) = cycle.humidity.as_mut() {
+            // Levels the file's humidity axis lacked: NaN and listed, treated as dry.
+            h.missing_levels = (20..31).collect();
+            for k in 20..31 {
+                h.values.slice_mut(s![.., .., k, .., ..]).fill(f32::NAN);
+            }
+        }
+        let (fast, columns) = both_paths(&cycle, layers());
+        let (worst, n) = compare(&fast, &columns);
+        println!("{kind:?}: {n} values, largest difference {worst:e} m");
+        assert!(fast.geopotential_height[[0, 1, 30, 3, 5]].is_finite());
+    }
+}
+
+#[test]
+fn kernel_matches_the_column_path_when_the_fields_are_not_contiguous() {
+    // The same values held in column-major order: no row is a contiguous slice.
+    let base = invented_cycle(1, 1, 5, 24, Some(HumidityKind::SpecificHumidity));
+    let mut cycle = base.clone();
+    let mut t = Array5::<f32>::zeros(base.temperature.dim().f());
+    t.assign(&base.temperature);
+    assert!(!t.is_standard_layout());
+    cycle.temperature = t;
+    let (fast, columns) = both_paths(&cycle, layers());
+    compare(&fast, &columns);
+    let (fast_base, _) = both_paths(&base, layers());
+    assert_eq!(fast.geopotential_height, fast_base.geopotential_height);
+}
+
+#[test]
+fn avx2_and_portable_builds_give_identical_bits() {
+    let mut cycle = invented_cycle(1, 1, 6, 40, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let layers = layers();
+    let kernel = IsobaricKernel::new(&cycle, &layers).expect("applies");
+    println!("AVX2 available: {}", kernel.uses_avx2());
+    let a = kernel
+        .clone()
+        .with_avx2(true)
+        .run(&cycle, &|_| {})
+        .expect("run");
+    let b = kernel.with_avx2(false).run(&cycle, &|_| {}).expect("run");
+    // No fused multiply-add is enabled, so both builds do the same IEEE operations.
+    let bits = |x: &Array5<f32>| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+    assert_eq!(bits(&a.geopotential_height), bits(&b.geopotential_height));
+    assert_eq!(a.below_ground, b.below_ground);
+    for (x, y) in a.thickness.iter().zip(&b.thickness) {
+        let bits4 = |v: &Array4<f32>| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits4(&x.values), bits4(&y.values));
+    }
+}
+
+#[test]
+fn series_log_mean_agrees_with_the_exact_formula_within_its_bound() {
+    // The exact logarithmic mean (t1 − t2)/ln(t1/t2), with ln(t1/t2) = ln_1p((t1 − t2)/t2)
+    // to keep its own rounding to a few ulps; t1 − t2 is exact (Sterbenz lemma).
+    let exact = |t1: f64, t2: f64| {
+        if t1 == t2 {
+            t1
+        } else {
+            (t1 - t2) / ((t1 - t2) / t2).ln_1p()
+        }
+    };
+    let mut worst = 0.0f64;
+    for i in 0..=400 {
+        let t2 = 150.0 + i as f64 * 0.5;
+        for j in -200..=200 {
+            let u = SERIES_LIMIT * j as f64 / 200.0;
+            // t1 with (t1 − t2)/(t1 + t2) = u.
+            let t1 = t2 * (1.0 + u) / (1.0 - u);
+            let rel = (logarithmic_mean_by_series(t1, t2) / exact(t1, t2) - 1.0).abs();
+            worst = worst.max(rel);
+        }
+    }
+    println!("largest relative difference to the exact formula: {worst:e}");
+    // A few ulps of f64 (2.2e-16 each): the truncation itself is below 6e-18.
+    assert!(worst < 1.0e-15, "{worst:e}");
+    // Isothermal: exactly the temperature. Symmetric in its arguments.
+    assert_eq!(logarithmic_mean_by_series(250.0, 250.0), 250.0);
+    assert_eq!(
+        logarithmic_mean_by_series(231.5, 244.25),
+        logarithmic_mean_by_series(244.25, 231.5)
+    );
+    // The truncation bound of the documentation: the omitted tail Σ_{j≥8} s^j/(2j+1) at
+    // the limit, summed on its own, stays under s⁸/(17(1 − s)) < 6.0e-18.
+    let s2 = SERIES_LIMIT * SERIES_LIMIT;
+    let tail: f64 = (8..80).map(|j| s2.powi(j) / f64::from(2 * j + 1)).sum();
+    let bound = s2.powi(8) / (17.0 * (1.0 - s2));
+    assert!(tail <= bound && bound < 6.0e-18, "{tail:e} {bound:e}");
+}
+
+#[test]
+fn isothermal_column_matches_the_closed_form() {
+    // p = p0 exp(−(z − z0)/H), H = R_d T / g0 (Wallace & Hobbs 2006, §3.2.2).
+    let mut cycle = invented_cycle(1, 1, 2, 3, None);
+    cycle.temperature.fill(240.0);
+    let sf = cycle.surface.as_mut().expect("surface");
+    sf.pressure_pa.fill(100_000.0);
+    sf.height_m.fill(12.0);
+    let heights = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).expect("compute");
+    let h = scale_height(240.0, &cycle.constants);
+    for (k, &p) in levels_pa().iter().enumerate() {
+        let want = 12.0 + h * (100_000.0 / p).ln();
+        for &z in heights
+            .geopotential_height
+            .slice(s![0, 0, k, .., ..])
+            .iter()
+        {
+            assert!(
+                (f64::from(z) - want).abs() <= f64::from(tolerance(z)),
+                "{p}: {z} vs {want}"
+            );
+        }
+    }
+}
+
+#[test]
+fn standard_atmosphere_column_reproduces_the_mandatory_heights() {
+    // Heights of the mandatory levels in the U.S. Standard Atmosphere 1976, as derived in
+    // GUIDE §2 from the standard's definition (0.1 m rounding). Only up to 250 hPa: the
+    // 250–200 hPa layer holds the tropopause (11 km′, about 226 hPa), where the lapse rate
+    // changes inside the layer and a two-point layer mean cannot be exact.
+    let table = [
+        (1000.0, 110.9),
+        (925.0, 762.0),
+        (850.0, 1457.3),
+        (700.0, 3012.2),
+        (500.0, 5574.4),
+        (400.0, 7185.4),
+        (300.0, 9164.0),
+        (250.0, 10_362.9),
+    ];
+    let mut cycle = invented_cycle(1, 1, 1, 2, None);
+    cycle.constants = Constants::us_standard_atmosphere_1976();
+    for (k, &p) in levels_pa().iter().enumerate() {
+        let tk = us_standard_atmosphere_temperature(us_standard_atmosphere_height_at_pressure(p));
+        cycle
+            .temperature
+            .slice_mut(s![.., .., k, .., ..])
+            .fill(tk as f32);
+    }
+    let sf = cycle.surface.as_mut().expect("surface");
+    sf.pressure_pa.fill(101_325.0);
+    sf.height_m.fill(0.0);
+    let heights = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).expect("compute");
+    for (hpa, want) in table {
+        let k = LEVELS_HPA.iter().position(|&l| l == hpa).expect("a level");
+        let z = f64::from(heights.geopotential_height[[0, 0, k, 0, 1]]);
+        // 0.1 m table rounding plus the f32 storage of the level temperatures.
+        assert!((z - want).abs() <= 0.15, "{hpa} hPa: {z} vs {want}");
+    }
+}
+
+#[test]
+fn other_cycles_are_left_to_the_column_path() {
+    let cycle = invented_cycle(1, 1, 2, 2, Some(HumidityKind::RelativeHumidity));
+    assert!(matches!(
+        IsobaricKernel::new(&cycle, &[]),
+        Err(NotApplicable::Humidity { .. })
+    ));
+    let mut dry = invented_cycle(1, 1, 2, 2, None);
+    dry.surface = None;
+    assert_eq!(
+        IsobaricKernel::new(&dry, &[]).err(),
+        Some(NotApplicable::NoSurface)
+    );
+    let mut hybrid = invented_cycle(1, 1, 2, 2, None);
+    hybrid.vertical = Vertical::Hybrid {
+        a_half_pa: vec![0.0; 32],
+        b_half: vec![1.0; 32],
+    };
+    assert_eq!(
+        IsobaricKernel::new(&hybrid, &[]).err(),
+        Some(NotApplicable::HybridLevels)
+    );
+    let mut unordered = invented_cycle(1, 1, 2, 2, None);
+    if let Vertical::Isobaric { pressure_pa } = &mut unordered.vertical {
+        pressure_pa.swap(3, 4);
+    }
+    assert!(matches!(
+        IsobaricKernel::new(&unordered, &[]),
+        Err(NotApplicable::Levels { levels: 31 })
+    ));
+    // The kernel refuses a cycle it was not prepared for.
+    let a = invented_cycle(1, 1, 2, 2, None);
+    let b = invented_cycle(1, 1, 2, 2, Some(HumidityKind::SpecificHumidity));
+    let kernel = IsobaricKernel::new(&a, &[]).expect("applies");
+    assert!(matches!(
+        kernel.run(&b, &|_| {}),
+        Err(NotApplicable::OtherCycle { .. })
+    ));
+    // Progress is reported once per step.
+    let steps = std::sync::atomic::AtomicUsize::new(0);
+    let c = invented_cycle(2, 3, 2, 2, None);
+    IsobaricKernel::new(&c, &[])
+        .expect("applies")
+        .run(&c, &|done| {
+            steps.store(done, std::sync::atomic::Ordering::SeqCst);
+        })
+        .expect("run");
+    assert_eq!(steps.into_inner(), 6);
+}
+
+fn shared_data(relative: &str) -> Option<PathBuf> {
+    let path = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/../shared/data")).join(relative);
+    if path.exists() {
+        Some(path)
+    } else {
+        eprintln!(
+            "skipped: {} is absent (the shared data folder is needed)",
+            path.display()
+        );
+        None
+    }
+}
+
+#[test]
+fn kernel_matches_the_column_path_on_a_real_gfs_cycle() {
+    // GFS 2.5° global, 2011-01-10 12Z + 120 h (PROVENANCE.md in the folder): real
+    // temperature on 26 levels over real orography, so that many columns have levels below
+    // the ground. Its humidity is relative (column path only), so it is dropped here and
+    // both paths integrate the same dry columns; a specific humidity made from it with
+    // Bolton's formula then runs both paths on moist columns.
+    let Some(path) = shared_data(
+        "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
+    ) else {
+        return;
+    };
+    let real = read_cycle(&path, &IngestConfig::default()).expect("reading the GFS file");
+    let p = match &real.vertical {
+        Vertical::Isobaric { pressure_pa } => pressure_pa.clone(),
+        Vertical::Hybrid { .. } => panic!("GFS is isobaric"),
+    };
+    let on_levels = |bottom: f64, top: f64| Layer {
+        bottom_pa: bottom,
+        top_pa: top,
+    };
+    let layers = vec![
+        on_levels(100_000.0, 50_000.0),
+        on_levels(85_000.0, 70_000.0),
+        on_levels(96_250.0, 41_000.0),
+    ];
+    let mut dry = real.clone();
+    dry.humidity = None;
+    let (fast, columns) = both_paths(&dry, layers.clone());
+    let (worst, n) = compare(&fast, &columns);
+    let buried = fast.below_ground.iter().filter(|&&b| b == 1).count();
+    println!("GFS 2.5° dry: {n} values, {buried} below ground, largest difference {worst:e} m");
+    assert!(buried > 0, "the orography puts some levels below ground");
+
+    if let Some(h) = &real.humidity {
+        if h.kind == HumidityKind::RelativeHumidity {
+            let mut moist = real.clone();
+            let mut q = h.values.clone();
+            for ((idx, v), &t) in q.indexed_iter_mut().zip(real.temperature.iter()) {
+                let tc = f64::from(t) - 273.15;
+                // Bolton (1980), e_s = 6.112 exp(17.67 t / (t + 243.5)) hPa.
+                let e = f64::from(*v) * 611.2 * (17.67 * tc / (tc + 243.5)).exp();
+                let pk = p[idx.2];
+                *v = (0.622 * e / (pk - 0.378 * e)) as f32;
+            }
+            moist.humidity = Some(Humidity {
+                kind: HumidityKind::SpecificHumidity,
+                values: q,
+                missing_levels: h.missing_levels.clone(),
+            });
+            let (fast, columns) = both_paths(&moist, layers);
+            let (worst, n) = compare(&fast, &columns);
+            println!("GFS 2.5° moist: {n} values, largest difference {worst:e} m");
+        }
+    }
+}
+
+#[test]
+fn thickness_alone_equals_thickness_with_heights() {
+    let mut cycle = invented_cycle(1, 2, 6, 30, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let layers = layers();
+    let kernel = IsobaricKernel::new(&cycle, &layers).expect("applies");
+    let full = kernel.run(&cycle, &|_| {}).expect("run");
+    let alone = kernel.run_layers(&cycle, &|_| {}).expect("run");
+    assert_eq!(full.thickness.len(), alone.len());
+    for (a, b) in full.thickness.iter().zip(&alone) {
+        assert_eq!(a.layer, b.layer);
+        let bits = |v: &Array4<f32>| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&a.values), bits(&b.values), "{}", a.layer.label_hpa());
+        assert_eq!(a.below_ground, b.below_ground);
+    }
+    // The layer above the top level is masked everywhere.
+    assert!(alone[7].values.iter().all(|v| v.is_nan()));
+}
