@@ -476,6 +476,9 @@ async fn connect(addr: SocketAddr) -> anyhow::Result<Channel> {
     Channel::from_shared(format!("http://{addr}"))
         .context("target url")?
         .connect_timeout(Duration::from_secs(5))
+        .tcp_nodelay(true)
+        .initial_stream_window_size(hypsogrid::service::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES)
         .connect()
         .await
         .with_context(|| format!("cannot connect to {addr}"))

@@ -70,7 +70,9 @@ pub(crate) async fn channel(args: &ConnectArgs) -> Result<Channel> {
     let mut endpoint = Endpoint::from_shared(args.server.clone())
         .with_context(|| format!("--server '{}': not a URL", args.server))?
         .connect_timeout(Duration::from_secs(5))
-        .timeout(args.timeout);
+        .timeout(args.timeout)
+        .initial_stream_window_size(hypsogrid::service::STREAM_WINDOW_BYTES)
+        .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES);
     if args.server.starts_with("https://") {
         let mut tls = ClientTlsConfig::new();
         if let Some(ca) = &args.ca_cert {

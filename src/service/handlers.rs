@@ -142,7 +142,17 @@ impl HeightServiceHandlers {
             let lc = find_cycle(&call.snapshot, &r.cycle_id)?;
             let limits = self.settings.limits;
             let (lc2, q2) = (Arc::clone(&lc), Arc::clone(&query));
-            let series = blocking(&call, move || position(&lc2, &q2, &limits))
+            let times = if query.times.is_empty() {
+                lc.cycle.lead_times_s.len()
+            } else {
+                query.times.len()
+            };
+            let values = query
+                .points
+                .len()
+                .saturating_mul(query.quantities.len())
+                .saturating_mul(times);
+            let series = small_or_blocking(&call, values, move || position(&lc2, &q2, &limits))
                 .await?
                 .map_err(|e| status::query_error(e, Rpc::Position))?;
             Ok(convert::position_response(
@@ -167,7 +177,8 @@ impl HeightServiceHandlers {
             let query = ProfileQuery::try_from(r)?;
             let lc = find_cycle(&call.snapshot, &r.cycle_id)?;
             let lc2 = Arc::clone(&lc);
-            let answer = blocking(&call, move || profile(&lc2, &query))
+            // One column (four with bilinear sampling): microseconds.
+            let answer = small_or_blocking(&call, 1, move || profile(&lc2, &query))
                 .await?
                 .map_err(|e| status::query_error(e, Rpc::Profile))?;
             Ok(convert::profile_response(&lc.id, &answer))
@@ -364,6 +375,30 @@ pub(super) fn find_cycle(snapshot: &Snapshot, id: &str) -> Result<Arc<LoadedCycl
             Err(status::cycle_not_found(id, &ids))
         }
     }
+}
+
+/// Most point-values (points × quantities × times) a position or trajectory call may have to
+/// be answered on the async worker itself: such answers take microseconds, less than the hop
+/// to a blocking thread and back.
+const INLINE_POINT_VALUES: usize = 256;
+
+/// Runs small CPU work on the calling async worker (a panic becomes `INTERNAL`, as on a
+/// blocking thread), larger work with [`blocking`].
+pub(super) async fn small_or_blocking<R: Send + 'static>(
+    call: &Call,
+    point_values: usize,
+    work: impl FnOnce() -> R + Send + 'static,
+) -> Result<R, Status> {
+    if point_values > INLINE_POINT_VALUES {
+        return blocking(call, work).await;
+    }
+    if Instant::now() >= call.deadline {
+        return Err(status::deadline_exceeded(call.budget));
+    }
+    std::panic::catch_unwind(std::panic::AssertUnwindSafe(work)).map_err(|_| {
+        tracing::error!("query panicked");
+        status::internal("the query failed unexpectedly; the server log has details")
+    })
 }
 
 /// Runs CPU work on a blocking thread, within the call's deadline.

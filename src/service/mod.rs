@@ -62,6 +62,11 @@ pub const FILE_DESCRIPTOR_SET: &[u8] = tonic::include_file_descriptor_set!("hyps
 /// Full name of the project's gRPC service, as health checks and reflection list it.
 pub const SERVICE_NAME: &str = <HeightServiceServer<HeightServiceHandlers> as NamedService>::NAME;
 
+/// HTTP/2 stream flow-control window the server offers (and clients should offer), bytes.
+pub const STREAM_WINDOW_BYTES: u32 = 4 << 20;
+/// HTTP/2 connection flow-control window, bytes.
+pub const CONNECTION_WINDOW_BYTES: u32 = 16 << 20;
+
 /// Settings of the server.
 #[derive(Clone, Debug)]
 pub struct ServiceConfig {
@@ -242,7 +247,12 @@ pub async fn serve_on(
         .register_encoded_file_descriptor_set(tonic_health::pb::FILE_DESCRIPTOR_SET)
         .build_v1alpha()?;
 
-    let mut builder = Server::builder();
+    // HTTP/2 flow-control windows: the default 64 KiB would make a 200 × 200 area answer
+    // (about 200 kB) wait for several window updates from the client; these let one answer
+    // go out in one flight on a local network.
+    let mut builder = Server::builder()
+        .initial_stream_window_size(Some(STREAM_WINDOW_BYTES))
+        .initial_connection_window_size(Some(CONNECTION_WINDOW_BYTES));
     if let Some(tls) = &config.tls {
         let read = |what: &'static str, path: &PathBuf| {
             std::fs::read(path).map_err(|source| ServiceError::TlsFile {
