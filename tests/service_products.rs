@@ -377,6 +377,10 @@ async fn ensemble_statistics_over_grpc_equal_the_library_and_refuse_a_determinis
         .expect("ensemble points")
         .into_inner();
     assert_eq!(answer.members, 10);
+    assert_eq!(
+        answer.caution, CAUTION,
+        "a probability is rain-snow guidance"
+    );
     // Lead time 48 h is the third time step of the ensemble (0, 24, 48 h).
     let local = ensemble_at_points(
         &f.ensemble,

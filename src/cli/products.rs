@@ -571,6 +571,13 @@ pub(super) fn ensemble(args: EnsembleArgs) -> Result<()> {
             rows.push((p.latitude, p.longitude, p.values, p.members_used));
         }
     }
+    let probability = args.statistics.iter().any(|s| {
+        matches!(
+            s,
+            EnsembleStatistic::ProbabilityBelow(_) | EnsembleStatistic::ProbabilityAbove(_)
+        )
+    });
+    let caution = probability.then_some(CAUTION);
     let title = format!(
         "Ensemble of {} members, {}, cycle '{}', lead {}",
         lc.cycle.members,
@@ -592,6 +599,7 @@ pub(super) fn ensemble(args: EnsembleArgs) -> Result<()> {
                     "values": v.iter().map(|x| json_number(*x)).collect::<Vec<_>>(),
                     "members_used": used,
                 })).collect::<Vec<_>>(),
+                "caution": caution,
             });
             println!("{}", serde_json::to_string_pretty(&doc)?);
         }
@@ -602,6 +610,9 @@ pub(super) fn ensemble(args: EnsembleArgs) -> Result<()> {
                 cells.extend(v.iter().map(|x| csv_number(*x)));
                 cells.push(used.to_string());
                 csv.record(cells);
+            }
+            if let Some(c) = caution {
+                println!("# {c}");
             }
             print!("{}", csv.finish());
         }
@@ -640,6 +651,9 @@ pub(super) fn ensemble(args: EnsembleArgs) -> Result<()> {
                     table.row(cells);
                 }
                 print!("{}", table.render());
+            }
+            if let Some(c) = caution {
+                println!("\nCaution: {c}");
             }
         }
     }

@@ -153,6 +153,22 @@ fn statistic_wire(s: &EnsembleStatistic) -> pb::EnsembleStatistic {
     pb::EnsembleStatistic { kind: Some(kind) }
 }
 
+/// The guidance caution when any statistic is a threshold probability (P(1000–500 hPa <
+/// 5400 m) is read as rain–snow guidance), else empty.
+fn probability_caution(stats: &[EnsembleStatistic]) -> String {
+    let probability = stats.iter().any(|s| {
+        matches!(
+            s,
+            EnsembleStatistic::ProbabilityBelow(_) | EnsembleStatistic::ProbabilityAbove(_)
+        )
+    });
+    if probability {
+        CAUTION.to_string()
+    } else {
+        String::new()
+    }
+}
+
 fn points(ps: &[pb::GeoPoint]) -> Result<Vec<(f64, f64)>, FieldError> {
     if ps.is_empty() {
         return Err(FieldError::new(
@@ -552,6 +568,7 @@ impl ProductService for HeightServiceHandlers {
                 latitudes_deg: area.latitudes,
                 longitudes_deg: area.longitudes,
                 values,
+                caution: probability_caution(std::slice::from_ref(&stat)),
             })
         }
         .await;
@@ -590,6 +607,7 @@ impl ProductService for HeightServiceHandlers {
                 field: Some(resolved_field(&resolved)),
                 statistics: stats.iter().map(statistic_wire).collect(),
                 members: members as u32,
+                caution: probability_caution(&stats),
                 points: out
                     .into_iter()
                     .map(|p| pb::PointEnsemble {
