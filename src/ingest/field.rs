@@ -325,12 +325,25 @@ impl Decoder {
         );
         let identity = self.linear == Linear::IDENTITY;
         let (scale, offset) = (self.linear.scale, self.linear.offset);
-        for (i, v) in data.iter_mut().enumerate() {
+        // One branch-light pass over the whole field (hundreds of megabytes on a global
+        // cycle): the usual one or two fill values are compared without a loop, and an
+        // implausible value is only noted here and located afterwards, so that the loop has
+        // no early exit.
+        let (fill0, fill1) = match fills.as_slice() {
+            [] => (f32::NAN, f32::NAN),
+            [a] => (*a, f32::NAN),
+            [a, b, ..] => (*a, *b),
+        };
+        let more_fills = fills.get(2..).unwrap_or(&[]);
+        let mut implausible = false;
+        for v in data.iter_mut() {
             let r = *v;
             let missing = !r.is_finite()
-                || fills.contains(&r)
-                || (has_range && (f64::from(r) < min || f64::from(r) > max));
-            *v = if missing {
+                | (r == fill0)
+                | (r == fill1)
+                | (!more_fills.is_empty() && more_fills.contains(&r))
+                | (has_range & ((f64::from(r) < min) | (f64::from(r) > max)));
+            let mut x = if missing {
                 f32::NAN
             } else if identity {
                 r
@@ -338,12 +351,19 @@ impl Decoder {
                 (f64::from(r) * scale + offset) as f32
             };
             if let Some(l) = limits {
-                if !l.admit(v) {
-                    return Some(i);
-                }
+                implausible |= !l.admit(&mut x);
             }
+            *v = x;
         }
-        None
+        if !implausible {
+            return None;
+        }
+        // `admit` leaves an implausible value as it is, so the same test finds the first.
+        let l = limits?;
+        data.iter().position(|&v| {
+            let mut x = v;
+            !l.admit(&mut x)
+        })
     }
 
     /// One raw value to SI, `NaN` when missing.
