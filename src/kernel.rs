@@ -18,12 +18,11 @@
 //!
 //! # Where the time goes
 //! At 0.25° (721 x 1440 x 37) the outputs are 154 MB of heights and 38 MB of flags in fresh
-//! allocations, and touching fresh pages costs about as much as the arithmetic on a virtual
-//! machine with 4 KiB pages (see `benches/kernel.rs`, which also times a memory-floor pass
-//! that only reads temperature and humidity and writes one value per point-level). With
-//! glibc, `GLIBC_TUNABLES=glibc.malloc.hugetlb=1` in the environment of the process lets
-//! large allocations use transparent huge pages where the kernel allows them (`madvise`
-//! mode), which removes most of that cost.
+//! allocations, offered for transparent huge pages (`src/buffers.rs`); the system still
+//! zeroes and maps them, which is most of the memory floor that `benches/kernel.rs` times
+//! (a pass that only reads temperature and humidity and writes one value per point-level).
+//! With the output paged in, the arithmetic dominates: one division, a nine-term polynomial
+//! and the virtual temperature per point-level, in `f64`.
 //!
 //! # Same answers as the column path
 //! The arithmetic is that of [`crate::physics::column::ColumnNodes::isobaric`] step for step
@@ -88,7 +87,7 @@ const INV_ATANH_COEFFS: [f64; 9] = [
 /// # Method
 /// With `u = (t1 − t2)/(t1 + t2)`, `ln(t1/t2) = 2 artanh u`, so the logarithmic mean is
 /// `(t1 − t2)/ln(t1/t2) = ((t1 + t2)/2) · R(u²)` with `R(s) = u/artanh(u)`, the reciprocal of
-/// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁸` ([`INV_ATANH_COEFFS`]),
+/// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁸` (`INV_ATANH_COEFFS`),
 /// evaluated by Estrin's scheme. Taking the reciprocal series instead of dividing by `S`
 /// saves the second of two divisions per point-level, the slowest instruction of the loop.
 ///
