@@ -401,6 +401,31 @@ async fn health_follows_the_store_and_reflection_lists_the_service() {
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn health_watch_sends_a_status_only_when_it_changes() {
+    // gRPC health checking protocol (grpc/grpc doc/health-checking.md): Watch sends the
+    // current status, then a new message whenever the status changes. The server used to
+    // send SERVING a second time when its store follower started.
+    let server = start(demo_store(), ServiceConfig::default()).await;
+    let channel = server.channel().await;
+    let mut watch = HealthClient::new(channel)
+        .watch(HealthCheckRequest {
+            service: String::new(),
+        })
+        .await
+        .expect("watch")
+        .into_inner();
+    let first = watch.message().await.expect("watch").expect("status");
+    assert_eq!(first.status, ServingStatus::Serving as i32);
+    let again = tokio::time::timeout(Duration::from_millis(300), watch.message()).await;
+    assert!(
+        again.is_err(),
+        "no second message without a change: {again:?}"
+    );
+    drop(watch);
+    server.shutdown().await;
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn shutdown_lets_an_in_flight_request_finish_and_reports_not_serving() {
     let server = start(
         demo_store(),

@@ -231,10 +231,7 @@ pub async fn serve_on(
     };
 
     let (reporter, health_service) = tonic_health::server::health_reporter();
-    let health = Arc::new(HealthState {
-        reporter,
-        stopped: Mutex::new(false),
-    });
+    let health = Arc::new(HealthState::new(reporter));
     health.set(!store.snapshot().cycles.is_empty()).await;
     let follower = tokio::spawn(follow_store(Arc::clone(&store), Arc::clone(&health)));
 
@@ -553,32 +550,56 @@ impl Drop for MeteredStream {
     }
 }
 
-/// The health reporter, and whether shutdown has begun (after which nothing sets SERVING).
+/// The health reporter, and what it last reported.
 struct HealthState {
     reporter: HealthReporter,
-    stopped: Mutex<bool>,
+    state: Mutex<Reported>,
+}
+
+/// What the health service has been told so far.
+#[derive(Default)]
+struct Reported {
+    /// The status last set on both names, if any.
+    last: Option<ServingStatus>,
+    /// Shutdown has begun: nothing sets SERVING again.
+    stopped: bool,
 }
 
 impl HealthState {
-    /// Sets both names SERVING or NOT_SERVING, unless shutdown has begun.
-    async fn set(&self, serving: bool) {
-        let stopped = self.stopped.lock().await;
-        if *stopped {
-            return;
+    fn new(reporter: HealthReporter) -> Self {
+        Self {
+            reporter,
+            state: Mutex::new(Reported::default()),
         }
+    }
+
+    /// Sets both names SERVING or NOT_SERVING, unless shutdown has begun or that is already
+    /// the status: the health protocol's Watch sends a message when the status changes, and
+    /// the reporter would otherwise send the same status again to every watcher (as when the
+    /// store follower starts and confirms the status the server started with).
+    async fn set(&self, serving: bool) {
+        let mut state = self.state.lock().await;
         let status = if serving {
             ServingStatus::Serving
         } else {
             ServingStatus::NotServing
         };
+        if state.stopped || state.last == Some(status) {
+            return;
+        }
+        state.last = Some(status);
         self.reporter.set_service_status("", status).await;
         self.reporter.set_service_status(SERVICE_NAME, status).await;
     }
 
     /// NOT_SERVING for good.
     async fn stop(&self) {
-        let mut stopped = self.stopped.lock().await;
-        *stopped = true;
+        let mut state = self.state.lock().await;
+        state.stopped = true;
+        if state.last == Some(ServingStatus::NotServing) {
+            return;
+        }
+        state.last = Some(ServingStatus::NotServing);
         for name in ["", SERVICE_NAME] {
             self.reporter
                 .set_service_status(name, ServingStatus::NotServing)
