@@ -320,6 +320,27 @@ async fn guidance_over_grpc_carries_the_caution_and_the_thresholds_asked_for() {
     assert_eq!(p.freezing_level_m, local.freezing_level_m);
     assert_eq!(p.thickness_1000_500_m, local.thickness_1000_500.value_m);
 
+    // A point off the grid is refused as that point: OUT_OF_RANGE, naming `points[1]`.
+    let off = c
+        .get_guidance_points(pb::GuidancePointsRequest {
+            field: Some(selection(DEMO_FILE_NAME, 24)),
+            points: vec![
+                pb::GeoPoint {
+                    latitude_deg: site.0,
+                    longitude_deg: site.1,
+                },
+                pb::GeoPoint {
+                    latitude_deg: -60.0,
+                    longitude_deg: 120.0,
+                },
+            ],
+            thresholds: None,
+        })
+        .await
+        .expect_err("a point off the grid");
+    assert_eq!(off.code(), Code::OutOfRange);
+    assert!(off.message().starts_with("points[1]"), "{}", off.message());
+
     let bad = c
         .get_guidance_area(pb::GuidanceAreaRequest {
             field: Some(selection(DEMO_FILE_NAME, 24)),

@@ -6,7 +6,6 @@
 //! same library functions as the command line (`crate::products::orders` and friends), so a
 //! chart from `RenderChart` and one from `hypsogrid chart` on the same file are the same bytes.
 
-use std::sync::Arc;
 use std::time::Instant;
 
 use tonic::{Request, Response, Status};
@@ -19,7 +18,8 @@ use crate::pb;
 use crate::pb::product_service_server::ProductService;
 use crate::products::ensemble::{ensemble_at_points, ensemble_grid, EnsembleStatistic};
 use crate::products::guidance::{
-    guidance_at_point, guidance_grid, GuidanceSettings, PointGuidance, PrecipitationType, CAUTION,
+    guidance_at_point, guidance_grid, GuidanceError, GuidanceSettings, PointGuidance,
+    PrecipitationType, CAUTION,
 };
 use crate::products::orders::{
     field_chart, field_isolines, guidance_chart, isolines_geojson, resolve, ChartOptions,
@@ -30,7 +30,7 @@ use crate::products::verify::{
     VerifyRequest,
 };
 use crate::products::ProductError;
-use crate::query::{select_area, LoadedCycle, Quantity, TimeSelector};
+use crate::query::{select_area, Quantity, TimeSelector};
 
 /// Most points one guidance or ensemble point request may name.
 const MAX_PRODUCT_POINTS: usize = 10_000;
@@ -279,12 +279,6 @@ async fn product<R: Send + 'static>(
         .map_err(|e| status::product_error(e, selection))
 }
 
-impl HeightServiceHandlers {
-    fn cycle_of(&self, call: &super::handlers::Call, id: &str) -> Result<Arc<LoadedCycle>, Status> {
-        find_cycle(&call.snapshot, id)
-    }
-}
-
 #[tonic::async_trait]
 impl ProductService for HeightServiceHandlers {
     #[tracing::instrument(skip_all, fields(method = "GetIsolines", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -317,7 +311,7 @@ impl ProductService for HeightServiceHandlers {
                     .into())
                 }
             };
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let include_geojson = r.include_geojson;
             let answer = product(&call, "field", move || {
                 let lines = field_isolines(&lc, &choice, &levels)?;
@@ -381,7 +375,7 @@ impl ProductService for HeightServiceHandlers {
                 width: r.width.unwrap_or(defaults.width),
                 height: r.height.unwrap_or(defaults.height),
             };
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let chart = match kind {
                 pb::ChartKind::Field => {
                     let choice = selection.choice()?;
@@ -430,7 +424,7 @@ impl ProductService for HeightServiceHandlers {
             let bbox = crate::query::BoundingBox::from(r.bbox.as_ref().ok_or_else(|| missing("bbox"))?);
             let stride = r.stride.unwrap_or(1) as usize;
             let settings = guidance_settings(r.thresholds.as_ref())?;
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let limit = self.settings().limits.max_points;
             let answer = product(&call, "field", move || {
@@ -499,7 +493,7 @@ impl ProductService for HeightServiceHandlers {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let pts = points(&r.points)?;
             let settings = guidance_settings(r.thresholds.as_ref())?;
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let answer = product(&call, "field", move || {
                 let resolved = resolve(&lc, time.as_ref(), member)?;
@@ -507,11 +501,16 @@ impl ProductService for HeightServiceHandlers {
                 for (i, &(lat, lon)) in pts.iter().enumerate() {
                     let p =
                         guidance_at_point(&lc, lat, lon, resolved.time_index, member, &settings)
-                            .map_err(|e| {
-                                ProductError::Query(crate::query::QueryError::OutOfRange {
-                                    field: format!("points[{i}]"),
-                                    message: e.to_string(),
-                                })
+                            .map_err(|e| match e {
+                                // A point off the grid is that point's fault; anything else
+                                // (the cycle's fields, the member) maps as for the area.
+                                GuidanceError::Position(_) => {
+                                    ProductError::Query(crate::query::QueryError::OutOfRange {
+                                        field: format!("points[{i}]"),
+                                        message: e.to_string(),
+                                    })
+                                }
+                                other => ProductError::Guidance(other),
                             })?;
                     out.push(p);
                 }
@@ -545,7 +544,7 @@ impl ProductService for HeightServiceHandlers {
             let bbox =
                 crate::query::BoundingBox::from(r.bbox.as_ref().ok_or_else(|| missing("bbox"))?);
             let stride = r.stride.unwrap_or(1) as usize;
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let time = selection.time;
             let answer = product(&call, "field", move || {
                 let resolved = resolve(&lc, time.as_ref(), 0)?;
@@ -593,7 +592,7 @@ impl ProductService for HeightServiceHandlers {
                 .enumerate()
                 .map(|(i, s)| statistic(Some(s), &format!("statistics[{i}]")))
                 .collect::<Result<Vec<_>, _>>()?;
-            let lc = self.cycle_of(&call, &selection.cycle_id)?;
+            let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let time = selection.time;
             let stats2 = stats.clone();
             let answer = product(&call, "field", move || {
@@ -648,7 +647,7 @@ impl ProductService for HeightServiceHandlers {
                 .enumerate()
                 .map(|(i, g)| region(g, i))
                 .collect::<Result<Vec<_>, _>>()?;
-            let forecast = self.cycle_of(&call, &r.forecast_cycle_id)?;
+            let forecast = find_cycle(&call.snapshot, &r.forecast_cycle_id)?;
             let (member, include_below_ground) = (r.member as usize, r.include_below_ground);
             let report = if r.analysis_cycle_id.is_empty() {
                 let request = ConsistencyRequest {
