@@ -477,7 +477,8 @@ fn hpa(p_pa: f64) -> f64 {
 // Validation shared by every query.
 // ---------------------------------------------------------------------------------------------
 
-fn check_member(lc: &LoadedCycle, member: usize) -> Result<(), QueryError> {
+/// Refuses a member the cycle does not have (NOT_FOUND on `member`, naming the range).
+pub(crate) fn check_member(lc: &LoadedCycle, member: usize) -> Result<(), QueryError> {
     let members = lc.cycle.members;
     if member >= members {
         return Err(not_found(

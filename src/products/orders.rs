@@ -54,15 +54,7 @@ pub fn resolve(
         Some(t) => time_index(lc, t)?,
         None => 0,
     };
-    if member >= lc.cycle.members {
-        return Err(ProductError::Query(crate::query::QueryError::NotFound {
-            field: "member".to_string(),
-            message: format!(
-                "member {member} is not in cycle '{}', which has {} member(s)",
-                lc.id, lc.cycle.members
-            ),
-        }));
-    }
+    crate::query::check_member(lc, member)?;
     Ok(Resolved {
         cycle_id: lc.id.clone(),
         time_index: index,
