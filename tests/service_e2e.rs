@@ -400,13 +400,10 @@ async fn health_follows_the_store_and_reflection_lists_the_service() {
     server.shutdown().await;
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn health_watch_sends_a_status_only_when_it_changes() {
-    // gRPC health checking protocol (grpc/grpc doc/health-checking.md): Watch sends the
-    // current status, then a new message whenever the status changes. The server used to
-    // send SERVING a second time when its store follower started.
-    let server = start(demo_store(), ServiceConfig::default()).await;
-    let channel = server.channel().await;
+/// A health Watch on the whole server, after checking that its first message is SERVING.
+async fn watch_serving(
+    channel: tonic::transport::Channel,
+) -> tonic::Streaming<tonic_health::pb::HealthCheckResponse> {
     let mut watch = HealthClient::new(channel)
         .watch(HealthCheckRequest {
             service: String::new(),
@@ -416,6 +413,17 @@ async fn health_watch_sends_a_status_only_when_it_changes() {
         .into_inner();
     let first = watch.message().await.expect("watch").expect("status");
     assert_eq!(first.status, ServingStatus::Serving as i32);
+    watch
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn health_watch_sends_a_status_only_when_it_changes() {
+    // gRPC health checking protocol (grpc/grpc doc/health-checking.md): Watch sends the
+    // current status, then a new message whenever the status changes. The server used to
+    // send SERVING a second time when its store follower started.
+    let server = start(demo_store(), ServiceConfig::default()).await;
+    let channel = server.channel().await;
+    let mut watch = watch_serving(channel).await;
     let again = tokio::time::timeout(Duration::from_millis(300), watch.message()).await;
     assert!(
         again.is_err(),
@@ -438,15 +446,7 @@ async fn shutdown_lets_an_in_flight_request_finish_and_reports_not_serving() {
     )
     .await;
     let channel = server.channel().await;
-    let mut watch = HealthClient::new(channel.clone())
-        .watch(HealthCheckRequest {
-            service: String::new(),
-        })
-        .await
-        .expect("watch")
-        .into_inner();
-    let first = watch.message().await.expect("watch").expect("status");
-    assert_eq!(first.status, ServingStatus::Serving as i32);
+    let mut watch = watch_serving(channel.clone()).await;
 
     let mut client = HeightServiceClient::new(channel.clone());
     let mut stream = client

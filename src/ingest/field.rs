@@ -318,7 +318,7 @@ impl Decoder {
     /// Decode raw values read as `f32` (f32 variables and integers of 16 bits or fewer, all
     /// exact in `f32`) in place: one tight pass, no allocation.
     /// With `limits`, also checks plausibility in the same pass and returns the first
-    /// implausible index (decoding stops there).
+    /// implausible index (the pass still decodes every value).
     pub(crate) fn decode_narrow_in_place(
         &self,
         data: &mut [f32],
