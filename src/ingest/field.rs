@@ -339,7 +339,6 @@ impl Decoder {
             [a] => (*a, f32::NAN),
             [a, b, ..] => (*a, *b),
         };
-        let limits_or_none = limits.unwrap_or(Limits::NONE);
         let pass = DecodePass {
             fill0,
             fill1,
@@ -347,9 +346,7 @@ impl Decoder {
             max: self.raw_max.unwrap_or(f64::INFINITY),
             scale: self.linear.scale,
             offset: self.linear.offset,
-            lo: limits_or_none.lo,
-            hi: limits_or_none.hi,
-            floor: limits_or_none.floor,
+            limits: limits.unwrap_or(Limits::NONE),
         };
         let implausible = decode_pass(self.linear == Linear::IDENTITY, &pass, data);
         if !implausible {
@@ -395,10 +392,8 @@ struct DecodePass {
     /// Unpacking and conversion to SI: `raw * scale + offset`.
     scale: f64,
     offset: f64,
-    /// Plausibility limits of [`Limits`] (infinite when none).
-    lo: f32,
-    hi: f32,
-    floor: f32,
+    /// Plausibility limits ([`Limits::NONE`] when none).
+    limits: Limits,
 }
 
 /// One decoding pass without a branch on the data (selects only), so that it compiles to
@@ -419,10 +414,11 @@ fn decode_lanes<const IDENTITY: bool>(p: &DecodePass, data: &mut [f32]) -> bool 
             (rd * p.scale + p.offset) as f32
         };
         let x = if missing { f32::NAN } else { x };
-        let below = x < p.lo;
-        let clamp = below & (x >= p.floor);
-        bad |= (below & !clamp) | (x > p.hi);
-        *v = if clamp { p.lo } else { x };
+        let l = p.limits;
+        let below = x < l.lo;
+        let clamp = below & (x >= l.floor);
+        bad |= (below & !clamp) | (x > l.hi);
+        *v = if clamp { l.lo } else { x };
     }
     bad
 }
