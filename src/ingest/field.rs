@@ -480,14 +480,7 @@ struct Decoded {
 fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
     let var = req.var;
     let shape: Vec<usize> = var.dimensions().iter().map(|d| d.len()).collect();
-    let total = shape
-        .iter()
-        .try_fold(1usize, |acc, &n| acc.checked_mul(n))
-        .ok_or_else(|| IngestError::Layout {
-            file: req.file.to_string(),
-            variable: var.name(),
-            detail: "is too large to address".into(),
-        })?;
+    let total = value_count(req.file, var, &shape)?;
     let (storage, default_fill) = storage_of(req.file, var)?;
     let decoder = Decoder::new(req.file, var, storage, default_fill, req.to_si)?;
     let mut data: Vec<f32> = crate::buffers::zeroed_field(total);
@@ -543,8 +536,8 @@ fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
     Ok(Decoded { shape, data, bad })
 }
 
-/// The error for the implausible value at flat index `i` (file order).
-fn implausible(req: &FieldRequest<'_, '_>, shape: &[usize], data: &[f32], i: usize) -> IngestError {
+/// The error for the implausible `value` at flat index `i` (file order).
+fn implausible(req: &FieldRequest<'_, '_>, shape: &[usize], value: f32, i: usize) -> IngestError {
     let names: Vec<String> = req.var.dimensions().iter().map(|d| d.name()).collect();
     let mut rem = i;
     let mut idx = vec![0usize; shape.len()];
@@ -568,7 +561,7 @@ fn implausible(req: &FieldRequest<'_, '_>, shape: &[usize], data: &[f32], i: usi
         file: req.file.to_string(),
         variable: req.var.name(),
         found: Box::new(super::Implausibility {
-            value: data.get(i).map(|&v| f64::from(v)).unwrap_or(f64::NAN),
+            value: f64::from(value),
             units,
             index: format!("[{index}]"),
             range: format!("{lo}-{hi} {units}"),
@@ -599,6 +592,155 @@ pub(crate) fn reverse_axis_in_place<T>(data: &mut [T], outer: usize, n: usize, i
     }
 }
 
+/// The canonical shape `[member, time, level, lat, lon]` of a variable of `file_shape`.
+fn canonical_shape(axes: &AxisPositions, file_shape: &[usize]) -> [usize; 5] {
+    let mut shape = [1usize; 5];
+    for (c, pos) in axes.iter().enumerate() {
+        if let (Some(p), Some(slot)) = (pos, shape.get_mut(c)) {
+            *slot = file_shape.get(*p).copied().unwrap_or(1);
+        }
+    }
+    shape
+}
+
+/// The canonical axes present, as `(file position, canonical index)` in file order; other
+/// dimensions have length 1 and drop out.
+fn present_axes(axes: &AxisPositions) -> Vec<(usize, usize)> {
+    let mut v: Vec<(usize, usize)> = axes
+        .iter()
+        .enumerate()
+        .filter_map(|(c, p)| p.map(|p| (p, c)))
+        .collect();
+    v.sort_unstable();
+    v
+}
+
+/// Whether the file lists the present axes in canonical order (so that file order is
+/// canonical order).
+fn in_canonical_order(present: &[(usize, usize)]) -> bool {
+    present.windows(2).all(|w| match w {
+        [(_, a), (_, b)] => a < b,
+        _ => true,
+    })
+}
+
+/// The number of values of a variable of `shape`, refused when it overflows.
+fn value_count(file: &str, var: &Variable<'_>, shape: &[usize]) -> Result<usize, IngestError> {
+    shape
+        .iter()
+        .try_fold(1usize, |acc, &n| acc.checked_mul(n))
+        .ok_or_else(|| IngestError::Layout {
+            file: file.to_string(),
+            variable: var.name(),
+            detail: "is too large to address".into(),
+        })
+}
+
+/// A field whose values are read one (member, time) step at a time, after the rest of the
+/// cycle, so that work on the first steps can start while later ones are still being read
+/// (see [`super::read_cycle_overlapped`]).
+///
+/// Planned only where a step is one contiguous run of the file: values stored as `f32` (or
+/// narrow integers), dimensions in canonical order. Each step goes through the same decoding
+/// pass, plausibility test and level reversal as a whole-variable read, so the values are
+/// the same bit for bit.
+pub(crate) struct StepwiseField<'f> {
+    var: Variable<'f>,
+    file_shape: Vec<usize>,
+    axes: AxisPositions,
+    reverse_levels: bool,
+    to_si: Linear,
+    check: Option<Plausible>,
+    decoder: Decoder,
+    shape: [usize; 5],
+}
+
+impl<'f> StepwiseField<'f> {
+    /// The plan for `req`, or `None` when its layout needs a whole-variable read.
+    pub(crate) fn plan(req: &FieldRequest<'_, 'f>) -> Result<Option<Self>, IngestError> {
+        let var = req.var;
+        let file_shape: Vec<usize> = var.dimensions().iter().map(|d| d.len()).collect();
+        value_count(req.file, var, &file_shape)?;
+        let (storage, default_fill) = storage_of(req.file, var)?;
+        if !matches!(storage, Storage::Narrow { .. })
+            || !in_canonical_order(&present_axes(&req.axes))
+        {
+            return Ok(None);
+        }
+        let decoder = Decoder::new(req.file, var, storage, default_fill, req.to_si)?;
+        Ok(Some(Self {
+            var: var.clone(),
+            shape: canonical_shape(&req.axes, &file_shape),
+            file_shape,
+            axes: req.axes,
+            reverse_levels: req.reverse_levels,
+            to_si: req.to_si,
+            check: req.check,
+            decoder,
+        }))
+    }
+
+    /// The canonical shape `[member, time, level, lat, lon]`.
+    pub(crate) fn shape(&self) -> [usize; 5] {
+        self.shape
+    }
+
+    /// The variable's name in the file.
+    pub(crate) fn name(&self) -> String {
+        self.var.name()
+    }
+
+    /// Reads and decodes step (`member`, `time`) into `out`, `[level, lat, lon]`
+    /// bottom-up, SI units; `out` has exactly one step's length.
+    pub(crate) fn read_step(
+        &self,
+        file: &str,
+        member: usize,
+        time: usize,
+        out: &mut [f32],
+    ) -> Result<(), IngestError> {
+        let extents: Vec<Extent> = (0..self.file_shape.len())
+            .map(|d| {
+                if self.axes[0] == Some(d) {
+                    Extent::from(member..member + 1)
+                } else if self.axes[1] == Some(d) {
+                    Extent::from(time..time + 1)
+                } else {
+                    Extent::from(..)
+                }
+            })
+            .collect();
+        self.var
+            .get_values_into::<f32, _>(out, extents)
+            .map_err(|e| read_error(file, &self.var, e))?;
+        let limits = self.check.as_ref().map(Limits::of);
+        if let Some(i) = self.decoder.decode_narrow_in_place(out, limits) {
+            let req = FieldRequest {
+                file,
+                var: &self.var,
+                axes: self.axes,
+                reverse_levels: self.reverse_levels,
+                to_si: self.to_si,
+                check: self.check,
+            };
+            // File order is canonical order here, steps first.
+            let step = member * self.shape[1] + time;
+            let value = out.get(i).copied().unwrap_or(f32::NAN);
+            return Err(implausible(
+                &req,
+                &self.file_shape,
+                value,
+                step * out.len() + i,
+            ));
+        }
+        if self.reverse_levels {
+            let [_, _, z, y, x] = self.shape;
+            reverse_axis_in_place(out, 1, z, y * x);
+        }
+        Ok(())
+    }
+}
+
 /// Read a variable into canonical order, SI units, bottom-up.
 pub(crate) fn read_canonical(req: &FieldRequest<'_, '_>) -> Result<Canonical, IngestError> {
     let Decoded {
@@ -607,30 +749,12 @@ pub(crate) fn read_canonical(req: &FieldRequest<'_, '_>) -> Result<Canonical, In
         bad,
     } = read_decoded(req)?;
     if let Some(i) = bad {
-        return Err(implausible(req, &file_shape, &data, i));
+        let value = data.get(i).copied().unwrap_or(f32::NAN);
+        return Err(implausible(req, &file_shape, value, i));
     }
-    let mut shape = [1usize; 5];
-    for (c, pos) in req.axes.iter().enumerate() {
-        if let (Some(p), Some(slot)) = (pos, shape.get_mut(c)) {
-            *slot = file_shape.get(*p).copied().unwrap_or(1);
-        }
-    }
-    // The axes present, in file order; other dimensions have length 1 and drop out.
-    let present: Vec<(usize, usize)> = {
-        let mut v: Vec<(usize, usize)> = req
-            .axes
-            .iter()
-            .enumerate()
-            .filter_map(|(c, p)| p.map(|p| (p, c)))
-            .collect();
-        v.sort_unstable();
-        v
-    };
-    let in_order = present.windows(2).all(|w| match w {
-        [(_, a), (_, b)] => a < b,
-        _ => true,
-    });
-    if !in_order {
+    let shape = canonical_shape(&req.axes, &file_shape);
+    let present = present_axes(&req.axes);
+    if !in_canonical_order(&present) {
         let file_dims: Vec<usize> = present
             .iter()
             .map(|&(_, c)| shape.get(c).copied().unwrap_or(1))

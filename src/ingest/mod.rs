@@ -26,10 +26,13 @@ pub mod vertical;
 
 use std::io::Read;
 use std::path::Path;
+use std::sync::mpsc;
+
+use ndarray::ArrayView3;
 
 pub use names::{load_config, NameMap, Role};
 
-use crate::model::Cycle;
+use crate::model::{Cycle, Field5};
 
 /// Settings for reading one cycle.
 #[derive(Clone, Debug, Default)]
@@ -243,17 +246,224 @@ impl std::fmt::Display for Implausibility {
 /// bottom-up levels, `[member, time, level, lat, lon]`, humidity aligned onto the temperature
 /// levels by pressure value, surface fields broadcast to every member and time step.
 pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestError> {
+    let label = checked_label(path)?;
+    let _session = crate::netcdf_session::lock();
+    let file = open_quietly(path, &label)?;
+    reader::Reader::new(&file, label, config).read(path)
+}
+
+/// The file's label for messages, after the checks that must pass before the NetCDF library
+/// opens it.
+fn checked_label(path: &Path) -> Result<String, IngestError> {
     let label = path.display().to_string();
     if check_signature(path, &label)? {
         check_classic_length(path, &label)?;
     }
-    let _session = crate::netcdf_session::lock();
+    Ok(label)
+}
+
+/// Opens the file with HDF5's error printing off on this thread (the caller holds the
+/// session lock).
+fn open_quietly(path: &Path, label: &str) -> Result<netcdf::File, IngestError> {
     hdf5::quiet_on_this_thread();
-    let file = netcdf::open(path).map_err(|e| IngestError::Damaged {
-        file: label.clone(),
+    netcdf::open(path).map_err(|e| IngestError::Damaged {
+        file: label.to_string(),
         detail: e.to_string().to_lowercase(),
-    })?;
-    reader::Reader::new(&file, label, config).read(path)
+    })
+}
+
+/// One (member, time) step of temperature and humidity as [`read_cycle_overlapped`] hands
+/// it over: `[level, lat, lon]`, bottom-up, SI units, exactly the values that
+/// [`read_cycle`] puts in the cycle at this step.
+pub struct FilledStep<'a> {
+    /// Member index.
+    pub member: usize,
+    /// Time step index.
+    pub time: usize,
+    /// Air temperature, K.
+    pub temperature: ArrayView3<'a, f32>,
+    /// The humidity of the cycle (its kind is [`crate::model::Humidity::kind`]), when it
+    /// has one.
+    pub humidity: Option<ArrayView3<'a, f32>>,
+}
+
+/// The steps of a cycle in file order, each as soon as it has been read.
+pub struct StepFeed<'a> {
+    steps: mpsc::Receiver<FilledStep<'a>>,
+}
+
+impl<'a> Iterator for StepFeed<'a> {
+    type Item = FilledStep<'a>;
+
+    fn next(&mut self) -> Option<FilledStep<'a>> {
+        self.steps.recv().ok()
+    }
+}
+
+/// Reads a cycle as [`read_cycle`] does, and lets `work` start on each (member, time) step
+/// of temperature and humidity while the later steps are still being read.
+///
+/// First everything but the values of temperature and humidity is read (coordinates,
+/// surface fields, file heights). `prepare` then sees the cycle with the final shapes and
+/// metadata, its temperature and humidity still zero, and returns what `work` needs, or
+/// `None` to decline. `work` runs on a thread of its own with the cycle (its temperature
+/// and humidity arrays empty meanwhile: take the values from the steps) and the feed of
+/// steps, while this thread reads the steps one by one, in file order, under the NetCDF
+/// session lock.
+///
+/// Returns the cycle (complete, the same as [`read_cycle`] gives) and what `work` returned;
+/// `None` when `prepare` declined or the file's layout needs whole-variable reads (packed
+/// as wider types, dimensions out of order, humidity on its own axis or broadcast): then
+/// nothing overlaps and the caller does its work on the cycle afterwards.
+///
+/// # Errors
+/// As [`read_cycle`], with the same messages. A bad value in a later step is found only
+/// when that step is read: `work` then sees the feed end early, and its result is dropped.
+pub fn read_cycle_overlapped<W, R, P, F>(
+    path: &Path,
+    config: &IngestConfig,
+    prepare: P,
+    work: F,
+) -> Result<(Cycle, Option<R>), IngestError>
+where
+    W: Send,
+    R: Send,
+    P: FnOnce(&Cycle) -> Option<W>,
+    F: for<'a> FnOnce(W, &'a Cycle, StepFeed<'a>) -> R + Send,
+{
+    let label = checked_label(path)?;
+    let _session = crate::netcdf_session::lock();
+    let file = open_quietly(path, &label)?;
+    let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
+    let mut cycle = reader.read(path)?;
+    let planned = reader.take_stepwise();
+    let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
+    let t_plan = plan_of(reader::Bulk::Temperature);
+    let q_plan = plan_of(reader::Bulk::Humidity);
+    let fields = Stepwise {
+        file: &label,
+        temperature: t_plan,
+        humidity: q_plan,
+    };
+    let complete = t_plan.is_some() && (cycle.humidity.is_none() || q_plan.is_some());
+    let state = if complete { prepare(&cycle) } else { None };
+    let Some(state) = state else {
+        let mut t = std::mem::take(&mut cycle.temperature);
+        let mut q = cycle
+            .humidity
+            .as_mut()
+            .map(|h| std::mem::take(&mut h.values));
+        let filled = fields.fill(&mut t, q.as_mut(), |_| {});
+        restore(&mut cycle, t, q);
+        filled?;
+        fields.check_valid(&cycle)?;
+        return Ok((cycle, None));
+    };
+    let mut t = std::mem::take(&mut cycle.temperature);
+    let mut q = cycle
+        .humidity
+        .as_mut()
+        .map(|h| std::mem::take(&mut h.values));
+    let (filled, result) = std::thread::scope(|scope| {
+        let (tx, rx) = mpsc::channel();
+        let shell = &cycle;
+        let worker = scope.spawn(move || work(state, shell, StepFeed { steps: rx }));
+        let filled = fields.fill(&mut t, q.as_mut(), |step| {
+            // A worker that stopped early needs no more steps; reading goes on regardless.
+            let _ = tx.send(step);
+        });
+        drop(tx);
+        let result = worker.join();
+        (filled, result)
+    });
+    restore(&mut cycle, t, q);
+    let result = result.unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+    filled?;
+    fields.check_valid(&cycle)?;
+    Ok((cycle, Some(result)))
+}
+
+/// Puts the temperature and humidity values back into the cycle.
+fn restore(cycle: &mut Cycle, t: Field5, q: Option<Field5>) {
+    cycle.temperature = t;
+    if let (Some(h), Some(q)) = (cycle.humidity.as_mut(), q) {
+        h.values = q;
+    }
+}
+
+/// The planned stepwise fields of one read.
+struct Stepwise<'p, 'f> {
+    file: &'p str,
+    temperature: Option<&'p field::StepwiseField<'f>>,
+    humidity: Option<&'p field::StepwiseField<'f>>,
+}
+
+impl Stepwise<'_, '_> {
+    /// Reads every planned field step by step into its array (`t`, `q`: the cycle's
+    /// temperature and humidity, zero where planned), handing each step to `sink` once both
+    /// of its fields are in.
+    fn fill<'s>(
+        &self,
+        t: &'s mut Field5,
+        q: Option<&'s mut Field5>,
+        mut sink: impl FnMut(FilledStep<'s>),
+    ) -> Result<(), IngestError> {
+        let (members, times, levels, rows, cols) = t.dim();
+        let step_len = levels * rows * cols;
+        if step_len == 0 {
+            return Ok(());
+        }
+        let (Some(t_all), q_all) = (t.as_slice_mut(), q.and_then(|q| q.as_slice_mut())) else {
+            return Ok(());
+        };
+        let mut q_steps = q_all.map(|q| q.chunks_mut(step_len));
+        for (i, t_step) in t_all.chunks_mut(step_len).enumerate() {
+            let (member, time) = (i / times.max(1), i % times.max(1));
+            if member >= members {
+                break;
+            }
+            if let Some(plan) = self.temperature {
+                plan.read_step(self.file, member, time, t_step)?;
+            }
+            let q_step = q_steps.as_mut().and_then(|chunks| chunks.next());
+            let q_step: Option<&'s [f32]> = match (q_step, self.humidity) {
+                (Some(chunk), Some(plan)) => {
+                    plan.read_step(self.file, member, time, chunk)?;
+                    Some(chunk)
+                }
+                (chunk, _) => chunk.map(|c| &*c),
+            };
+            let t_step: &'s [f32] = t_step;
+            let view = |data: &'s [f32]| ArrayView3::from_shape((levels, rows, cols), data).ok();
+            if let Some(temperature) = view(t_step) {
+                sink(FilledStep {
+                    member,
+                    time,
+                    temperature,
+                    humidity: q_step.and_then(view),
+                });
+            }
+        }
+        Ok(())
+    }
+
+    /// The checks [`read_cycle`] makes on temperature and humidity right after reading them:
+    /// at least one valid value each.
+    fn check_valid(&self, cycle: &Cycle) -> Result<(), IngestError> {
+        let empty = |plan: Option<&field::StepwiseField<'_>>, values: Option<&Field5>| {
+            plan.zip(values)
+                .filter(|(_, v)| v.iter().all(|x| x.is_nan()))
+                .map(|(p, _)| IngestError::NoValidData {
+                    file: self.file.to_string(),
+                    variable: p.name(),
+                })
+        };
+        let humidity = cycle.humidity.as_ref().map(|h| &h.values);
+        match empty(self.temperature, Some(&cycle.temperature)).or(empty(self.humidity, humidity)) {
+            Some(e) => Err(e),
+            None => Ok(()),
+        }
+    }
 }
 
 /// The NetCDF library opens a truncated NetCDF-3 file and reads zeros where bytes are

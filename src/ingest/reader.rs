@@ -8,7 +8,7 @@ use ndarray::Array5;
 use netcdf::Variable;
 
 use super::field::{
-    self, attr_numbers, attr_text, AxisPositions, Canonical, FieldRequest, Plausible,
+    self, attr_numbers, attr_text, AxisPositions, Canonical, FieldRequest, Plausible, StepwiseField,
 };
 use super::names::Role;
 use super::units::{self, Linear, Quantity};
@@ -77,6 +77,18 @@ pub(super) struct Reader<'f> {
     notes: Vec<String>,
     variables: Vec<(String, String)>,
     dim_axes: HashMap<String, Option<Axis>>,
+    /// When set, temperature and humidity that can be read step by step are planned here
+    /// (their arrays left zero) instead of being read.
+    stepwise: Option<Vec<(Bulk, StepwiseField<'f>)>>,
+}
+
+/// The two large fields that may be read step by step.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(super) enum Bulk {
+    /// The air temperature.
+    Temperature,
+    /// The humidity, on the temperature's own level axis.
+    Humidity,
 }
 
 /// Humidity kinds in order of preference, with their roles and units.
@@ -149,7 +161,21 @@ impl<'f> Reader<'f> {
             notes: Vec::new(),
             variables: Vec::new(),
             dim_axes: HashMap::new(),
+            stepwise: None,
         }
+    }
+
+    /// The same reader, planning temperature and humidity for stepwise reading where their
+    /// layout allows it: [`Reader::read`] then leaves them zero, and
+    /// [`Reader::take_stepwise`] hands over the plans.
+    pub(super) fn stepwise(mut self) -> Self {
+        self.stepwise = Some(Vec::new());
+        self
+    }
+
+    /// The fields planned for stepwise reading by the last [`Reader::read`].
+    pub(super) fn take_stepwise(&mut self) -> Vec<(Bulk, StepwiseField<'f>)> {
+        self.stepwise.take().unwrap_or_default()
     }
 
     fn var(&self, name: &str) -> Option<Variable<'f>> {
@@ -442,8 +468,21 @@ impl<'f> Reader<'f> {
         let times = t_layout.len(Axis::Time);
 
         let t_conv = self.conversion(&t_var, Quantity::Temperature)?;
-        let temperature =
-            self.read_field(&t_var, &t_layout, &vaxis, t_conv, Some(TEMPERATURE_RANGE))?;
+        let target = [
+            members,
+            times,
+            vaxis.vertical.levels(),
+            grid.rows(),
+            grid.cols(),
+        ];
+        let t_read = FieldRead {
+            var: &t_var,
+            layout: &t_layout,
+            vaxis: &vaxis,
+            to_si: t_conv,
+            check: Some(TEMPERATURE_RANGE),
+        };
+        let temperature = self.read_bulk_field(&t_read, target, Some(Bulk::Temperature))?;
         if temperature.data.iter().all(|v| v.is_nan()) {
             return Err(IngestError::NoValidData {
                 file: self.label.clone(),
@@ -452,13 +491,6 @@ impl<'f> Reader<'f> {
         }
         self.variables
             .push(("air_temperature".into(), t_var.name()));
-        let target = [
-            members,
-            times,
-            vaxis.vertical.levels(),
-            grid.rows(),
-            grid.cols(),
-        ];
         let temperature = to_array5(temperature, target, &self.label, &t_var.name())?;
 
         let humidity = self.humidity(&vaxis, target)?;
@@ -1026,6 +1058,41 @@ impl<'f> Reader<'f> {
         field::read_canonical(&req)
     }
 
+    /// [`Reader::read_field`] for temperature or humidity (`bulk`): planned for stepwise
+    /// reading instead, with zero values, when the reader plans and the field's layout
+    /// allows it and its shape is `target` exactly.
+    fn read_bulk_field(
+        &mut self,
+        r: &FieldRead<'_, 'f>,
+        target: [usize; 5],
+        bulk: Option<Bulk>,
+    ) -> Result<Canonical, IngestError> {
+        if let (Some(bulk), Some(_)) = (bulk, &self.stepwise) {
+            let on_temperature_axis = r.layout.dim(Axis::Level) == Some(r.vaxis.dim.as_str());
+            let req = FieldRequest {
+                file: &self.label,
+                var: r.var,
+                axes: r.layout.axes,
+                reverse_levels: on_temperature_axis && r.vaxis.top_down_in_file,
+                to_si: r.to_si,
+                check: r.check,
+            };
+            if let Some(plan) = StepwiseField::plan(&req)? {
+                if on_temperature_axis && plan.shape() == target {
+                    let data = crate::buffers::zeroed_field(target.iter().product());
+                    if let Some(planned) = self.stepwise.as_mut() {
+                        planned.push((bulk, plan));
+                    }
+                    return Ok(Canonical {
+                        shape: target,
+                        data,
+                    });
+                }
+            }
+        }
+        self.read_field(r.var, r.layout, r.vaxis, r.to_si, r.check)
+    }
+
     /// Check that a field's member, time and horizontal lengths fit the temperature's.
     fn check_fit(
         &self,
@@ -1077,17 +1144,24 @@ impl<'f> Reader<'f> {
     /// temperature's axis, by pressure value when it has its own isobaric axis.
     fn read_on_levels(
         &mut self,
-        var: &Variable<'_>,
+        var: &Variable<'f>,
         vaxis: &VerticalAxis,
-        to_si: Linear,
-        check: Option<Plausible>,
+        (to_si, check): (Linear, Option<Plausible>),
         target: [usize; 5],
         role: &str,
+        bulk: Option<Bulk>,
     ) -> Result<(Field5, Vec<usize>), IngestError> {
         let layout = self.layout(var)?;
         let dim = layout.dim(Axis::Level).unwrap_or_default().to_string();
         if dim == vaxis.dim {
-            let c = self.read_field(var, &layout, vaxis, to_si, check)?;
+            let r = FieldRead {
+                var,
+                layout: &layout,
+                vaxis,
+                to_si,
+                check,
+            };
+            let c = self.read_bulk_field(&r, target, bulk)?;
             self.check_fit(var, c.shape, target)?;
             let arr = broadcast(c, target, &self.label, &var.name())?;
             return Ok((arr, Vec::new()));
@@ -1186,8 +1260,14 @@ impl<'f> Reader<'f> {
                 }
             };
             let conv = self.conversion(&var, quantity)?;
-            let (values, missing_levels) =
-                self.read_on_levels(&var, vaxis, conv, Some(check), target, role.key())?;
+            let (values, missing_levels) = self.read_on_levels(
+                &var,
+                vaxis,
+                (conv, Some(check)),
+                target,
+                role.key(),
+                Some(Bulk::Humidity),
+            )?;
             if values.iter().all(|v| v.is_nan()) {
                 return Err(IngestError::NoValidData {
                     file: self.label.clone(),
@@ -1343,11 +1423,26 @@ impl<'f> Reader<'f> {
             return Ok(None);
         };
         let conv = self.conversion(&var, Quantity::Height)?;
-        let (values, _) =
-            self.read_on_levels(&var, vaxis, conv, Some(HEIGHT_RANGE), target, role.key())?;
+        let (values, _) = self.read_on_levels(
+            &var,
+            vaxis,
+            (conv, Some(HEIGHT_RANGE)),
+            target,
+            role.key(),
+            None,
+        )?;
         self.variables.push((role.key().to_string(), var.name()));
         Ok(Some(values))
     }
+}
+
+/// The arguments of one field read.
+struct FieldRead<'r, 'f> {
+    var: &'r Variable<'f>,
+    layout: &'r Layout,
+    vaxis: &'r VerticalAxis,
+    to_si: Linear,
+    check: Option<Plausible>,
 }
 
 /// Check strict monotonicity of level values (already in Pa) and name the variable if not.
