@@ -219,6 +219,18 @@ pub enum NotApplicable {
         /// The source file of the cycle given.
         file: String,
     },
+    /// [`IsobaricKernel::run_step`] was given a step outside the outputs.
+    #[error("step (member {member}, time {time}) is outside the {members} members and {times} time steps of the outputs")]
+    StepIndex {
+        /// Member index asked for.
+        member: usize,
+        /// Time index asked for.
+        time: usize,
+        /// Members of the outputs.
+        members: usize,
+        /// Time steps of the outputs.
+        times: usize,
+    },
     /// A layer bound that is not a finite positive pressure.
     #[error(
         "layer {bottom_pa} Pa to {top_pa} Pa has a bound that is not a finite positive pressure"
@@ -609,12 +621,18 @@ struct RowOut<'o> {
     thick_below: Vec<ArrayViewMut1<'o, u8>>,
 }
 
-/// The inputs of one (member, time) step.
-struct StepViews<'a> {
-    t: ArrayView3<'a, f32>,
-    q: Option<ArrayView3<'a, f32>>,
-    ps: ArrayView2<'a, f32>,
-    zs: ArrayView2<'a, f32>,
+/// The inputs of one (member, time) step, wherever they are held.
+#[derive(Clone, Copy, Debug)]
+pub struct StepFields<'a> {
+    /// Air temperature, K, `[level, lat, lon]` bottom-up.
+    pub t: ArrayView3<'a, f32>,
+    /// Humidity of the kind the kernel was prepared for, `[level, lat, lon]`; `None` for a
+    /// cycle without humidity.
+    pub q: Option<ArrayView3<'a, f32>>,
+    /// Surface pressure, Pa, `[lat, lon]`.
+    pub ps: ArrayView2<'a, f32>,
+    /// Surface height, m, `[lat, lon]`.
+    pub zs: ArrayView2<'a, f32>,
 }
 
 /// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
@@ -896,23 +914,17 @@ impl IsobaricKernel {
         progress: &(dyn Fn(usize) + Sync),
     ) -> Result<Vec<LayerThickness>, NotApplicable> {
         let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
-        let (members, times, levels, rows, cols) = cycle.temperature.dim();
+        let (members, times, levels, _, _) = cycle.temperature.dim();
         let n_levels = if heights.is_some() {
             levels
         } else {
             self.captures.iter().max().map_or(0, |&k| k + 1)
         };
-        let nl = self.layers.len();
-        let mut thick: Vec<Array4<f32>> = (0..nl)
-            .map(|_| Array4::zeros((members, times, rows, cols)))
-            .collect();
-        let mut thick_below: Vec<Array4<u8>> = (0..nl)
-            .map(|_| Array4::zeros((members, times, rows, cols)))
-            .collect();
+        let mut thickness = self.thickness_outputs(cycle.temperature.dim());
         let mut done = 0usize;
         for m in 0..members {
             for t in 0..times {
-                let views = StepViews {
+                let views = StepFields {
                     t: cycle.temperature.slice(s![m, t, .., .., ..]),
                     q: cycle
                         .humidity
@@ -921,58 +933,163 @@ impl IsobaricKernel {
                     ps: surface.pressure_pa.slice(s![m, t, .., ..]),
                     zs: surface.height_m.slice(s![m, t, .., ..]),
                 };
-                let mut outs: Vec<RowOut<'_>> = (0..rows)
-                    .map(|_| RowOut {
-                        z: None,
-                        below: None,
-                        thick: Vec::with_capacity(nl),
-                        thick_below: Vec::with_capacity(nl),
-                    })
-                    .collect();
-                if let Some((height, below)) = heights.as_mut() {
-                    let z_rows = height
-                        .slice_mut(s![m, t, .., .., ..])
-                        .into_axis_iter_mut(Axis(1));
-                    let b_rows = below
-                        .slice_mut(s![m, t, .., .., ..])
-                        .into_axis_iter_mut(Axis(1));
-                    for (out, (z, b)) in outs.iter_mut().zip(z_rows.zip(b_rows)) {
-                        out.z = Some(z);
-                        out.below = Some(b);
-                    }
-                }
-                for (th, tb) in thick.iter_mut().zip(thick_below.iter_mut()) {
-                    let th_rows = th.slice_mut(s![m, t, .., ..]).into_axis_iter_mut(Axis(0));
-                    let tb_rows = tb.slice_mut(s![m, t, .., ..]).into_axis_iter_mut(Axis(0));
-                    for (out, (a, b)) in outs.iter_mut().zip(th_rows.zip(tb_rows)) {
-                        out.thick.push(a);
-                        out.thick_below.push(b);
-                    }
-                }
-                outs.into_par_iter().enumerate().for_each_init(
-                    || RowScratch::new(cols, self.captures.len()),
-                    |scratch, (row, out)| self.row(&views, row, n_levels, scratch, out),
-                );
+                let step_heights = heights.as_mut().map(|(z, b)| (&mut **z, &mut **b));
+                self.step_into(&views, (m, t), n_levels, step_heights, &mut thickness);
                 done += 1;
                 progress(done);
             }
         }
-        Ok(self
-            .layers
+        Ok(thickness)
+    }
+
+    /// Zeroed thickness outputs, one per layer, for a cycle of `dim`.
+    fn thickness_outputs(
+        &self,
+        (members, times, _, rows, cols): (usize, usize, usize, usize, usize),
+    ) -> Vec<LayerThickness> {
+        self.layers
             .iter()
-            .zip(thick.into_iter().zip(thick_below))
-            .map(|(&(layer, _, _), (values, below_ground))| LayerThickness {
+            .map(|&(layer, _, _)| LayerThickness {
                 layer,
-                values,
-                below_ground,
+                values: Array4::zeros((members, times, rows, cols)),
+                below_ground: Array4::zeros((members, times, rows, cols)),
             })
-            .collect())
+            .collect()
+    }
+
+    /// Outputs for a cycle of `dim` (`[member, time, level, lat, lon]`), to be filled step by
+    /// step with [`IsobaricKernel::run_step`]: heights and flags in fresh allocations
+    /// offered for huge pages, and one thickness per layer.
+    pub fn outputs(&self, dim: (usize, usize, usize, usize, usize)) -> KernelOutput {
+        KernelOutput {
+            geopotential_height: zeroed_field_array::<f32>(dim),
+            below_ground: zeroed_field_array::<u8>(dim),
+            thickness: self.thickness_outputs(dim),
+        }
+    }
+
+    /// One (member, time) step of [`IsobaricKernel::run`], from fields held anywhere, into
+    /// `out` (from [`IsobaricKernel::outputs`]): the same values `run` stores at this step.
+    ///
+    /// Refuses (before writing anything) a step whose shapes do not match the outputs and
+    /// the levels of the kernel, an index out of range, or a missing humidity where the
+    /// kernel was prepared with one.
+    pub fn run_step(
+        &self,
+        step: StepFields<'_>,
+        (member, time): (usize, usize),
+        out: &mut KernelOutput,
+    ) -> Result<(), NotApplicable> {
+        let (members, times, levels, rows, cols) = out.geopotential_height.dim();
+        let shape = |field: &'static str, found: &[usize], expected: Vec<usize>| {
+            if found == expected.as_slice() {
+                Ok(())
+            } else {
+                Err(NotApplicable::Shape {
+                    field,
+                    found: found.to_vec(),
+                    expected,
+                })
+            }
+        };
+        if member >= members || time >= times {
+            return Err(NotApplicable::StepIndex {
+                member,
+                time,
+                members,
+                times,
+            });
+        }
+        let n = self.levels.len();
+        shape("geopotential_height", &[levels], vec![n])?;
+        shape(
+            "below_ground",
+            out.below_ground.shape(),
+            vec![members, times, n, rows, cols],
+        )?;
+        shape("air_temperature", step.t.shape(), vec![n, rows, cols])?;
+        match step.q {
+            Some(q) => shape("humidity", q.shape(), vec![n, rows, cols])?,
+            None if self.moisture.iter().any(|m| *m != Moisture::Dry) => {
+                shape("humidity", &[], vec![n, rows, cols])?
+            }
+            None => {}
+        }
+        shape("surface_air_pressure", step.ps.shape(), vec![rows, cols])?;
+        shape("surface_height", step.zs.shape(), vec![rows, cols])?;
+        shape("thickness", &[out.thickness.len()], vec![self.layers.len()])?;
+        for th in &out.thickness {
+            shape(
+                "thickness",
+                th.values.shape(),
+                vec![members, times, rows, cols],
+            )?;
+            shape(
+                "thickness",
+                th.below_ground.shape(),
+                vec![members, times, rows, cols],
+            )?;
+        }
+        let heights = Some((&mut out.geopotential_height, &mut out.below_ground));
+        self.step_into(&step, (member, time), levels, heights, &mut out.thickness);
+        Ok(())
+    }
+
+    /// One step, rows in parallel (shapes already checked).
+    fn step_into(
+        &self,
+        views: &StepFields<'_>,
+        (m, t): (usize, usize),
+        n_levels: usize,
+        heights: Option<(&mut Array5<f32>, &mut Array5<u8>)>,
+        thickness: &mut [LayerThickness],
+    ) {
+        let (rows, cols) = views.ps.dim();
+        let nl = self.layers.len();
+        let mut outs: Vec<RowOut<'_>> = (0..rows)
+            .map(|_| RowOut {
+                z: None,
+                below: None,
+                thick: Vec::with_capacity(nl),
+                thick_below: Vec::with_capacity(nl),
+            })
+            .collect();
+        if let Some((height, below)) = heights {
+            let z_rows = height
+                .slice_mut(s![m, t, .., .., ..])
+                .into_axis_iter_mut(Axis(1));
+            let b_rows = below
+                .slice_mut(s![m, t, .., .., ..])
+                .into_axis_iter_mut(Axis(1));
+            for (out, (z, b)) in outs.iter_mut().zip(z_rows.zip(b_rows)) {
+                out.z = Some(z);
+                out.below = Some(b);
+            }
+        }
+        for th in thickness.iter_mut() {
+            let th_rows = th
+                .values
+                .slice_mut(s![m, t, .., ..])
+                .into_axis_iter_mut(Axis(0));
+            let tb_rows = th
+                .below_ground
+                .slice_mut(s![m, t, .., ..])
+                .into_axis_iter_mut(Axis(0));
+            for (out, (a, b)) in outs.iter_mut().zip(th_rows.zip(tb_rows)) {
+                out.thick.push(a);
+                out.thick_below.push(b);
+            }
+        }
+        outs.into_par_iter().enumerate().for_each_init(
+            || RowScratch::new(cols, self.captures.len()),
+            |scratch, (row, out)| self.row(views, row, n_levels, scratch, out),
+        );
     }
 }
 
 impl IsobaricKernel {
     /// Virtual temperature at level `k` of column (`r`, `c`), `NaN` where not usable.
-    fn tv_at(&self, v: &StepViews<'_>, k: usize, r: usize, c: usize) -> f64 {
+    fn tv_at(&self, v: &StepFields<'_>, k: usize, r: usize, c: usize) -> f64 {
         let t = v.t[[k, r, c]];
         let q = v.q.as_ref().map_or(0.0, |q| q[[k, r, c]]);
         match self.moisture[k] {
@@ -989,7 +1106,7 @@ impl IsobaricKernel {
     ///
     /// Only levels `0..n` are integrated (all when heights are wanted; up to the highest
     /// level a layer needs otherwise).
-    fn row(&self, v: &StepViews<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
+    fn row(&self, v: &StepFields<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
         let all = self.levels.len();
         let cols = s.z.len();
         // The surface of every column and the lowest level above it (`k0`), as the column

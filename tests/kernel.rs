@@ -12,7 +12,9 @@ use ndarray::{s, Array4, Array5, ShapeBuilder};
 
 use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
-use hypsogrid::kernel::{logarithmic_mean_by_series, IsobaricKernel, NotApplicable, SERIES_LIMIT};
+use hypsogrid::kernel::{
+    logarithmic_mean_by_series, IsobaricKernel, NotApplicable, StepFields, SERIES_LIMIT,
+};
 use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
 use hypsogrid::physics::hypsometric::scale_height;
 use hypsogrid::physics::standard_atmosphere::{
@@ -607,4 +609,76 @@ fn thickness_alone_equals_thickness_with_heights() {
     }
     // The layer above the top level is masked everywhere.
     assert!(alone[7].values.iter().all(|v| v.is_nan()));
+}
+
+/// The steps of a cycle run one at a time from views held anywhere (here: copies, in
+/// reverse order) store exactly what the whole run stores; steps that do not fit the
+/// outputs are refused before anything is written.
+#[test]
+fn steps_run_one_at_a_time_equal_the_whole_run() {
+    let mut cycle = invented_cycle(2, 3, 4, 40, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let kernel = IsobaricKernel::new(&cycle, &layers()).expect("kernel");
+    let whole = kernel.run(&cycle, &|_| {}).expect("run");
+    let mut out = kernel.outputs(cycle.temperature.dim());
+    let surface = cycle.surface.as_ref().expect("surface");
+    let humidity = cycle.humidity.as_ref().expect("humidity");
+    for m in (0..2).rev() {
+        for t in (0..3).rev() {
+            let temperature = cycle.temperature.slice(s![m, t, .., .., ..]).to_owned();
+            let q = humidity.values.slice(s![m, t, .., .., ..]).to_owned();
+            let step = StepFields {
+                t: temperature.view(),
+                q: Some(q.view()),
+                ps: surface.pressure_pa.slice(s![m, t, .., ..]),
+                zs: surface.height_m.slice(s![m, t, .., ..]),
+            };
+            kernel.run_step(step, (m, t), &mut out).expect("step");
+        }
+    }
+    let bits = |a: &Array5<f32>| a.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+    assert_eq!(
+        bits(&out.geopotential_height),
+        bits(&whole.geopotential_height)
+    );
+    assert_eq!(out.below_ground, whole.below_ground);
+    for (a, b) in out.thickness.iter().zip(&whole.thickness) {
+        let bits4 = |a: &Array4<f32>| a.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits4(&a.values), bits4(&b.values));
+        assert_eq!(a.below_ground, b.below_ground);
+    }
+
+    let fields = |m: usize, t: usize, with_q: bool| StepFields {
+        t: cycle.temperature.slice(s![m, t, .., .., ..]),
+        q: with_q.then(|| humidity.values.slice(s![m, t, .., .., ..])),
+        ps: surface.pressure_pa.slice(s![m, t, .., ..]),
+        zs: surface.height_m.slice(s![m, t, .., ..]),
+    };
+    let mut fresh = kernel.outputs(cycle.temperature.dim());
+    assert!(matches!(
+        kernel.run_step(fields(0, 0, true), (2, 0), &mut fresh),
+        Err(NotApplicable::StepIndex { member: 2, .. })
+    ));
+    assert!(matches!(
+        kernel.run_step(fields(0, 0, false), (0, 0), &mut fresh),
+        Err(NotApplicable::Shape {
+            field: "humidity",
+            ..
+        })
+    ));
+    let narrow = StepFields {
+        t: cycle.temperature.slice(s![0, 0, .., .., ..3]),
+        ..fields(0, 0, true)
+    };
+    assert!(matches!(
+        kernel.run_step(narrow, (0, 0), &mut fresh),
+        Err(NotApplicable::Shape {
+            field: "air_temperature",
+            ..
+        })
+    ));
+    assert!(
+        fresh.geopotential_height.iter().all(|&z| z == 0.0),
+        "nothing written by a refused step"
+    );
 }
