@@ -11,7 +11,10 @@
 use ndarray::{s, Array5, ArrayView2, ArrayView3, ArrayViewMut2, Axis};
 use rayon::prelude::*;
 
-use crate::kernel::IsobaricKernel;
+use std::path::Path;
+
+use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
+use crate::kernel::{IsobaricKernel, KernelOutput, StepFields};
 use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
 use crate::physics::column::{thickness_between, ColumnAnchor, ColumnNodes};
 use crate::physics::humidity::{
@@ -116,6 +119,88 @@ pub fn compute_heights(
         }),
         // Not reached: the kernel was prepared for this very cycle.
         Err(_) => compute_heights_by_columns(cycle, config, progress),
+    }
+}
+
+/// Why a cycle could not be read and computed; both messages name the file.
+#[derive(Debug, thiserror::Error)]
+pub enum LoadError {
+    /// The file could not be read as a cycle.
+    #[error("{0}")]
+    Ingest(#[from] IngestError),
+    /// The heights could not be computed.
+    #[error("{0}")]
+    Compute(#[from] ComputeError),
+}
+
+/// Reads the cycle in `path` and computes it as [`compute_heights`] does, the kernel
+/// working on each (member, time) step as soon as that step has been read
+/// ([`read_cycle_overlapped`]), so that on a cycle of many lead times or members most of
+/// the computing hides behind the reading. The answers are those of [`read_cycle`]
+/// followed by [`compute_heights`], bit for bit.
+///
+/// Cycles the row kernel does not take, and files whose layout needs whole-variable
+/// reads, are read first and computed after, as before. `progress` is called once per
+/// finished (member, time) step with the number finished and the total.
+///
+/// [`read_cycle`]: crate::ingest::read_cycle
+pub fn read_and_compute(
+    path: &Path,
+    ingest: &IngestConfig,
+    config: &ComputeConfig,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<(Cycle, Heights), LoadError> {
+    check_layers(config)?;
+    let prepare = |cycle: &Cycle| {
+        let kernel = IsobaricKernel::new(cycle, &config.layers).ok()?;
+        let reference = StepColumns::new(cycle, config, 0, 0).ok()?.reference;
+        let out = kernel.outputs(cycle.temperature.dim());
+        Some((kernel, reference, out))
+    };
+    let total_of = |out: &KernelOutput| {
+        let (members, times, ..) = out.geopotential_height.dim();
+        members * times
+    };
+    let work = |(kernel, reference, mut out): (IsobaricKernel, Reference, KernelOutput),
+                shell: &Cycle,
+                steps: crate::ingest::StepFeed<'_>|
+     -> Option<(Reference, KernelOutput, usize)> {
+        let surface = shell.surface.as_ref()?;
+        let mut done = 0;
+        for step in steps {
+            let (m, t) = (step.member, step.time);
+            let fields = StepFields {
+                t: step.temperature,
+                q: step.humidity,
+                ps: surface.pressure_pa.slice(s![m, t, .., ..]),
+                zs: surface.height_m.slice(s![m, t, .., ..]),
+            };
+            kernel.run_step(fields, (m, t), &mut out).ok()?;
+            done += 1;
+            progress(done, total_of(&out));
+        }
+        Some((reference, out, done))
+    };
+    let (cycle, computed) = read_cycle_overlapped(path, ingest, prepare, work)?;
+    match computed.flatten() {
+        // Every step went through the kernel.
+        Some((reference, out, done))
+            if done == cycle.temperature.dim().0 * cycle.temperature.dim().1 =>
+        {
+            let heights = Heights {
+                geopotential_height: out.geopotential_height,
+                below_ground: out.below_ground,
+                thickness: out.thickness,
+                constants: cycle.constants,
+                method: method_sentence(&cycle, reference),
+            };
+            Ok((cycle, heights))
+        }
+        _ => {
+            let total = cycle.temperature.dim().0 * cycle.temperature.dim().1;
+            let heights = compute_heights(&cycle, config, &|done| progress(done, total))?;
+            Ok((cycle, heights))
+        }
     }
 }
 

@@ -30,10 +30,10 @@ use std::time::{Instant, SystemTime};
 use ndarray::{s, ArrayView3, Axis};
 use rayon::prelude::*;
 
-use crate::compute::{compute_heights, ColumnScratch, ComputeConfig, ComputeError, StepColumns};
+use crate::compute::{read_and_compute, ColumnScratch, ComputeConfig, StepColumns};
 use crate::grid::{locate, SampleError, Stencil};
 use crate::ingest::time::{format_rfc3339_utc, parse_date_time};
-use crate::ingest::{read_cycle, IngestConfig, IngestError};
+use crate::ingest::IngestConfig;
 use crate::model::{Cycle, Heights, Layer, Vertical};
 use crate::physics::column::{ColumnNodes, HeightAtPressure};
 use crate::physics::hypsometric::{isothermal_height, scale_height};
@@ -72,16 +72,7 @@ pub struct LoadedCycle {
     pub bytes: usize,
 }
 
-/// Why a cycle could not be loaded; both messages name the file.
-#[derive(Debug, thiserror::Error)]
-pub enum LoadError {
-    /// The file could not be read as a cycle.
-    #[error("{0}")]
-    Ingest(#[from] IngestError),
-    /// The heights could not be computed.
-    #[error("{0}")]
-    Compute(#[from] ComputeError),
-}
+pub use crate::compute::LoadError;
 
 impl LoadedCycle {
     /// Reads a cycle and computes its heights on every level.
@@ -94,12 +85,11 @@ impl LoadedCycle {
         compute: &ComputeConfig,
     ) -> Result<Self, LoadError> {
         let started = Instant::now();
-        let cycle = read_cycle(path, ingest)?;
         let config = ComputeConfig {
             layers: Vec::new(),
             ..compute.clone()
         };
-        let heights = compute_heights(&cycle, &config, &|_| {})?;
+        let (cycle, heights) = read_and_compute(path, ingest, &config, &|_, _| {})?;
         let id = path
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())

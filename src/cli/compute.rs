@@ -3,11 +3,10 @@
 use std::io::IsTerminal;
 use std::time::{Duration, Instant};
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
-use hypsogrid::compute::compute_heights;
-use hypsogrid::ingest::read_cycle;
+use hypsogrid::compute::{read_and_compute, LoadError};
 use hypsogrid::output::{write_heights, OutputOptions};
 
 use super::ComputeArgs;
@@ -64,21 +63,24 @@ pub(super) fn run(args: ComputeArgs) -> Result<()> {
     let config = args.read.compute_config(&ingest);
     let mut progress = Progress::new(1);
     progress.phase("reading");
-    let cycle = read_cycle(&args.input, &ingest)?;
-    for note in &cycle.notes {
-        tracing::info!("{}: {note}", args.input.display());
-    }
-    let steps = (cycle.members * cycle.lead_times_s.len()) as u64;
-    progress.bar.set_length(steps.max(1));
-    progress.phase("computing");
     let show = std::sync::Mutex::new(&mut progress);
-    let heights = compute_heights(&cycle, &config, &|done| {
+    // Each step is computed as soon as it has been read (`read_and_compute`).
+    let (cycle, heights) = read_and_compute(&args.input, &ingest, &config, &|done, total| {
         if let Ok(mut p) = show.lock() {
-            p.maybe_show();
+            p.bar.set_length(total.max(1) as u64);
+            p.phase("computing");
             p.set(done as u64);
         }
     })
-    .with_context(|| format!("computing '{}'", args.input.display()))?;
+    .map_err(|e| match e {
+        LoadError::Ingest(e) => anyhow::Error::from(e),
+        LoadError::Compute(e) => {
+            anyhow::Error::from(e).context(format!("computing '{}'", args.input.display()))
+        }
+    })?;
+    for note in &cycle.notes {
+        tracing::info!("{}: {note}", args.input.display());
+    }
     progress.phase("writing");
     let options = OutputOptions {
         history: history_line(),

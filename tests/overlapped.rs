@@ -1,0 +1,347 @@
+//! Reading and computing overlapped ([`read_and_compute`], [`read_cycle_overlapped`]) gives
+//! exactly what reading the whole cycle first and computing after gives, for every encoding
+//! of the fixture atmosphere, and the same errors for bad files.
+//!
+//! The reference here is the project's own two-pass path (`read_cycle` then
+//! `compute_heights`), itself checked against published values in `tests/compute.rs`,
+//! `tests/kernel.rs` and `tests/real_cycles.rs`: these tests check that overlapping changes
+//! nothing, bit for bit. The fixture values are invented (tests/common/fixtures.rs).
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use ndarray::s;
+
+use common::fixtures::{hybrid_variants, isobaric_variants, FixtureSpec, HumidityEncoding};
+use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig, LoadError};
+use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
+use hypsogrid::model::{Cycle, Heights, Layer};
+
+/// Layers on and between the fixture's levels (1000 925 850 700 500 300 200 100 hPa).
+fn config() -> ComputeConfig {
+    ComputeConfig {
+        layers: vec![
+            Layer {
+                bottom_pa: 100_000.0,
+                top_pa: 50_000.0,
+            },
+            Layer {
+                bottom_pa: 96_250.0,
+                top_pa: 41_000.0,
+            },
+        ],
+        ..ComputeConfig::default()
+    }
+}
+
+/// Bitwise equality of two float arrays (NaN equal to NaN), naming what differs.
+fn same_bits<'a>(
+    what: &str,
+    a: impl IntoIterator<Item = &'a f32>,
+    b: impl IntoIterator<Item = &'a f32>,
+) {
+    let (a, b): (Vec<u32>, Vec<u32>) = (
+        a.into_iter().map(|v| v.to_bits()).collect(),
+        b.into_iter().map(|v| v.to_bits()).collect(),
+    );
+    assert_eq!(a.len(), b.len(), "{what}: lengths differ");
+    if let Some(i) = a.iter().zip(&b).position(|(x, y)| x != y) {
+        panic!(
+            "{what}: first difference at flat index {i}: {} vs {}",
+            f32::from_bits(a[i]),
+            f32::from_bits(b[i])
+        );
+    }
+}
+
+fn same_cycle(label: &str, a: &Cycle, b: &Cycle) {
+    assert_eq!(a.temperature.dim(), b.temperature.dim(), "{label}");
+    same_bits(
+        &format!("{label}: temperature"),
+        &a.temperature,
+        &b.temperature,
+    );
+    match (&a.humidity, &b.humidity) {
+        (Some(x), Some(y)) => {
+            assert_eq!(x.kind, y.kind, "{label}");
+            assert_eq!(x.missing_levels, y.missing_levels, "{label}");
+            same_bits(&format!("{label}: humidity"), &x.values, &y.values);
+        }
+        (None, None) => {}
+        _ => panic!("{label}: humidity present in one read only"),
+    }
+    match (&a.surface, &b.surface) {
+        (Some(x), Some(y)) => {
+            same_bits(&format!("{label}: ps"), &x.pressure_pa, &y.pressure_pa);
+            same_bits(&format!("{label}: zs"), &x.height_m, &y.height_m);
+        }
+        (None, None) => {}
+        _ => panic!("{label}: surface present in one read only"),
+    }
+    assert_eq!(a.notes, b.notes, "{label}");
+    assert_eq!(a.variables, b.variables, "{label}");
+    assert_eq!(a.lead_times_s, b.lead_times_s, "{label}");
+}
+
+fn same_heights(label: &str, a: &Heights, b: &Heights) {
+    same_bits(
+        &format!("{label}: heights"),
+        &a.geopotential_height,
+        &b.geopotential_height,
+    );
+    assert_eq!(
+        a.below_ground, b.below_ground,
+        "{label}: below-ground flags"
+    );
+    assert_eq!(a.thickness.len(), b.thickness.len(), "{label}");
+    for (x, y) in a.thickness.iter().zip(&b.thickness) {
+        assert_eq!(x.layer, y.layer, "{label}");
+        same_bits(&format!("{label}: thickness"), &x.values, &y.values);
+        assert_eq!(x.below_ground, y.below_ground, "{label}: thickness flags");
+    }
+    assert_eq!(a.method, b.method, "{label}");
+}
+
+/// Every isobaric and hybrid variant, plus several steps and members with levels both ways.
+fn variants() -> Vec<(String, FixtureSpec)> {
+    let mut v = isobaric_variants();
+    v.extend(hybrid_variants());
+    for top_down in [false, true] {
+        v.push((
+            format!("members-and-steps-top-down-{top_down}"),
+            FixtureSpec {
+                time_steps: Some(3),
+                members: Some(2),
+                levels_top_down: top_down,
+                ..FixtureSpec::default()
+            },
+        ));
+    }
+    v
+}
+
+fn write(dir: &Path, label: &str, spec: &FixtureSpec) -> PathBuf {
+    spec.write(&dir.join(format!("{label}.nc")))
+}
+
+#[test]
+fn every_variant_reads_and_computes_overlapped_as_in_two_passes() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    let config = config();
+    for (label, spec) in variants() {
+        let path = write(dir.path(), &label, &spec);
+        let cycle = read_cycle(&path, &ingest).expect(&label);
+        let heights = compute_heights(&cycle, &config, &|_| {}).expect(&label);
+        let (cycle2, heights2) = read_and_compute(&path, &ingest, &config, &|_, _| {})
+            .unwrap_or_else(|e| panic!("{label}: {e}"));
+        same_cycle(&label, &cycle, &cycle2);
+        same_heights(&label, &heights, &heights2);
+    }
+}
+
+/// The steps handed over while reading are the cycle's own values at those steps, in file
+/// order, and every step comes; the files whose layout needs whole-variable reads hand over
+/// nothing.
+#[test]
+fn the_feed_hands_over_each_step_as_the_cycle_holds_it() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    let mut overlapped = Vec::new();
+    for (label, spec) in variants() {
+        let path = write(dir.path(), &label, &spec);
+        let prepared_dims = std::cell::Cell::new(None);
+        let (cycle, fed) = read_cycle_overlapped(
+            &path,
+            &ingest,
+            |cycle| {
+                prepared_dims.set(Some(cycle.temperature.dim()));
+                Some(())
+            },
+            |(), shell, steps| {
+                // The arrays are out of the cycle while the steps are read.
+                assert_eq!(shell.temperature.len(), 0);
+                steps
+                    .map(|s| {
+                        let q = s.humidity.map(|q| q.to_owned());
+                        (s.member, s.time, s.temperature.to_owned(), q)
+                    })
+                    .collect::<Vec<_>>()
+            },
+        )
+        .unwrap_or_else(|e| panic!("{label}: {e}"));
+        same_cycle(&label, &read_cycle(&path, &ingest).expect(&label), &cycle);
+        let Some(fed) = fed else {
+            continue;
+        };
+        overlapped.push(label.clone());
+        assert_eq!(
+            prepared_dims.get(),
+            Some(cycle.temperature.dim()),
+            "{label}"
+        );
+        let (members, times, ..) = cycle.temperature.dim();
+        let order: Vec<(usize, usize)> = fed.iter().map(|(m, t, ..)| (*m, *t)).collect();
+        let expected: Vec<(usize, usize)> = (0..members)
+            .flat_map(|m| (0..times).map(move |t| (m, t)))
+            .collect();
+        assert_eq!(order, expected, "{label}: steps in file order, all of them");
+        for (m, t, temperature, humidity) in &fed {
+            let want = cycle.temperature.slice(s![*m, *t, .., .., ..]);
+            same_bits(&format!("{label}: fed temperature"), want, temperature);
+            match (humidity, &cycle.humidity) {
+                (Some(q), Some(h)) => same_bits(
+                    &format!("{label}: fed humidity"),
+                    h.values.slice(s![*m, *t, .., .., ..]),
+                    q,
+                ),
+                (None, None) => {}
+                _ => panic!("{label}: humidity fed for a cycle without it, or missing"),
+            }
+        }
+    }
+    // Plain float files overlap, with levels either way and with members and steps.
+    for want in [
+        "default",
+        "members-and-steps-top-down-false",
+        "members-and-steps-top-down-true",
+    ] {
+        assert!(
+            overlapped.iter().any(|l| l == want),
+            "{want} did not overlap: {overlapped:?}"
+        );
+    }
+    // Transposed dimensions need the whole variable: no overlap.
+    assert!(
+        !overlapped.iter().any(|l| l.contains("transpose")),
+        "{overlapped:?}"
+    );
+}
+
+/// A cycle whose heights come from the column path (relative humidity) declines the kernel
+/// in `prepare`, and still gives the two-pass answers.
+#[test]
+fn a_declined_preparation_reads_the_whole_cycle_and_hands_over_nothing() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = FixtureSpec {
+        humidity: HumidityEncoding::RelativePercent,
+        time_steps: Some(2),
+        ..FixtureSpec::default()
+    };
+    let path = write(dir.path(), "rh", &spec);
+    let ingest = IngestConfig::default();
+    let (cycle, fed) =
+        read_cycle_overlapped(&path, &ingest, |_| None::<()>, |(), _, steps| steps.count())
+            .expect("reading");
+    assert!(fed.is_none());
+    same_cycle("rh", &read_cycle(&path, &ingest).expect("rh"), &cycle);
+}
+
+/// Writes `value` into variable `name` at `index` of an existing fixture file.
+fn overwrite(path: &Path, name: &str, index: &[usize], value: f32) {
+    let mut file = netcdf::append(path).expect("opening the fixture for append");
+    let mut var = file.variable_mut(name).expect("variable");
+    let extents: Vec<std::ops::Range<usize>> = index.iter().map(|&i| i..i + 1).collect();
+    var.put_values(&[value], extents)
+        .expect("writing one value");
+}
+
+fn error_of(r: Result<(Cycle, Heights), LoadError>) -> String {
+    match r {
+        Ok(_) => panic!("a bad file was read"),
+        Err(LoadError::Ingest(e)) => e.to_string(),
+        Err(e) => panic!("not an ingest error: {e}"),
+    }
+}
+
+/// A value out of the plausible range in the last step is found when that step is read,
+/// with the same message (file, variable, index in the file's own order) as the whole read.
+#[test]
+fn a_bad_value_in_a_later_step_gives_the_whole_read_error() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = FixtureSpec {
+        time_steps: Some(3),
+        ..FixtureSpec::default()
+    };
+    let ingest = IngestConfig::default();
+    for (name, value) in [("t", 400.0_f32), ("q", 0.5)] {
+        let path = write(dir.path(), &format!("bad-{name}"), &spec);
+        overwrite(&path, name, &[2, 4, 1, 3], value);
+        let whole = match read_cycle(&path, &ingest) {
+            Ok(_) => panic!("the whole read took a bad value"),
+            Err(e @ IngestError::Implausible { .. }) => e.to_string(),
+            Err(e) => panic!("unexpected error: {e}"),
+        };
+        let overlapped = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
+        assert_eq!(overlapped, whole);
+        assert!(
+            whole.contains(&format!("'{name}'")) && whole.contains("time=2, plev=4"),
+            "{whole}"
+        );
+    }
+}
+
+/// A temperature with no valid value anywhere is refused by name, as by the whole read.
+#[test]
+fn a_temperature_with_no_valid_value_is_refused_by_name() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let spec = FixtureSpec {
+        time_steps: Some(2),
+        ..FixtureSpec::default()
+    };
+    let path = write(dir.path(), "all-missing", &spec);
+    {
+        let mut file = netcdf::append(&path).expect("append");
+        let mut var = file.variable_mut("t").expect("t");
+        let n: usize = var.dimensions().iter().map(|d| d.len()).product();
+        var.put_values(&vec![f32::NAN; n], ..).expect("writing NaN");
+    }
+    let ingest = IngestConfig::default();
+    let whole = read_cycle(&path, &ingest)
+        .map(|_| ())
+        .unwrap_err()
+        .to_string();
+    let overlapped = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
+    assert_eq!(overlapped, whole);
+    assert!(whole.contains("'t'"), "{whole}");
+}
+
+/// Real model files (`../shared/data`, PROVENANCE.md beside each): GFS 1° isobaric
+/// (2010-10-26 12Z), GFS 2.5° global subset (2011-01-10 12Z + 120 h), WRF Katrina (hybrid
+/// levels, the column path). Overlapped or not, the same cycle and the same heights.
+#[test]
+fn real_model_files_read_and_compute_overlapped_as_in_two_passes() {
+    let base = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/../shared/data"));
+    let ingest = IngestConfig::default();
+    let config = config();
+    let mut seen = 0;
+    for relative in [
+        "gfs-1deg-isobaric-2010102612-metpy/GFS_test.nc",
+        "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
+        "wrf-katrina-2005082800-wrfpython/ci_test_file.nc",
+    ] {
+        let path = base.join(relative);
+        if !path.exists() {
+            eprintln!("skipped: {} is absent", path.display());
+            continue;
+        }
+        let Ok(cycle) = read_cycle(&path, &ingest) else {
+            // Files this reader refuses are refused the same way overlapped.
+            let whole = read_cycle(&path, &ingest)
+                .map(|_| ())
+                .unwrap_err()
+                .to_string();
+            let overlapped = error_of(read_and_compute(&path, &ingest, &config, &|_, _| {}));
+            assert_eq!(overlapped, whole, "{relative}");
+            continue;
+        };
+        let heights = compute_heights(&cycle, &config, &|_| {}).expect(relative);
+        let (cycle2, heights2) =
+            read_and_compute(&path, &ingest, &config, &|_, _| {}).expect(relative);
+        same_cycle(relative, &cycle, &cycle2);
+        same_heights(relative, &heights, &heights2);
+        seen += 1;
+    }
+    println!("{seen} real files compared");
+}
