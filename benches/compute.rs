@@ -30,13 +30,17 @@ fn bench_dir() -> PathBuf {
 }
 
 fn input(name: &str, deflate_level: Option<i32>) -> PathBuf {
+    input_with_steps(name, deflate_level, 1)
+}
+
+fn input_with_steps(name: &str, deflate_level: Option<i32>, times: usize) -> PathBuf {
     let path = bench_dir().join(name);
     if !path.exists() {
         let spec = SyntheticGlobal {
             rows: ROWS,
             cols: COLS,
             levels: LEVELS,
-            times: 1,
+            times,
             deflate_level,
         };
         write_synthetic_global(&path, &spec).expect("writing the synthetic global cycle");
@@ -141,5 +145,38 @@ fn parts(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, parts, whole_process);
+/// Time steps of the multi-step cycle.
+const STEPS: usize = 4;
+
+/// The same on a cycle of several lead times, where loading overlaps computing each step
+/// with reading the next (`hypsogrid::compute::read_and_compute`): `read` and
+/// `servable_load` again, for the ratio, and the two passes one after the other for
+/// comparison.
+fn steps(c: &mut Criterion) {
+    let file = input_with_steps("global_0p5deg_4steps.nc", None, STEPS);
+    let mut group = c.benchmark_group("load_0p5deg_4_steps");
+    group
+        .sample_size(10)
+        .measurement_time(Duration::from_secs(10));
+    group.bench_function("read", |b| {
+        b.iter(|| read_cycle(&file, &IngestConfig::default()).expect("reading"))
+    });
+    group.bench_function("servable_load", |b| {
+        b.iter(|| {
+            LoadedCycle::load(&file, &IngestConfig::default(), &ComputeConfig::default())
+                .expect("loading")
+        })
+    });
+    group.bench_function("read_then_compute", |b| {
+        b.iter(|| {
+            let cycle = read_cycle(&file, &IngestConfig::default()).expect("reading");
+            let heights =
+                compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).expect("computing");
+            (cycle, heights)
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, parts, steps, whole_process);
 criterion_main!(benches);
