@@ -30,6 +30,25 @@ pub(crate) fn zeroed_field_array<T: Clone + Default>(
     Array5::from_shape_vec(dim, zeroed_field(len)).unwrap_or_else(|_| Array5::default(dim))
 }
 
+/// Writes the zero of `T` into the first element of every 4 KiB page of `buf[from..]` that
+/// starts within the next `bytes` bytes, so that those pages are faulted in now rather than
+/// at their first real write; returns the index reached (at most `buf.len()`).
+///
+/// For a fresh zeroed buffer that nothing has written yet (the values stay zero), touched
+/// in time that would otherwise be idle: see [`crate::compute::read_and_compute`].
+pub(crate) fn touch_pages<T: Copy + Default>(buf: &mut [T], from: usize, bytes: usize) -> usize {
+    const PAGE: usize = 4096;
+    let size = std::mem::size_of::<T>().max(1);
+    let end = from.saturating_add(bytes / size).min(buf.len());
+    let stride = (PAGE / size).max(1);
+    if let Some(part) = buf.get_mut(from..end) {
+        for v in part.iter_mut().step_by(stride) {
+            *v = T::default();
+        }
+    }
+    end.max(from.min(buf.len()))
+}
+
 /// Asks the kernel to back a large, not yet touched allocation with transparent huge pages
 /// (`madvise(MADV_HUGEPAGE)` on its 2 MiB-aligned interior), so that the first write faults
 /// in 2 MiB at a time instead of 4 KiB. Linux only; elsewhere, or when the system refuses
@@ -73,5 +92,21 @@ mod tests {
         assert!(a.iter().all(|&x| x == 0.0));
         let empty: Vec<f32> = zeroed_field(0);
         assert!(empty.is_empty());
+    }
+
+    #[test]
+    fn touching_pages_keeps_zeros_and_walks_to_the_end() {
+        let mut z: Vec<f32> = zeroed_field(3 << 20);
+        let mut at = 0;
+        let mut calls = 0;
+        while at < z.len() {
+            at = touch_pages(&mut z, at, 2 << 20);
+            calls += 1;
+        }
+        // 12 MiB of f32 in 2 MiB pieces.
+        assert_eq!((at, calls), (z.len(), 6));
+        assert!(z.iter().all(|&x| x == 0.0));
+        let len = z.len();
+        assert_eq!(touch_pages(&mut z, len + 5, 4096), len);
     }
 }

@@ -13,6 +13,7 @@ use rayon::prelude::*;
 
 use std::path::Path;
 
+use crate::buffers::touch_pages;
 use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
 use crate::kernel::{IsobaricKernel, KernelOutput, StepFields};
 use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
@@ -122,6 +123,9 @@ pub fn compute_heights(
     }
 }
 
+/// Output bytes faulted in per piece of idle work in [`read_and_compute`]: a huge page.
+const TOUCH_BYTES: usize = 2 << 20;
+
 /// Why a cycle could not be read and computed; both messages name the file.
 #[derive(Debug, thiserror::Error)]
 pub enum LoadError {
@@ -163,12 +167,41 @@ pub fn read_and_compute(
     };
     let work = |(kernel, reference, mut out): (IsobaricKernel, Reference, KernelOutput),
                 shell: &Cycle,
-                steps: crate::ingest::StepFeed<'_>|
+                mut steps: crate::ingest::StepFeed<'_>|
      -> Option<(Reference, KernelOutput, usize)> {
         let surface = shell.surface.as_ref()?;
+        let (_, times, levels, rows, cols) = out.geopotential_height.dim();
+        let step_len = levels * rows * cols;
+        // While no step is ready (above all while the first is read), fault in the output
+        // pages of the steps not yet computed: work the kernel would otherwise do at its
+        // first write, moved into idle time.
+        let (mut z_at, mut b_at) = (0usize, 0usize);
         let mut done = 0;
-        for step in steps {
+        loop {
+            let next_start = done * step_len;
+            let step = steps.next_or_idle(|| {
+                let (z, b) = (&mut out.geopotential_height, &mut out.below_ground);
+                let (Some(z), Some(b)) = (z.as_slice_mut(), b.as_slice_mut()) else {
+                    return false;
+                };
+                z_at = z_at.max(next_start);
+                b_at = b_at.max(next_start);
+                if z_at < z.len() {
+                    z_at = touch_pages(z, z_at, TOUCH_BYTES);
+                } else if b_at < b.len() {
+                    b_at = touch_pages(b, b_at, TOUCH_BYTES);
+                } else {
+                    return false;
+                }
+                true
+            });
+            let Some(step) = step else {
+                break;
+            };
             let (m, t) = (step.member, step.time);
+            if m * times + t != done {
+                return None;
+            }
             let fields = StepFields {
                 t: step.temperature,
                 q: step.humidity,

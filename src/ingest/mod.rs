@@ -292,6 +292,25 @@ pub struct StepFeed<'a> {
     steps: mpsc::Receiver<FilledStep<'a>>,
 }
 
+impl<'a> StepFeed<'a> {
+    /// The next step, doing `idle` work meanwhile: while no step is ready, `idle` is
+    /// called again and again (each call a small piece of work) until it returns false,
+    /// after which this waits. `None` once the feed has ended.
+    pub fn next_or_idle(&mut self, mut idle: impl FnMut() -> bool) -> Option<FilledStep<'a>> {
+        loop {
+            match self.steps.try_recv() {
+                Ok(step) => return Some(step),
+                Err(mpsc::TryRecvError::Disconnected) => return None,
+                Err(mpsc::TryRecvError::Empty) => {
+                    if !idle() {
+                        return self.steps.recv().ok();
+                    }
+                }
+            }
+        }
+    }
+}
+
 impl<'a> Iterator for StepFeed<'a> {
     type Item = FilledStep<'a>;
 
