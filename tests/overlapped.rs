@@ -238,6 +238,27 @@ fn a_declined_preparation_reads_the_whole_cycle_and_hands_over_nothing() {
     same_cycle("rh", &read_cycle(&path, &ingest).expect("rh"), &cycle);
 }
 
+/// Chunks that span several time steps would be decompressed once per step read: such files
+/// are read whole, with the same values.
+#[test]
+fn chunks_across_time_steps_are_read_whole() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    for (label, across) in [("one-step-chunks", false), ("all-step-chunks", true)] {
+        let spec = FixtureSpec {
+            time_steps: Some(3),
+            chunks_across_steps: across,
+            ..FixtureSpec::default()
+        };
+        let path = write(dir.path(), label, &spec);
+        let (cycle, fed) =
+            read_cycle_overlapped(&path, &ingest, |_| Some(()), |(), _, steps| steps.count())
+                .expect(label);
+        assert_eq!(fed, (!across).then_some(3), "{label}");
+        same_cycle(label, &read_cycle(&path, &ingest).expect(label), &cycle);
+    }
+}
+
 /// Writes `value` into variable `name` at `index` of an existing fixture file.
 fn overwrite(path: &Path, name: &str, index: &[usize], value: f32) {
     let mut file = netcdf::append(path).expect("opening the fixture for append");

@@ -641,7 +641,8 @@ fn value_count(file: &str, var: &Variable<'_>, shape: &[usize]) -> Result<usize,
 /// (see [`super::read_cycle_overlapped`]).
 ///
 /// Planned only where a step is one contiguous run of the file: values stored as `f32` (or
-/// narrow integers), dimensions in canonical order. Each step goes through the same decoding
+/// narrow integers), dimensions in canonical order, and storage contiguous or in chunks of
+/// one member and one time step. Each step goes through the same decoding
 /// pass, plausibility test and level reversal as a whole-variable read, so the values are
 /// the same bit for bit.
 pub(crate) struct StepwiseField<'f> {
@@ -665,6 +666,18 @@ impl<'f> StepwiseField<'f> {
         if !matches!(storage, Storage::Narrow { .. })
             || !in_canonical_order(&present_axes(&req.axes))
         {
+            return Ok(None);
+        }
+        // A chunk that spans several members or time steps would be decompressed once per
+        // step read (the library's chunk cache holds far less than a step of them).
+        let chunks = var.chunking().map_err(|e| read_error(req.file, var, e))?;
+        let spans_steps = |chunks: &[usize]| {
+            req.axes[..2]
+                .iter()
+                .flatten()
+                .any(|&d| chunks.get(d).is_some_and(|&n| n > 1))
+        };
+        if chunks.as_deref().is_some_and(spans_steps) {
             return Ok(None);
         }
         let decoder = Decoder::new(req.file, var, storage, default_fill, req.to_si)?;

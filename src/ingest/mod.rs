@@ -351,55 +351,99 @@ where
     F: for<'a> FnOnce(W, &'a Cycle, StepFeed<'a>) -> R + Send,
 {
     let label = checked_label(path)?;
-    let _session = crate::netcdf_session::lock();
-    let file = open_quietly(path, &label)?;
-    let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
-    let mut cycle = reader.read(path)?;
-    let planned = reader.take_stepwise();
-    let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
-    let t_plan = plan_of(reader::Bulk::Temperature);
-    let q_plan = plan_of(reader::Bulk::Humidity);
-    let fields = Stepwise {
-        file: &label,
-        temperature: t_plan,
-        humidity: q_plan,
-    };
-    let complete = t_plan.is_some() && (cycle.humidity.is_none() || q_plan.is_some());
-    let state = if complete { prepare(&cycle) } else { None };
-    let Some(state) = state else {
-        let mut t = std::mem::take(&mut cycle.temperature);
-        let mut q = cycle
+    // Held outside the scope, so that the worker may borrow them while this thread reads:
+    // the cycle without its two large fields, and those fields.
+    let mut cycle_slot: Option<Cycle> = None;
+    let mut t_slot = Field5::zeros((0, 0, 0, 0, 0));
+    let mut q_slot: Option<Field5> = None;
+    let (cycle_ref, t_ref, q_ref, label_ref) = (&mut cycle_slot, &mut t_slot, &mut q_slot, &label);
+    let outcome = std::thread::scope(move |scope| -> Result<Overlap<R>, IngestError> {
+        let session = crate::netcdf_session::lock();
+        let file = open_quietly(path, label_ref)?;
+        let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
+        let mut cycle = reader.read(path)?;
+        let planned = reader.take_stepwise();
+        let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
+        let fields = Stepwise {
+            file: label_ref,
+            temperature: plan_of(reader::Bulk::Temperature),
+            humidity: plan_of(reader::Bulk::Humidity),
+        };
+        let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
+        let complete =
+            fields.temperature.is_some() && (cycle.humidity.is_none() || fields.humidity.is_some());
+        let state = if complete { prepare(&cycle) } else { None };
+        *t_ref = std::mem::take(&mut cycle.temperature);
+        *q_ref = cycle
             .humidity
             .as_mut()
             .map(|h| std::mem::take(&mut h.values));
-        let filled = fields.fill(&mut t, q.as_mut(), |_| {});
-        restore(&mut cycle, t, q);
-        filled?;
-        fields.check_valid(&cycle)?;
-        return Ok((cycle, None));
-    };
-    let mut t = std::mem::take(&mut cycle.temperature);
-    let mut q = cycle
-        .humidity
-        .as_mut()
-        .map(|h| std::mem::take(&mut h.values));
-    let (filled, result) = std::thread::scope(|scope| {
+        let shell: &Cycle = cycle_ref.insert(cycle);
+        let Some(state) = state else {
+            fields.fill(t_ref, q_ref.as_mut(), |_| {})?;
+            return Ok(Overlap {
+                result: None,
+                names,
+            });
+        };
         let (tx, rx) = mpsc::channel();
-        let shell = &cycle;
         let worker = scope.spawn(move || work(state, shell, StepFeed { steps: rx }));
-        let filled = fields.fill(&mut t, q.as_mut(), |step| {
+        let filled = fields.fill(t_ref, q_ref.as_mut(), |step| {
             // A worker that stopped early needs no more steps; reading goes on regardless.
             let _ = tx.send(step);
         });
         drop(tx);
-        let result = worker.join();
-        (filled, result)
+        // Every value is in memory now: close the file (and free the library's chunk
+        // caches) and let other reads in while the worker finishes.
+        drop(planned);
+        drop(reader);
+        drop(file);
+        drop(session);
+        let result = worker
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        filled?;
+        Ok(Overlap {
+            result: Some(result),
+            names,
+        })
     });
-    restore(&mut cycle, t, q);
-    let result = result.unwrap_or_else(|panic| std::panic::resume_unwind(panic));
-    filled?;
-    fields.check_valid(&cycle)?;
-    Ok((cycle, Some(result)))
+    let outcome = outcome?;
+    let Some(mut cycle) = cycle_slot else {
+        return Err(IngestError::Damaged {
+            file: label,
+            detail: "the read ended without a cycle".into(),
+        });
+    };
+    restore(&mut cycle, t_slot, q_slot);
+    check_valid(&label, &outcome.names, &cycle)?;
+    Ok((cycle, outcome.result))
+}
+
+/// What the reading scope of [`read_cycle_overlapped`] hands back.
+struct Overlap<R> {
+    /// The worker's result, when it ran.
+    result: Option<R>,
+    /// The file names of the temperature and humidity read step by step.
+    names: [Option<String>; 2],
+}
+
+/// The checks [`read_cycle`] makes on temperature and humidity right after reading them, on
+/// the fields read step by step (`names`: temperature, humidity): at least one valid value
+/// each.
+fn check_valid(file: &str, names: &[Option<String>; 2], cycle: &Cycle) -> Result<(), IngestError> {
+    let humidity = cycle.humidity.as_ref().map(|h| &h.values);
+    for (name, values) in names.iter().zip([Some(&cycle.temperature), humidity]) {
+        if let (Some(name), Some(values)) = (name, values) {
+            if values.iter().all(|x| x.is_nan()) {
+                return Err(IngestError::NoValidData {
+                    file: file.to_string(),
+                    variable: name.clone(),
+                });
+            }
+        }
+    }
+    Ok(())
 }
 
 /// Puts the temperature and humidity values back into the cycle.
@@ -464,24 +508,6 @@ impl Stepwise<'_, '_> {
             }
         }
         Ok(())
-    }
-
-    /// The checks [`read_cycle`] makes on temperature and humidity right after reading them:
-    /// at least one valid value each.
-    fn check_valid(&self, cycle: &Cycle) -> Result<(), IngestError> {
-        let empty = |plan: Option<&field::StepwiseField<'_>>, values: Option<&Field5>| {
-            plan.zip(values)
-                .filter(|(_, v)| v.iter().all(|x| x.is_nan()))
-                .map(|(p, _)| IngestError::NoValidData {
-                    file: self.file.to_string(),
-                    variable: p.name(),
-                })
-        };
-        let humidity = cycle.humidity.as_ref().map(|h| &h.values);
-        match empty(self.temperature, Some(&cycle.temperature)).or(empty(self.humidity, humidity)) {
-            Some(e) => Err(e),
-            None => Ok(()),
-        }
     }
 }
 

@@ -245,6 +245,9 @@ pub struct FixtureSpec {
     pub near_surface_decoys: bool,
     /// Write 3-D fields as (member, time, lon, lat, level) instead of the CF order.
     pub transpose_dims: bool,
+    /// NetCDF-4: store float fields in chunks of one level plane holding every member and
+    /// time step (else the library's default layout).
+    pub chunks_across_steps: bool,
     /// Faults for error tests.
     pub faults: Faults,
 }
@@ -272,6 +275,7 @@ impl Default for FixtureSpec {
             standard_names: true,
             near_surface_decoys: false,
             transpose_dims: false,
+            chunks_across_steps: false,
             faults: Faults::default(),
         }
     }
@@ -1183,6 +1187,16 @@ impl FixtureSpec {
                 .map(|(v, &m)| if m { marker } else { *v as f32 })
                 .collect();
             let mut v = f.add_variable::<f32>(name, &dim_names)?;
+            if self.chunks_across_steps && self.format == Format::Netcdf4 {
+                let chunks: Vec<usize> = dims
+                    .iter()
+                    .map(|d| match d {
+                        Dim::Level(_) => 1,
+                        other => other.len().max(1),
+                    })
+                    .collect();
+                v.set_chunking(&chunks)?;
+            }
             match self.mask {
                 MaskEncoding::FillValue => {
                     v.put_attribute("_FillValue", 1.0e20f32)?;
