@@ -8,10 +8,10 @@
 //! gathered into `f64`, integrated in `f64`, and scattered back as `f32`. On both paths a
 //! missing input masks what depends on it in that column only: nothing crosses columns.
 
+use std::path::Path;
+
 use ndarray::{s, Array5, ArrayView2, ArrayView3, ArrayViewMut2, Axis};
 use rayon::prelude::*;
-
-use std::path::Path;
 
 use crate::buffers::touch_pages;
 use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
@@ -111,13 +111,7 @@ pub fn compute_heights(
     // Same validation as the column path (a cycle with surface fields always resolves).
     let reference = StepColumns::new(cycle, config, 0, 0)?.reference;
     match kernel.run(cycle, progress) {
-        Ok(out) => Ok(Heights {
-            geopotential_height: out.geopotential_height,
-            below_ground: out.below_ground,
-            thickness: out.thickness,
-            constants: cycle.constants,
-            method: method_sentence(cycle, reference),
-        }),
+        Ok(out) => Ok(kernel_heights(cycle, out, reference)),
         // Not reached: the kernel was prepared for this very cycle.
         Err(_) => compute_heights_by_columns(cycle, config, progress),
     }
@@ -215,25 +209,24 @@ pub fn read_and_compute(
         Some((reference, out, done))
     };
     let (cycle, computed) = read_cycle_overlapped(path, ingest, prepare, work)?;
-    match computed.flatten() {
+    let (members, times, ..) = cycle.temperature.dim();
+    let total = members * times;
+    let heights = match computed.flatten() {
         // Every step went through the kernel.
-        Some((reference, out, done))
-            if done == cycle.temperature.dim().0 * cycle.temperature.dim().1 =>
-        {
-            let heights = Heights {
-                geopotential_height: out.geopotential_height,
-                below_ground: out.below_ground,
-                thickness: out.thickness,
-                constants: cycle.constants,
-                method: method_sentence(&cycle, reference),
-            };
-            Ok((cycle, heights))
-        }
-        _ => {
-            let total = cycle.temperature.dim().0 * cycle.temperature.dim().1;
-            let heights = compute_heights(&cycle, config, &|done| progress(done, total))?;
-            Ok((cycle, heights))
-        }
+        Some((reference, out, done)) if done == total => kernel_heights(&cycle, out, reference),
+        _ => compute_heights(&cycle, config, &|done| progress(done, total))?,
+    };
+    Ok((cycle, heights))
+}
+
+/// The heights of `cycle` from the row kernel's outputs.
+fn kernel_heights(cycle: &Cycle, out: KernelOutput, reference: Reference) -> Heights {
+    Heights {
+        geopotential_height: out.geopotential_height,
+        below_ground: out.below_ground,
+        thickness: out.thickness,
+        constants: cycle.constants,
+        method: method_sentence(cycle, reference),
     }
 }
 

@@ -868,18 +868,10 @@ impl IsobaricKernel {
         // Zeroed allocations come from the system as untouched pages, advised for huge
         // pages: the kernel writes every element once, so no separate fill pass runs over
         // these megabytes.
-        let mut geopotential_height = zeroed_field_array::<f32>(cycle.temperature.dim());
-        let mut below_ground = zeroed_field_array::<u8>(cycle.temperature.dim());
-        let thickness = self.run_steps(
-            cycle,
-            Some((&mut geopotential_height, &mut below_ground)),
-            progress,
-        )?;
-        Ok(KernelOutput {
-            geopotential_height,
-            below_ground,
-            thickness,
-        })
+        let mut out = self.outputs(cycle.temperature.dim());
+        let heights = Some((&mut out.geopotential_height, &mut out.below_ground));
+        self.run_steps(cycle, heights, &mut out.thickness, progress)?;
+        Ok(out)
     }
 
     /// The layer thicknesses alone, the same values as [`IsobaricKernel::run`] gives, without
@@ -891,7 +883,9 @@ impl IsobaricKernel {
         progress: &(dyn Fn(usize) + Sync),
     ) -> Result<Vec<LayerThickness>, NotApplicable> {
         self.check_cycle(cycle)?;
-        self.run_steps(cycle, None, progress)
+        let mut thickness = self.thickness_outputs(cycle.temperature.dim());
+        self.run_steps(cycle, None, &mut thickness, progress)?;
+        Ok(thickness)
     }
 
     /// Refuses a cycle other than the one the kernel was prepared for.
@@ -906,13 +900,14 @@ impl IsobaricKernel {
     }
 
     /// Both runs: every (member, time) step, rows in parallel; heights and flags stored
-    /// into `heights` when given (shaped as the temperature).
+    /// into `heights` when given (shaped as the temperature), layers into `thickness`.
     fn run_steps(
         &self,
         cycle: &Cycle,
         mut heights: Option<(&mut Array5<f32>, &mut Array5<u8>)>,
+        thickness: &mut [LayerThickness],
         progress: &(dyn Fn(usize) + Sync),
-    ) -> Result<Vec<LayerThickness>, NotApplicable> {
+    ) -> Result<(), NotApplicable> {
         let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
         let (members, times, levels, _, _) = cycle.temperature.dim();
         let n_levels = if heights.is_some() {
@@ -920,7 +915,6 @@ impl IsobaricKernel {
         } else {
             self.captures.iter().max().map_or(0, |&k| k + 1)
         };
-        let mut thickness = self.thickness_outputs(cycle.temperature.dim());
         let mut done = 0usize;
         for m in 0..members {
             for t in 0..times {
@@ -934,12 +928,12 @@ impl IsobaricKernel {
                     zs: surface.height_m.slice(s![m, t, .., ..]),
                 };
                 let step_heights = heights.as_mut().map(|(z, b)| (&mut **z, &mut **b));
-                self.step_into(&views, (m, t), n_levels, step_heights, &mut thickness);
+                self.step_into(&views, (m, t), n_levels, step_heights, thickness);
                 done += 1;
                 progress(done);
             }
         }
-        Ok(thickness)
+        Ok(())
     }
 
     /// Zeroed thickness outputs, one per layer, for a cycle of `dim`.
