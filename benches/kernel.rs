@@ -15,6 +15,7 @@ use ndarray::{Array4, Array5, Axis, Zip};
 
 use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
 use hypsogrid::kernel::IsobaricKernel;
+use hypsogrid::lanes::Lanes;
 use hypsogrid::model::{Cycle, Grid, Humidity, HumidityKind, Layer, Surface, Vertical};
 use hypsogrid::physics::Constants;
 
@@ -162,9 +163,9 @@ fn kernel_0p25deg(c: &mut Criterion) {
         let h = compute_heights(&cycle, &no_layers, &|_| {}).expect("computing");
         let buried = h.below_ground.iter().filter(|&&b| b == 1).count();
         eprintln!(
-            "0.25° cycle: {ROWS} x {COLS} x {levels}, {:.1}% of point-levels below ground; AVX2 build: {}",
+            "0.25° cycle: {ROWS} x {COLS} x {levels}, {:.1}% of point-levels below ground; SIMD build: {}",
             100.0 * buried as f64 / point_levels as f64,
-            kernel.uses_avx2()
+            kernel.lanes().name()
         );
     }
 
@@ -177,10 +178,17 @@ fn kernel_0p25deg(c: &mut Criterion) {
     group.bench_function("heights_all_levels", |b| {
         b.iter(|| compute_heights(&cycle, &no_layers, &|_| {}).expect("computing"))
     });
-    let portable = kernel.clone().with_avx2(false);
-    group.bench_function("heights_all_levels_portable_build", |b| {
-        b.iter(|| portable.run(&cycle, &|_| {}).expect("computing"))
-    });
+    // The narrower SIMD builds of the same kernel (same bits), for the README's table.
+    for lanes in Lanes::ALL {
+        if lanes >= kernel.lanes() || !lanes.available() {
+            continue;
+        }
+        let narrower = kernel.clone().with_lanes(lanes);
+        let name = format!("heights_all_levels_{}_build", lanes.name());
+        group.bench_function(name, |b| {
+            b.iter(|| narrower.run(&cycle, &|_| {}).expect("computing"))
+        });
+    }
     group.bench_function("heights_and_thickness_1000_500", |b| {
         b.iter(|| layer_kernel.run(&cycle, &|_| {}).expect("computing"))
     });

@@ -41,6 +41,7 @@ use ndarray::{
 use rayon::prelude::*;
 
 use crate::buffers::zeroed_field_array;
+use crate::lanes::{lane_builds, Lanes};
 use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Vertical};
 use crate::physics::constants::STANDARD_LAPSE_RATE;
 use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
@@ -316,11 +317,26 @@ struct StepIn<'s> {
     tvsop: &'s [f64],
 }
 
-/// What a level step writes per column.
+/// What a level step writes per column: the running state for the next level, and the
+/// level's stored values themselves (no `f64` copy of the heights is kept per level, and no
+/// second pass turns one into `f32`).
 struct StepOut<'s> {
     zp: &'s mut [f64],
     tvp: &'s mut [f64],
-    z: &'s mut [f64],
+    /// The level's heights, as stored.
+    z: &'s mut [f32],
+    /// The level's below-ground flags; written only by the `FULL` step (on the other levels
+    /// no column is below ground and the caller zeroes the flags).
+    below: &'s mut [u8],
+}
+
+/// Height of a level below the ground on the 6.5 K/km polytrope from the surface:
+/// `Z_s − (T_v,s (p/p_s)^κ − T_v,s)/Γ`, with `tvsop = T_v,s/p_s^κ` and `pow_k = p^κ`. One
+/// expression for the level step and the captured layer bounds, so that both give the same
+/// bits.
+#[inline(always)]
+fn below_ground_height(zs: f64, tvs: f64, tvsop: f64, pow_k: f64) -> f64 {
+    zs - (tvsop * pow_k - tvs) * INV_STANDARD_LAPSE_RATE
 }
 
 /// `1/Γ` for the 6.5 K/km polytrope, m K⁻¹ (multiplying by it instead of dividing by Γ
@@ -368,27 +384,36 @@ fn level_lanes<const M: u8, const FULL: bool>(
     let n = o.z.len();
     // Equal lengths up front let the compiler drop every bounds check in the loop.
     let (t, q, zp, tvp) = (&i.t[..n], &i.q[..n], &i.zp[..n], &i.tvp[..n]);
-    let (k0f, zs, tvs, tvsop) = (&i.k0f[..n], &i.zs[..n], &i.tvs[..n], &i.tvsop[..n]);
     let (zp_out, tvp_out, z_out) = (&mut o.zp[..n], &mut o.tvp[..n], &mut o.z[..n]);
     let mut large = 0u64;
-    for c in 0..n {
-        let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
-        let a = tvp[c];
-        let u = (a - tv) / (a + tv);
-        let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
-        if FULL {
+    if FULL {
+        let (k0f, zs, tvs, tvsop) = (&i.k0f[..n], &i.zs[..n], &i.tvs[..n], &i.tvsop[..n]);
+        let below_out = &mut o.below[..n];
+        for c in 0..n {
+            let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
+            let a = tvp[c];
+            let u = (a - tv) / (a + tv);
+            let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
             let above = p.k_f > k0f[c];
+            let below = p.k_f < k0f[c];
             large += u64::from(above & (u.abs() > SERIES_LIMIT));
             let z_next = if above { z_up } else { zp[c] };
             tvp_out[c] = if above { tv } else { a };
             zp_out[c] = z_next;
-            let z_below = zs[c] - (tvsop[c] * p.pow_k - tvs[c]) * INV_STANDARD_LAPSE_RATE;
-            z_out[c] = if p.k_f < k0f[c] { z_below } else { z_next };
-        } else {
+            let z_below = below_ground_height(zs[c], tvs[c], tvsop[c], p.pow_k);
+            z_out[c] = (if below { z_below } else { z_next }) as f32;
+            below_out[c] = u8::from(below);
+        }
+    } else {
+        for c in 0..n {
+            let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
+            let a = tvp[c];
+            let u = (a - tv) / (a + tv);
+            let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
             large += u64::from(u.abs() > SERIES_LIMIT);
             tvp_out[c] = tv;
             zp_out[c] = z_up;
-            z_out[c] = z_up;
+            z_out[c] = z_up as f32;
         }
     }
     large
@@ -455,72 +480,16 @@ struct SurfaceOut<'s> {
     z0: &'s mut [f64],
 }
 
-/// The surface set-up compiled for the baseline instruction set.
-fn surface_step_portable(kappa: f64, rd_g0: f64, i: &SurfaceIn<'_>, o: &mut SurfaceOut<'_>) -> u64 {
-    surface_lanes(kappa, rd_g0, i, o)
+lane_builds! {
+    /// The surface set-up of a row ([`surface_lanes`]) in the build `lanes` names.
+    fn surface_step(kappa: f64, rd_g0: f64, i: &SurfaceIn<'_>, o: &mut SurfaceOut<'_>) -> u64
+        = surface_lanes;
 }
 
-/// The surface set-up compiled with AVX2.
-///
-/// # Safety
-/// The processor must support AVX2.
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn surface_step_avx2(
-    kappa: f64,
-    rd_g0: f64,
-    i: &SurfaceIn<'_>,
-    o: &mut SurfaceOut<'_>,
-) -> u64 {
-    surface_lanes(kappa, rd_g0, i, o)
-}
-
-/// The surface set-up, AVX2 where the processor has it (as [`level_step`]).
-#[inline]
-fn surface_step(
-    avx2: bool,
-    kappa: f64,
-    rd_g0: f64,
-    i: &SurfaceIn<'_>,
-    o: &mut SurfaceOut<'_>,
-) -> u64 {
-    #[cfg(target_arch = "x86_64")]
-    if avx2 {
-        // SAFETY: as in `level_step`: `avx2` is true only when the processor has AVX2.
-        return unsafe { surface_step_avx2(kappa, rd_g0, i, o) };
-    }
-    let _ = avx2;
-    surface_step_portable(kappa, rd_g0, i, o)
-}
-
-/// The level step compiled for the baseline instruction set of the target.
-fn level_step_portable(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
-    level_step_body(m, p, i, o)
-}
-
-/// A level step: the portable build, or on x86-64 the AVX2 build of the same code when the
-/// processor has it (checked once in [`IsobaricKernel::new`]).
-#[inline]
-fn level_step(avx2: bool, m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
-    #[cfg(target_arch = "x86_64")]
-    if avx2 {
-        // SAFETY: `avx2` is true only when `is_x86_feature_detected!("avx2")` said so for
-        // this processor, which is the one requirement of a `target_feature` function; the
-        // body is the same safe code as the portable build.
-        return unsafe { level_step_avx2(m, p, i, o) };
-    }
-    let _ = avx2;
-    level_step_portable(m, p, i, o)
-}
-
-/// The level step compiled with AVX2 (four `f64` lanes instead of two).
-///
-/// # Safety
-/// The processor must support AVX2.
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn level_step_avx2(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
-    level_step_body(m, p, i, o)
+lane_builds! {
+    /// A level step ([`level_step_body`]) in the build `lanes` names.
+    fn level_step(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64
+        = level_step_body;
 }
 
 /// The fast kernel prepared for one cycle and one list of layers: per-level logarithms and
@@ -550,8 +519,8 @@ pub struct IsobaricKernel {
     layers: Vec<(Layer, Bound, Bound)>,
     /// Levels whose heights and virtual temperatures are kept per row for the thickness.
     captures: Vec<usize>,
-    /// Whether to run the AVX2 build of the level step.
-    avx2: bool,
+    /// Which build of the level and surface steps runs.
+    lanes: Lanes,
 }
 
 /// Surface of one column as the kernel sees it.
@@ -579,7 +548,10 @@ struct RowScratch {
     tvp_in: Vec<f64>,
     zp_out: Vec<f64>,
     tvp_out: Vec<f64>,
-    z: Vec<f64>,
+    /// A level's heights and flags where the output row is not one contiguous slice, or
+    /// where only layers are wanted.
+    z32: Vec<f32>,
+    below8: Vec<u8>,
     cap_z: Vec<Vec<f64>>,
     cap_tv: Vec<Vec<f64>>,
     tbuf: Vec<f32>,
@@ -603,7 +575,8 @@ impl RowScratch {
             tvp_in: v(),
             zp_out: v(),
             tvp_out: v(),
-            z: v(),
+            z32: vec![f32::NAN; cols],
+            below8: vec![0; cols],
             cap_z: (0..captures).map(|_| v()).collect(),
             cap_tv: (0..captures).map(|_| v()).collect(),
             tbuf: Vec::with_capacity(cols),
@@ -643,41 +616,6 @@ fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
             buf.clear();
             buf.extend(v.iter().copied());
             buf
-        }
-    }
-}
-
-/// Stores a row of heights as `f32`: a plain slice loop (which vectorises) where the output
-/// row is contiguous, as it is in arrays this module allocates.
-fn store_heights(mut lane: ArrayViewMut1<'_, f32>, z: &[f64]) {
-    match lane.as_slice_mut() {
-        Some(out) => {
-            for (o, &v) in out.iter_mut().zip(z) {
-                *o = v as f32;
-            }
-        }
-        None => {
-            for (o, &v) in lane.iter_mut().zip(z) {
-                *o = v as f32;
-            }
-        }
-    }
-}
-
-/// Stores the below-ground flags of level `k` of a row: 1 where `k` is under the column's
-/// lowest level above ground.
-fn store_flags(mut lane: ArrayViewMut1<'_, u8>, k: usize, k0: &[u8]) {
-    let k8 = u8::try_from(k).unwrap_or(u8::MAX);
-    match lane.as_slice_mut() {
-        Some(out) => {
-            for (o, &l) in out.iter_mut().zip(k0) {
-                *o = u8::from(k8 < l);
-            }
-        }
-        None => {
-            for (o, &l) in lane.iter_mut().zip(k0) {
-                *o = u8::from(k8 < l);
-            }
         }
     }
 }
@@ -807,10 +745,6 @@ impl IsobaricKernel {
         let pow_kappa: Vec<f64> = ln_p.iter().map(|&l| (kappa * l).exp()).collect();
         let inv_pow_kappa = pow_kappa.iter().map(|&x| 1.0 / x).collect();
         let eps = c.molar_mass_ratio;
-        #[cfg(target_arch = "x86_64")]
-        let avx2 = std::is_x86_feature_detected!("avx2");
-        #[cfg(not(target_arch = "x86_64"))]
-        let avx2 = false;
         Ok(Self {
             levels,
             ln_p,
@@ -824,28 +758,21 @@ impl IsobaricKernel {
             moisture,
             layers: placed,
             captures,
-            avx2,
+            lanes: Lanes::widest(),
         })
     }
 
-    /// The same kernel with the AVX2 build switched off (`false`) or back on where the
-    /// processor has it (`true`), to compare the two builds.
-    pub fn with_avx2(mut self, wanted: bool) -> Self {
-        #[cfg(target_arch = "x86_64")]
-        {
-            self.avx2 = wanted && std::is_x86_feature_detected!("avx2");
-        }
-        #[cfg(not(target_arch = "x86_64"))]
-        {
-            let _ = wanted;
-            self.avx2 = false;
-        }
+    /// The same kernel running the build `wanted` of its inner loops, or the widest one
+    /// below it that the processor has; kernels start with the widest. For comparing the
+    /// builds: all give the same bits.
+    pub fn with_lanes(mut self, wanted: Lanes) -> Self {
+        self.lanes = Lanes::widest_up_to(wanted);
         self
     }
 
-    /// Whether the AVX2 build of the inner loop runs.
-    pub fn uses_avx2(&self) -> bool {
-        self.avx2
+    /// Which build of the inner loops runs.
+    pub fn lanes(&self) -> Lanes {
+        self.lanes
     }
 
     /// Heights on every level, below-ground flags and layer thicknesses for every member and
@@ -1102,7 +1029,7 @@ impl IsobaricKernel {
     /// level a layer needs otherwise).
     fn row(&self, v: &StepFields<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
         let all = self.levels.len();
-        let cols = s.z.len();
+        let cols = s.ps.len();
         // The surface of every column and the lowest level above it (`k0`), as the column
         // path: the surface virtual temperature is level k0's extrapolated to p_s at 6.5 K/km.
         // First, per column, what needs a gather; then the arithmetic in lanes.
@@ -1154,7 +1081,7 @@ impl IsobaricKernel {
             z0: &mut s.zp_in,
         };
         let large = surface_step(
-            self.avx2,
+            self.lanes,
             self.kappa,
             self.rd_g0,
             &surface_in,
@@ -1211,31 +1138,59 @@ impl IsobaricKernel {
                 tvs: &s.tvs,
                 tvsop: &s.tvsop,
             };
+            // The level's heights go straight into the output row (and its flags, on levels
+            // where some column is below ground), or into scratch when there is no
+            // contiguous output row to write.
+            let mut z_row = out.z.as_mut().map(|z| z.index_axis_mut(Axis(0), k));
+            let mut b_row = out.below.as_mut().map(|b| b.index_axis_mut(Axis(0), k));
+            let z_direct = z_row.as_ref().is_some_and(|v| v.is_standard_layout());
+            let b_direct = b_row.as_ref().is_some_and(|v| v.is_standard_layout());
+            let z_lane: &mut [f32] = match z_row.as_mut().and_then(|v| v.as_slice_mut()) {
+                Some(sl) => sl,
+                None => &mut s.z32,
+            };
+            let b_lane: &mut [u8] = match b_row.as_mut().and_then(|v| v.as_slice_mut()) {
+                Some(sl) if p.full => sl,
+                _ => &mut s.below8,
+            };
             let mut output = StepOut {
                 zp: &mut s.zp_out,
                 tvp: &mut s.tvp_out,
-                z: &mut s.z,
+                z: z_lane,
+                below: b_lane,
             };
-            let large = level_step(self.avx2, m, &p, &input, &mut output);
+            let large = level_step(self.lanes, m, &p, &input, &mut output);
             if large > 0 {
                 // Layers beyond the series' range (see `SERIES_LIMIT`): the exact form.
                 for c in 0..cols {
-                    let (a, b) = (s.tvp_in[c], s.tvp_out[c]);
+                    let (a, b) = (s.tvp_in[c], output.tvp[c]);
                     if p.k_f > s.k0f[c] && ((a - b) / (a + b)).abs() > SERIES_LIMIT {
                         let z = s.zp_in[c] + p.c1 * logarithmic_mean_temperature(a, b);
-                        s.zp_out[c] = z;
-                        s.z[c] = z;
+                        output.zp[c] = z;
+                        output.z[c] = z as f32;
                     }
                 }
             }
-            if let Some(z_out) = out.z.as_mut() {
-                store_heights(z_out.index_axis_mut(Axis(0), k), &s.z);
+            if let Some(row) = z_row.as_mut().filter(|_| !z_direct) {
+                row.assign(&ArrayView1::from(&s.z32[..]));
             }
-            if let Some(b_out) = out.below.as_mut() {
-                store_flags(b_out.index_axis_mut(Axis(0), k), k, &s.k0);
+            if let Some(row) = b_row.as_mut() {
+                if !p.full {
+                    row.fill(0);
+                } else if !b_direct {
+                    row.assign(&ArrayView1::from(&s.below8[..]));
+                }
             }
             if let Some(slot) = self.captures.iter().position(|&l| l == k) {
-                s.cap_z[slot].copy_from_slice(&s.z);
+                // The level's heights in `f64`: the running height above the ground, the
+                // polytrope below it (the same expression as the level step's).
+                for (c, z) in s.cap_z[slot].iter_mut().enumerate() {
+                    *z = if p.k_f < s.k0f[c] {
+                        below_ground_height(s.zs[c], s.tvs[c], s.tvsop[c], p.pow_k)
+                    } else {
+                        s.zp_out[c]
+                    };
+                }
                 s.cap_tv[slot].copy_from_slice(&s.tvp_out);
             }
             std::mem::swap(&mut s.zp_in, &mut s.zp_out);

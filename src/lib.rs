@@ -12,6 +12,7 @@ pub mod demo;
 pub mod grid;
 pub mod ingest;
 pub mod kernel;
+pub mod lanes;
 pub mod metrics;
 pub mod model;
 pub mod netcdf_session;

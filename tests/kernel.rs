@@ -13,8 +13,10 @@ use ndarray::{s, Array4, Array5, ShapeBuilder};
 use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::kernel::{
-    logarithmic_mean_by_series, IsobaricKernel, NotApplicable, StepFields, SERIES_LIMIT,
+    logarithmic_mean_by_series, IsobaricKernel, KernelOutput, NotApplicable, StepFields,
+    SERIES_LIMIT,
 };
+use hypsogrid::lanes::Lanes;
 use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
 use hypsogrid::physics::hypsometric::scale_height;
 use hypsogrid::physics::standard_atmosphere::{
@@ -349,25 +351,36 @@ fn kernel_matches_the_column_path_when_the_fields_are_not_contiguous() {
 }
 
 #[test]
-fn avx2_and_portable_builds_give_identical_bits() {
+fn every_simd_build_gives_identical_bits() {
     let mut cycle = invented_cycle(1, 1, 6, 40, Some(HumidityKind::SpecificHumidity));
     plant_edge_cases(&mut cycle);
     let layers = layers();
     let kernel = IsobaricKernel::new(&cycle, &layers).expect("applies");
-    println!("AVX2 available: {}", kernel.uses_avx2());
-    let a = kernel
+    println!("widest SIMD build: {}", kernel.lanes().name());
+    let portable = kernel
         .clone()
-        .with_avx2(true)
+        .with_lanes(Lanes::Portable)
         .run(&cycle, &|_| {})
         .expect("run");
-    let b = kernel.with_avx2(false).run(&cycle, &|_| {}).expect("run");
-    // No fused multiply-add is enabled, so both builds do the same IEEE operations.
+    // No fused multiply-add is enabled, so every build does the same IEEE operations; a build
+    // this processor lacks falls back to a narrower one (and is then compared with itself).
     let bits = |x: &Array5<f32>| x.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
-    assert_eq!(bits(&a.geopotential_height), bits(&b.geopotential_height));
-    assert_eq!(a.below_ground, b.below_ground);
-    for (x, y) in a.thickness.iter().zip(&b.thickness) {
-        let bits4 = |v: &Array4<f32>| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-        assert_eq!(bits4(&x.values), bits4(&y.values));
+    let bits4 = |v: &Array4<f32>| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+    for lanes in [Lanes::Avx2, Lanes::Avx512] {
+        let k = kernel.clone().with_lanes(lanes);
+        assert!(k.lanes() <= lanes && k.lanes().available());
+        let a = k.run(&cycle, &|_| {}).expect("run");
+        let what = lanes.name();
+        assert_eq!(
+            bits(&a.geopotential_height),
+            bits(&portable.geopotential_height),
+            "{what}"
+        );
+        assert_eq!(a.below_ground, portable.below_ground, "{what}");
+        for (x, y) in a.thickness.iter().zip(&portable.thickness) {
+            assert_eq!(bits4(&x.values), bits4(&y.values), "{what}");
+            assert_eq!(x.below_ground, y.below_ground, "{what}");
+        }
     }
 }
 
@@ -681,4 +694,41 @@ fn steps_run_one_at_a_time_equal_the_whole_run() {
         fresh.geopotential_height.iter().all(|&z| z == 0.0),
         "nothing written by a refused step"
     );
+}
+
+/// The level step writes heights and flags straight into contiguous output rows; outputs laid
+/// out otherwise (here column-major, and pre-filled with garbage) go through scratch rows and
+/// must come out the same, every element written.
+#[test]
+fn steps_into_outputs_of_another_layout_equal_the_whole_run() {
+    let mut cycle = invented_cycle(1, 2, 5, 40, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let kernel = IsobaricKernel::new(&cycle, &layers()).expect("kernel");
+    let whole = kernel.run(&cycle, &|_| {}).expect("run");
+    let dim = cycle.temperature.dim();
+    let fresh = kernel.outputs(dim);
+    let mut out = KernelOutput {
+        geopotential_height: Array5::from_elem(dim.f(), -1.0e9_f32),
+        below_ground: Array5::from_elem(dim.f(), 7_u8),
+        thickness: fresh.thickness,
+    };
+    assert!(!out.geopotential_height.is_standard_layout());
+    let surface = cycle.surface.as_ref().expect("surface");
+    let humidity = cycle.humidity.as_ref().expect("humidity");
+    for t in 0..2 {
+        let step = StepFields {
+            t: cycle.temperature.slice(s![0, t, .., .., ..]),
+            q: Some(humidity.values.slice(s![0, t, .., .., ..])),
+            ps: surface.pressure_pa.slice(s![0, t, .., ..]),
+            zs: surface.height_m.slice(s![0, t, .., ..]),
+        };
+        kernel.run_step(step, (0, t), &mut out).expect("step");
+    }
+    let bits = |a: &Array5<f32>| a.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+    assert_eq!(
+        bits(&out.geopotential_height),
+        bits(&whole.geopotential_height)
+    );
+    assert_eq!(out.below_ground, whole.below_ground);
+    assert!(whole.below_ground.iter().any(|&b| b == 1), "some flags set");
 }

@@ -15,6 +15,7 @@ use netcdf::{AttributeValue, Extent, Variable};
 
 use super::units::Linear;
 use super::IngestError;
+use crate::lanes::{lane_builds, Lanes};
 
 /// Position of each canonical axis (member, time, level, latitude, longitude) among the
 /// variable's dimensions, `None` where the variable lacks that axis.
@@ -423,8 +424,9 @@ fn decode_lanes<const IDENTITY: bool>(p: &DecodePass, data: &mut [f32]) -> bool 
     bad
 }
 
-/// [`decode_lanes`] for the baseline instruction set.
-fn decode_portable(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool {
+/// [`decode_lanes`] with its constant chosen at run time.
+#[inline(always)]
+fn decode_body(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool {
     if identity {
         decode_lanes::<true>(p, data)
     } else {
@@ -432,29 +434,14 @@ fn decode_portable(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool {
     }
 }
 
-/// [`decode_lanes`] compiled with AVX2 (eight `f32` lanes).
-///
-/// # Safety
-/// The processor must support AVX2.
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn decode_avx2(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool {
-    if identity {
-        decode_lanes::<true>(p, data)
-    } else {
-        decode_lanes::<false>(p, data)
-    }
+lane_builds! {
+    /// The decoding pass in the build `lanes` names.
+    fn decode_in(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool = decode_body;
 }
 
-/// The decoding pass, in its AVX2 build where the processor has it.
+/// The decoding pass, in the widest SIMD build the processor has.
 fn decode_pass(identity: bool, p: &DecodePass, data: &mut [f32]) -> bool {
-    #[cfg(target_arch = "x86_64")]
-    if std::is_x86_feature_detected!("avx2") {
-        // SAFETY: the processor has just been found to support AVX2, the one requirement
-        // of `decode_avx2`, whose body is the same safe code as the portable build.
-        return unsafe { decode_avx2(identity, p, data) };
-    }
-    decode_portable(identity, p, data)
+    decode_in(Lanes::widest(), identity, p, data)
 }
 
 fn read_error(file: &str, var: &Variable<'_>, e: netcdf::Error) -> IngestError {
