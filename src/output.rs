@@ -952,9 +952,9 @@ fn prepare_float_variable(
     options: &OutputOptions,
     ndims: usize,
 ) -> Result<(), OutputError> {
-    var.set_fill_value(FLOAT_FILL_VALUE)
-        .map_err(plan.nc_error(format!("setting _FillValue of variable '{name}'")))?;
-    set_compression(var, plan, name, options, ndims)
+    set_compression(var, plan, name, options, ndims)?;
+    // After `set_nofill`, which drops the attribute: the value still marks missing data.
+    put_attr(var, plan, name, "_FillValue", FLOAT_FILL_VALUE)
 }
 
 /// Flag attributes, deflate and chunking of a below-ground flag variable.
@@ -971,6 +971,14 @@ fn prepare_flag_variable(
     set_compression(var, plan, name, options, ndims)
 }
 
+/// Storage of a data variable: no fill pass, then deflate and chunking when asked for.
+///
+/// Every value of these variables is written (missing ones as `_FillValue`), so the library's
+/// default of writing the fill value over the whole variable when its storage is allocated,
+/// before the data, would write every byte twice. Switching it off also removes a
+/// `_FillValue` attribute put before it, so float variables put theirs afterwards: CF
+/// readers find missing values by that attribute. A file that fails half-way is never seen
+/// unwritten: it is the `.partial` file, removed on error.
 fn set_compression(
     var: &mut netcdf::VariableMut<'_>,
     plan: &Plan,
@@ -978,6 +986,11 @@ fn set_compression(
     options: &OutputOptions,
     ndims: usize,
 ) -> Result<(), OutputError> {
+    // SAFETY: the crate marks this unsafe because reading a value never written would read
+    // uninitialised file contents; `write_file` writes every element of every variable
+    // prepared here before the file is closed and renamed into place.
+    unsafe { var.set_nofill() }
+        .map_err(plan.nc_error(format!("switching off the fill pass of variable '{name}'")))?;
     if let Some(level) = options.deflate_level {
         var.set_chunking(&plan.plane_chunks(ndims))
             .map_err(plan.nc_error(format!("setting chunking of variable '{name}'")))?;
