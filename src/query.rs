@@ -27,7 +27,7 @@
 use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime};
 
-use ndarray::{s, ArrayView3, Axis};
+use ndarray::{s, ArrayView1, ArrayView3, Axis};
 use rayon::prelude::*;
 
 use crate::compute::{read_and_compute, ColumnScratch, ComputeConfig, StepColumns};
@@ -960,6 +960,92 @@ impl<'a> Evaluator<'a> {
     }
 }
 
+/// The selected columns as one ascending run of grid columns, when they are one.
+fn contiguous_run(cols: &[usize]) -> Option<std::ops::Range<usize>> {
+    let first = *cols.first()?;
+    let contiguous = cols.iter().enumerate().all(|(i, &c)| c == first + i);
+    contiguous.then(|| first..first + cols.len())
+}
+
+/// Scratch for the selected columns of one stored row, where they are not contiguous.
+#[derive(Default)]
+struct RowGather {
+    bottom: Vec<f32>,
+    top: Vec<f32>,
+    below: Vec<u8>,
+}
+
+impl RowGather {
+    /// The selected columns of a bottom row, an optional top row and a flag row: slices of
+    /// the rows themselves for a contiguous `run`, else copies gathered here.
+    fn row<'s>(
+        &'s mut self,
+        (bottom, top, below): (
+            ArrayView1<'s, f32>,
+            Option<ArrayView1<'s, f32>>,
+            ArrayView1<'s, u8>,
+        ),
+        cols: &[usize],
+        run: Option<std::ops::Range<usize>>,
+    ) -> (&'s [f32], Option<&'s [f32]>, &'s [u8]) {
+        if let Some(run) = run {
+            let slices = (
+                bottom.to_slice().map(|s| &s[run.clone()]),
+                top.map(|t| t.to_slice().map(|s| &s[run.clone()])),
+                below.to_slice().map(|s| &s[run.clone()]),
+            );
+            if let (Some(b), Some(t), Some(f)) = slices {
+                return (b, t, f);
+            }
+        }
+        let gather = |from: ArrayView1<'_, f32>, to: &mut Vec<f32>| {
+            to.clear();
+            to.extend(cols.iter().map(|&c| from[c]));
+        };
+        gather(bottom, &mut self.bottom);
+        if let Some(t) = top {
+            gather(t, &mut self.top);
+        }
+        self.below.clear();
+        self.below.extend(cols.iter().map(|&c| below[c]));
+        let top = top.is_some().then_some(self.top.as_slice());
+        (&self.bottom, top, &self.below)
+    }
+}
+
+/// Stored heights of one row as answered: missing values flagged, the rest flagged where
+/// below the ground.
+fn level_row(z: &[f32], below: &[u8], values: &mut [f32], flags: &mut [u8]) {
+    let n = values.len();
+    let (z, below, flags) = (&z[..n], &below[..n], &mut flags[..n]);
+    for i in 0..n {
+        let ok = z[i].is_finite();
+        values[i] = if ok { z[i] } else { f32::NAN };
+        flags[i] = if ok {
+            flag(below[i] != 0)
+        } else {
+            FLAG_MISSING
+        };
+    }
+}
+
+/// Thickness between two stored level rows (difference in `f64`, as the batch takes it),
+/// flagged as [`level_row`] by the bottom level.
+fn thickness_row(bottom: &[f32], top: &[f32], below: &[u8], values: &mut [f32], flags: &mut [u8]) {
+    let n = values.len();
+    let (bottom, top, below, flags) = (&bottom[..n], &top[..n], &below[..n], &mut flags[..n]);
+    for i in 0..n {
+        let (b, t) = (f64::from(bottom[i]), f64::from(top[i]));
+        let ok = b.is_finite() & t.is_finite();
+        values[i] = if ok { (t - b) as f32 } else { f32::NAN };
+        flags[i] = if ok {
+            flag(below[i] != 0)
+        } else {
+            FLAG_MISSING
+        };
+    }
+}
+
 fn flag(below_ground: bool) -> u8 {
     if below_ground {
         FLAG_BELOW_GROUND
@@ -1185,11 +1271,30 @@ fn min_max(v: &[f64]) -> (f64, f64) {
         })
 }
 
-/// Validates an area query and returns the size of its answer, (latitudes, longitudes),
-/// without computing any value.
-pub fn area_shape(lc: &LoadedCycle, q: &AreaQuery) -> Result<(usize, usize), QueryError> {
+/// The size of an area answer, and how its values are found.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct AreaShape {
+    /// Latitudes (rows) of the answer.
+    pub rows: usize,
+    /// Longitudes (columns) of the answer.
+    pub cols: usize,
+    /// Whether every quantity is copied from the stored heights (heights on levels and
+    /// thicknesses between levels): a few nanoseconds a value, where a quantity between
+    /// levels rebuilds each column (about a microsecond a value).
+    pub stored: bool,
+}
+
+/// Validates an area query and returns the size of its answer without computing any value.
+pub fn area_shape(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaShape, QueryError> {
     let plan = plan_area(lc, q)?;
-    Ok((plan.selection.rows.len(), plan.selection.cols.len()))
+    Ok(AreaShape {
+        rows: plan.selection.rows.len(),
+        cols: plan.selection.cols.len(),
+        stored: plan
+            .plans
+            .iter()
+            .all(|p| matches!(p, Plan::Level(_) | Plan::LevelThickness { .. })),
+    })
 }
 
 /// Answers an area query: every quantity at every selected grid point.
@@ -1325,48 +1430,35 @@ fn fill_area(
         })
         .collect();
     // On-level quantities: a straight copy from the batch output, row by row, with no
-    // column rebuilt (the hot path of chart tools).
+    // column rebuilt (the hot path of chart tools). Selected columns that run contiguously
+    // (no stride, no seam) are read as slices of the stored rows; others are gathered first.
+    let run = contiguous_run(&sel.cols);
+    let ncols = sel.cols.len();
+    let mut gathered = RowGather::default();
     let mut column_plans = false;
     for (qi, field) in fields.iter_mut().enumerate() {
-        match plan.plans[qi] {
-            Plan::Level(k) => {
-                let z = ev.z.index_axis(Axis(0), k);
-                let below = ev.below.index_axis(Axis(0), k);
-                let mut i = 0;
-                for &r in rows {
-                    let (z_row, b_row) = (z.row(r), below.row(r));
-                    for &c in &sel.cols {
-                        let v = z_row[c];
-                        if v.is_finite() {
-                            field.values[i] = v;
-                            field.flags[i] = flag(b_row[c] != 0);
-                        } else {
-                            field.flags[i] = FLAG_MISSING;
-                        }
-                        i += 1;
-                    }
-                }
+        let (bottom, top) = match plan.plans[qi] {
+            Plan::Level(k) => (k, None),
+            Plan::LevelThickness { bottom, top } => (bottom, Some(top)),
+            Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. } => {
+                column_plans = true;
+                continue;
             }
-            Plan::LevelThickness { bottom, top } => {
-                let zb = ev.z.index_axis(Axis(0), bottom);
-                let zt = ev.z.index_axis(Axis(0), top);
-                let below = ev.below.index_axis(Axis(0), bottom);
-                let mut i = 0;
-                for &r in rows {
-                    let (b_row, t_row, f_row) = (zb.row(r), zt.row(r), below.row(r));
-                    for &c in &sel.cols {
-                        let (b, t) = (f64::from(b_row[c]), f64::from(t_row[c]));
-                        if b.is_finite() && t.is_finite() {
-                            field.values[i] = (t - b) as f32;
-                            field.flags[i] = flag(f_row[c] != 0);
-                        } else {
-                            field.flags[i] = FLAG_MISSING;
-                        }
-                        i += 1;
-                    }
-                }
+        };
+        let zb = ev.z.index_axis(Axis(0), bottom);
+        let zt = top.map(|k| ev.z.index_axis(Axis(0), k));
+        let below = ev.below.index_axis(Axis(0), bottom);
+        let out = field
+            .values
+            .chunks_exact_mut(ncols)
+            .zip(field.flags.chunks_exact_mut(ncols));
+        for (&r, (values, flags)) in rows.iter().zip(out) {
+            let rows_in = (zb.row(r), zt.as_ref().map(|z| z.row(r)), below.row(r));
+            let (b, t, f) = gathered.row(rows_in, &sel.cols, run.clone());
+            match t {
+                Some(t) => thickness_row(b, t, f, values, flags),
+                None => level_row(b, f, values, flags),
             }
-            Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. } => column_plans = true,
         }
     }
     if column_plans {

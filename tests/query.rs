@@ -297,7 +297,13 @@ fn stride_thins_both_axes_and_chunks_rebuild_the_whole() {
         stride: 3,
         ..area_query(vec![thickness(1000.0, 500.0)], demo_box())
     };
-    assert_eq!(area_shape(lc, &q).unwrap(), (9, 14));
+    let shape = area_shape(lc, &q).unwrap();
+    assert_eq!((shape.rows, shape.cols), (9, 14));
+    // Both bounds on levels: copied from the stored heights. A pressure between levels (the
+    // demo's levels are whole tens of hPa) rebuilds columns.
+    assert!(shape.stored);
+    let between = area_query(vec![thickness(1000.0, 500.0), height(912.4)], demo_box());
+    assert!(!area_shape(lc, &between).unwrap().stored);
     let thin = area(lc, &q, &Limits::default()).unwrap();
     let nf = full.longitudes.len();
     for (i, &lat) in thin.latitudes.iter().enumerate() {
