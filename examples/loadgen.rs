@@ -48,6 +48,89 @@ const REQUEST_DEADLINE: Duration = Duration::from_secs(10);
 /// maximum, 4 MiB by default).
 const CLIENT_MAX_MESSAGE: usize = 64 * 1024 * 1024;
 
+/// The parts of a `hypsogrid.v1.AreaChunk` the generator checks, decoded without turning
+/// every value into an `f32`.
+///
+/// Packed `repeated float` and `bytes` share the protobuf wire form (a length-delimited run of
+/// bytes), so declaring `values` as bytes reads the same message with one copy instead of a
+/// decode call per value: prost's generic decoding of packed floats took about a fifth of the
+/// machine in an area-only run, time a load generator should leave to the server it measures.
+/// Real clients read packed floats as one block too (Python's protobuf runtime does).
+#[derive(Clone, PartialEq, prost::Message)]
+struct AreaChunkView {
+    #[prost(string, tag = "1")]
+    cycle_id: String,
+    #[prost(uint32, tag = "4")]
+    row_offset: u32,
+    #[prost(uint32, tag = "5")]
+    total_rows: u32,
+    #[prost(double, repeated, tag = "6")]
+    latitudes_deg: Vec<f64>,
+    #[prost(double, repeated, tag = "7")]
+    longitudes_deg: Vec<f64>,
+    #[prost(message, repeated, tag = "8")]
+    fields: Vec<QuantityValuesView>,
+}
+
+/// `hypsogrid.v1.QuantityValues` with its values as the raw little-endian `f32` bytes.
+#[derive(Clone, PartialEq, prost::Message)]
+struct QuantityValuesView {
+    #[prost(bytes = "bytes", tag = "2")]
+    values: prost::bytes::Bytes,
+    #[prost(bytes = "bytes", tag = "3")]
+    flags: prost::bytes::Bytes,
+}
+
+/// `QueryArea` answered as [`AreaChunkView`]s.
+async fn query_area_view(
+    grpc: &mut tonic::client::Grpc<Channel>,
+    request: pb::AreaRequest,
+) -> Result<tonic::codec::Streaming<AreaChunkView>, tonic::Status> {
+    grpc.ready()
+        .await
+        .map_err(|e| tonic::Status::unknown(format!("service was not ready: {e}")))?;
+    let path = tonic::codegen::http::uri::PathAndQuery::from_static(
+        "/hypsogrid.v1.HeightService/QueryArea",
+    );
+    let codec = tonic_prost::ProstCodec::<pb::AreaRequest, AreaChunkView>::default();
+    grpc.server_streaming(with_deadline(request), path, codec)
+        .await
+        .map(tonic::Response::into_inner)
+}
+
+/// Whether the chunks of one area answer fit together: every row once, in order, and as
+/// many values and flags per quantity as the chunk has points.
+#[derive(Default)]
+struct AreaCheck {
+    rows: usize,
+    cols: usize,
+}
+
+impl AreaCheck {
+    fn take(&mut self, chunk: &AreaChunkView, quantities: usize) -> Result<(), &'static str> {
+        if chunk.row_offset as usize != self.rows {
+            return Err("AreaRowsOutOfOrder");
+        }
+        if self.rows == 0 {
+            self.cols = chunk.longitudes_deg.len();
+        }
+        let points = chunk.latitudes_deg.len() * self.cols;
+        let sizes_ok = chunk.fields.len() == quantities
+            && chunk
+                .fields
+                .iter()
+                .all(|f| f.values.len() == 4 * points && f.flags.len() == points);
+        if !sizes_ok {
+            return Err("AreaValueCount");
+        }
+        self.rows += chunk.latitudes_deg.len();
+        if self.rows > chunk.total_rows as usize {
+            return Err("AreaTooManyRows");
+        }
+        Ok(())
+    }
+}
+
 #[derive(Parser, Debug)]
 #[command(
     about = "Load generator for the hypsogrid gRPC service (loopback only)",
@@ -79,9 +162,30 @@ struct Args {
     /// profile; a kind left out is not sent.
     #[arg(long, default_value = "area:1,position:8,profile:1")]
     mix: String,
+    /// Offered load, requests per second over all clients (open loop): each client sends on
+    /// a fixed schedule of RATE/CLIENTS requests a second, whatever its answers take, so the
+    /// latencies are those at this load. Without it each client sends its next request as
+    /// soon as the last is answered (closed loop: the most the server can do, where the
+    /// latency is mostly waiting behind the other clients).
+    #[arg(long)]
+    rate: Option<f64>,
     /// Print the report as one JSON object instead of a table.
     #[arg(long)]
     json: bool,
+}
+
+/// Highest `--rate`, requests per second.
+const MAX_RATE: f64 = 1.0e6;
+
+/// A send this much behind its schedule counts as late in an open-loop run.
+const LATE_SEND: Duration = Duration::from_millis(1);
+
+/// The open-loop schedule of one client: its first send and the interval between sends.
+/// Clients are spread evenly over one interval, so that they do not all send at once.
+fn schedule(rate: f64, clients: usize, id: usize, start: Instant) -> (Instant, Duration) {
+    let interval = Duration::from_secs_f64(clients as f64 / rate);
+    let offset = interval.mul_f64(id as f64 / clients as f64);
+    (start + offset, interval)
 }
 
 /// The request kinds the generator sends.
@@ -353,6 +457,7 @@ fn with_deadline<T>(message: T) -> tonic::Request<T> {
 
 async fn one_request(
     client: &mut HeightServiceClient<Channel>,
+    area: &mut tonic::client::Grpc<Channel>,
     kind: Kind,
     plan: &Plan,
     rng: &mut Rng,
@@ -362,21 +467,26 @@ async fn one_request(
     match kind {
         Kind::Area => {
             let req = area_request(plan, rng);
-            let mut stream = match client.query_area(with_deadline(req)).await {
-                Ok(r) => r.into_inner(),
+            let quantities = req.quantities.len();
+            let mut stream = match query_area_view(area, req).await {
+                Ok(s) => s,
                 Err(s) => return outcome_of(&s),
             };
-            let mut rows = 0usize;
+            let mut check = AreaCheck::default();
             while let Some(item) = stream.next().await {
                 match item {
                     Ok(chunk) if chunk.cycle_id != plan.cycle_id => {
                         return mismatch(&chunk.cycle_id)
                     }
-                    Ok(chunk) => rows += chunk.latitudes_deg.len(),
+                    Ok(chunk) => {
+                        if let Err(what) = check.take(&chunk, quantities) {
+                            return Outcome::Failed(what.into());
+                        }
+                    }
                     Err(s) => return outcome_of(&s),
                 }
             }
-            if rows == 0 {
+            if check.rows == 0 {
                 return Outcome::Failed("EmptyArea".into());
             }
             Outcome::Ok
@@ -405,6 +515,8 @@ async fn one_request(
 
 /// What one client measured.
 struct ClientResult {
+    /// Open loop: sends more than [`LATE_SEND`] behind the schedule.
+    late_sends: u64,
     latencies: BTreeMap<Kind, Histogram<u64>>,
     failures: BTreeMap<(Kind, String), u64>,
     evicted: u64,
@@ -421,7 +533,10 @@ async fn run_client(
     plan: Arc<RwLock<Plan>>,
     mix: Arc<Vec<(Kind, u32)>>,
     until: Instant,
+    open_loop: Option<(Instant, Duration)>,
 ) -> anyhow::Result<ClientResult> {
+    let mut area =
+        tonic::client::Grpc::new(channel.clone()).max_decoding_message_size(CLIENT_MAX_MESSAGE);
     let mut client =
         HeightServiceClient::new(channel).max_decoding_message_size(CLIENT_MAX_MESSAGE);
     let mut rng = Rng::new(id + 1);
@@ -432,7 +547,22 @@ async fn run_client(
     }
     let mut failures = BTreeMap::new();
     let mut evicted = 0;
+    let mut late_sends = 0;
+    let mut next_send = open_loop.map(|(first, _)| first);
     while Instant::now() < until {
+        if let (Some(due), Some((_, interval))) = (next_send.as_mut(), open_loop) {
+            if *due >= until {
+                break;
+            }
+            let now = Instant::now();
+            if *due > now {
+                tokio::time::sleep_until((*due).into()).await;
+            } else if now - *due > LATE_SEND {
+                // Behind schedule: the answers take longer than the interval allows.
+                late_sends += 1;
+            }
+            *due += interval;
+        }
         let mut pick = (rng.next() % u64::from(total)) as u32;
         let mut kind = mix[0].0;
         for (k, w) in mix.iter() {
@@ -444,7 +574,7 @@ async fn run_client(
         }
         let current = plan.read().await.clone();
         let started = Instant::now();
-        let outcome = one_request(&mut client, kind, &current, &mut rng).await;
+        let outcome = one_request(&mut client, &mut area, kind, &current, &mut rng).await;
         let micros = u64::try_from(started.elapsed().as_micros()).unwrap_or(u64::MAX);
         match outcome {
             Outcome::Ok => {
@@ -466,6 +596,7 @@ async fn run_client(
         }
     }
     Ok(ClientResult {
+        late_sends,
         latencies,
         failures,
         evicted,
@@ -585,6 +716,10 @@ struct Report {
     target: String,
     cycle_id: String,
     clients: usize,
+    /// `--rate`: the offered load of an open-loop run; `None` for a closed loop.
+    offered_per_s: Option<f64>,
+    /// Open loop: sends more than 1 ms behind their schedule (the offered load was not kept).
+    late_sends: u64,
     seconds: f64,
     requests: u64,
     requests_per_s: f64,
@@ -603,6 +738,12 @@ fn print_table(r: &Report) {
         "target {}  cycle '{}'  {} clients  {:.1} s  {} requests  {:.1} req/s",
         r.target, r.cycle_id, r.clients, r.seconds, r.requests, r.requests_per_s
     );
+    if let Some(rate) = r.offered_per_s {
+        println!(
+            "open loop: {rate:.1} req/s offered, {} sends more than 1 ms late",
+            r.late_sends
+        );
+    }
     println!(
         "{:<9} {:>9} {:>9} {:>9} {:>9} {:>9} {:>9}",
         "kind", "requests", "req/s", "p50 ms", "p90 ms", "p99 ms", "max ms"
@@ -635,6 +776,11 @@ async fn run(args: Args) -> anyhow::Result<bool> {
     }
     if args.seconds == 0 || args.seconds > MAX_SECONDS {
         bail!("--seconds: {} is outside 1..={MAX_SECONDS}", args.seconds);
+    }
+    if let Some(rate) = args.rate {
+        if !(rate > 0.0 && rate <= MAX_RATE) {
+            bail!("--rate: {rate} is outside (0, {MAX_RATE}] requests per second");
+        }
     }
     let mix = Arc::new(parse_mix(&args.mix)?);
     let demo = if args.serve_demo {
@@ -673,13 +819,16 @@ async fn run(args: Args) -> anyhow::Result<bool> {
             Arc::clone(&plan),
             Arc::clone(&mix),
             until,
+            args.rate.map(|r| schedule(r, args.clients, id, started)),
         )));
     }
     let mut latencies: BTreeMap<Kind, Histogram<u64>> = BTreeMap::new();
     let mut failures: BTreeMap<(Kind, String), u64> = BTreeMap::new();
     let mut evicted = 0;
+    let mut late_sends = 0;
     for t in tasks {
         let r = t.await.context("client task")??;
+        late_sends += r.late_sends;
         for (k, h) in r.latencies {
             match latencies.get_mut(&k) {
                 Some(total) => total.add(&h).map_err(|e| anyhow!("histogram: {e}"))?,
@@ -734,6 +883,8 @@ async fn run(args: Args) -> anyhow::Result<bool> {
         target: addr.to_string(),
         cycle_id,
         clients: args.clients,
+        offered_per_s: args.rate,
+        late_sends,
         seconds,
         requests,
         requests_per_s: requests as f64 / seconds,
@@ -788,6 +939,19 @@ mod tests {
         ] {
             assert!(parse_mix(bad).is_err(), "{bad}");
         }
+    }
+
+    #[test]
+    fn open_loop_clients_are_spread_over_one_interval() {
+        let start = Instant::now();
+        let (first0, interval) = schedule(1600.0, 16, 0, start);
+        assert_eq!(first0, start);
+        // 16 clients at 1600 req/s: each sends every 10 ms, the next client 0.625 ms later.
+        assert_eq!(interval, Duration::from_millis(10));
+        let (first1, _) = schedule(1600.0, 16, 1, start);
+        assert_eq!(first1 - start, Duration::from_micros(625));
+        let (last, _) = schedule(1600.0, 16, 15, start);
+        assert!(last - start < interval);
     }
 
     #[test]
