@@ -3,14 +3,15 @@
 # (benches/numpy_baseline.py) on the same synthetic 0.5° global cycle in one go, checks that
 # their heights agree, and prints the timings and the ratios (see benches/README.md).
 #
-#   benches/compare.sh            # the 0.5° file, 3 runs of each
-#   REPEAT=5 benches/compare.sh   # more runs
+#   benches/compare.sh            # the 0.5° file, 3 paired runs
+#   REPEAT=9 benches/compare.sh   # more pairs
 #   QUARTER=1 benches/compare.sh  # also an invented 0.25° grid (721 x 1440 x 37, ~300 MB file)
 #
 # The synthetic file is the one the compute bench writes (target/bench-data/global_0p5deg.nc);
 # when it is missing, the compute bench's smoke run writes it. The Rust batch runs twice per
 # repetition: with every core, and with one thread (RAYON_NUM_THREADS=1), since the NumPy
-# baseline runs on one core. Peak resident memory comes from /usr/bin/time.
+# baseline runs on one core; then the NumPy baseline once, and so on in turn. Peak resident
+# memory comes from /usr/bin/time, wall times from bash's $EPOCHREALTIME.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
@@ -32,34 +33,55 @@ fi
 WORK=$(mktemp -d)
 trap 'rm -rf "$WORK"' EXIT
 
-# One JSON line per Rust run: wall seconds, user and system CPU seconds, peak RSS.
-rust_runs() {
-    local label=$1 input=$2 threads=$3
-    for i in $(seq "$REPEAT"); do
-        if [ "$threads" = all ]; then
-            "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
-                target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
-        else
-            RAYON_NUM_THREADS=$threads "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
-                target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
-        fi
-        read -r wall user sys rss <"$WORK/time.txt"
-        printf '{"stage": "rust_whole_process", "grid": "%s", "threads": "%s", "repeat": %d, "seconds": %s, "user_s": %s, "sys_s": %s, "peak_rss_kb": %s}\n' \
-            "$label" "$threads" "$((i - 1))" "$wall" "$user" "$sys" "$rss"
-    done
+# Seconds between two $EPOCHREALTIME readings (GNU time's %e has only 10 ms steps, a tenth
+# of a Rust run).
+elapsed() {
+    awk -v a="$1" -v b="$2" 'BEGIN { printf "%.4f", b - a }'
 }
 
+# One JSON line for one Rust run: wall seconds, user and system CPU seconds, peak RSS.
+rust_run() {
+    local label=$1 input=$2 threads=$3 i=$4 t0 t1
+    t0=$EPOCHREALTIME
+    if [ "$threads" = all ]; then
+        "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
+            target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
+    else
+        RAYON_NUM_THREADS=$threads "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
+            target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
+    fi
+    t1=$EPOCHREALTIME
+    read -r _ user sys rss <"$WORK/time.txt"
+    wall=$(elapsed "$t0" "$t1")
+    printf '{"stage": "rust_whole_process", "grid": "%s", "threads": "%s", "repeat": %d, "seconds": %s, "user_s": %s, "sys_s": %s, "peak_rss_kb": %s}\n' \
+        "$label" "$threads" "$i" "$wall" "$user" "$sys" "$rss"
+}
+
+# The two sides take turns, one repetition each, so that both see the machine as it is in
+# those seconds (on a shared machine the speed of either drifts by tens of per cent within
+# a minute); the ratios are taken per repetition and their median reported. Each NumPy
+# repetition is a whole Python process: its own read/compute/write timings, and the
+# process's wall time from the interpreter's start.
 run_grid() {
     local label=$1 input=$2
-    rust_runs "$label" "$input" all | tee -a "$WORK/all.jsonl"
-    rust_runs "$label" "$input" 1 | tee -a "$WORK/all.jsonl"
-    "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
-        "$PY" benches/numpy_baseline.py --input "$input" --output "$WORK/numpy_$label.nc" \
-        --repeat "$REPEAT" --check "$WORK/rust_$label.nc" | sed "s/^{/{\"grid_label\": \"$label\", /" |
-        tee -a "$WORK/all.jsonl"
-    read -r wall user sys rss <"$WORK/time.txt"
-    printf '{"stage": "numpy_process", "grid_label": "%s", "seconds": %s, "peak_rss_kb": %s, "note": "whole Python process, all %s repetitions and the check"}\n' \
-        "$label" "$wall" "$rss" "$REPEAT" | tee -a "$WORK/all.jsonl"
+    for i in $(seq 0 $((REPEAT - 1))); do
+        rust_run "$label" "$input" all "$i" | tee -a "$WORK/all.jsonl"
+        rust_run "$label" "$input" 1 "$i" | tee -a "$WORK/all.jsonl"
+        local t0=$EPOCHREALTIME t1
+        "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
+            "$PY" benches/numpy_baseline.py --input "$input" --output "$WORK/numpy_$label.nc" \
+            --repeat 1 | sed "s/^{/{\"grid_label\": \"$label\", \"pair\": $i, /" |
+            tee -a "$WORK/all.jsonl"
+        t1=$EPOCHREALTIME
+        read -r _ user sys rss <"$WORK/time.txt"
+        wall=$(elapsed "$t0" "$t1")
+        printf '{"stage": "numpy_process", "grid_label": "%s", "pair": %d, "seconds": %s, "peak_rss_kb": %s, "note": "whole Python process: start, imports, one repetition"}\n' \
+            "$label" "$i" "$wall" "$rss" | tee -a "$WORK/all.jsonl"
+    done
+    # The heights of the two, compared once.
+    "$PY" benches/numpy_baseline.py --input "$input" --output "$WORK/numpy_$label.nc" \
+        --repeat 1 --check "$WORK/rust_$label.nc" | grep '"check"' |
+        sed "s/^{/{\"grid_label\": \"$label\", /" | tee -a "$WORK/all.jsonl"
 }
 
 echo "# $(date -u +%Y-%m-%dT%H:%M:%SZ), load average: $(cut -d' ' -f1-3 /proc/loadavg), $(nproc) cores" >&2
@@ -79,16 +101,25 @@ def median(values):
     return statistics.median(values) if values else float("nan")
 
 for label in sorted({r.get("grid") or r.get("grid_label") for r in records if r.get("stage") == "rust_whole_process"}):
-    rust_all = median([r["seconds"] for r in records if r.get("stage") == "rust_whole_process" and r["grid"] == label and r["threads"] == "all"])
-    rust_one = median([r["seconds"] for r in records if r.get("stage") == "rust_whole_process" and r["grid"] == label and r["threads"] == "1"])
-    rss = max([r["peak_rss_kb"] for r in records if r.get("stage") == "rust_whole_process" and r["grid"] == label] or [0])
-    np_stage = {s: median([r["seconds"] for r in records if r.get("grid_label") == label and r.get("stage") == s])
-                for s in ("read", "compute", "write", "whole")}
+    def rust(threads):
+        return {r["repeat"]: r for r in records if r.get("stage") == "rust_whole_process" and r["grid"] == label and r["threads"] == threads}
+    def numpy(stage):
+        return {r["pair"]: r["seconds"] for r in records if r.get("grid_label") == label and r.get("stage") == stage and "pair" in r}
+    rust_all, rust_one = rust("all"), rust("1")
+    np_stage = {s: numpy(s) for s in ("read", "compute", "write", "whole", "numpy_process")}
+    pairs = sorted(set(rust_all) & set(rust_one) & set(np_stage["whole"]) & set(np_stage["numpy_process"]))
+    rss = max([r["peak_rss_kb"] for r in list(rust_all.values()) + list(rust_one.values())] or [0])
     check = next((r for r in records if r.get("grid_label") == label and r.get("stage") == "check"), {})
     diff = check.get("geopotential_height", {})
-    print(f"grid {label}: medians of the repetitions, seconds")
-    print(f"  NumPy  read {np_stage['read']:.3f}  compute {np_stage['compute']:.3f}  write {np_stage['write']:.3f}  whole {np_stage['whole']:.3f}")
-    print(f"  Rust   whole process {rust_all:.3f} (all cores), {rust_one:.3f} (one thread); peak RSS {rss / 1024:.0f} MiB")
-    print(f"  ratio NumPy whole / Rust whole process: {np_stage['whole'] / rust_all:.1f} (all cores), {np_stage['whole'] / rust_one:.1f} (one thread)")
+    ratio = lambda num, den: median([num[i] / den[i]["seconds"] for i in pairs])
+    print(f"grid {label}: {len(pairs)} paired repetitions, medians, seconds")
+    print("  NumPy  read {:.3f}  compute {:.3f}  write {:.3f}  whole {:.3f}  whole Python process {:.3f}".format(
+        *(median(list(np_stage[s].values())) for s in ("read", "compute", "write", "whole", "numpy_process"))))
+    print(f"  Rust   whole process {median([r['seconds'] for r in rust_all.values()]):.3f} (all cores), "
+          f"{median([r['seconds'] for r in rust_one.values()]):.3f} (one thread); peak RSS {rss / 1024:.0f} MiB")
+    print(f"  ratio NumPy read+compute+write / Rust whole process, median of pairs: "
+          f"{ratio(np_stage['whole'], rust_all):.1f} (all cores), {ratio(np_stage['whole'], rust_one):.1f} (one thread)")
+    print(f"  ratio NumPy whole Python process / Rust whole process, median of pairs: "
+          f"{ratio(np_stage['numpy_process'], rust_all):.1f} (all cores), {ratio(np_stage['numpy_process'], rust_one):.1f} (one thread)")
     print(f"  heights NumPy - Rust: max |d| {diff.get('max_abs_m')} m, rms {diff.get('rms_m')} m over {diff.get('compared')} values")
 EOF
