@@ -952,7 +952,7 @@ fn prepare_float_variable(
     options: &OutputOptions,
     ndims: usize,
 ) -> Result<(), OutputError> {
-    set_compression(var, plan, name, options, ndims)?;
+    set_storage(var, plan, name, options, ndims)?;
     // After `set_nofill`, which drops the attribute: the value still marks missing data.
     put_attr(var, plan, name, "_FillValue", FLOAT_FILL_VALUE)
 }
@@ -968,7 +968,7 @@ fn prepare_flag_variable(
     put_attr(var, plan, name, "flag_values", vec![0_i8, 1_i8])?;
     put_text(var, plan, name, "flag_meanings", BELOW_GROUND_FLAG_MEANINGS)?;
     put_attr(var, plan, name, "valid_range", vec![0_i8, 1_i8])?;
-    set_compression(var, plan, name, options, ndims)
+    set_storage(var, plan, name, options, ndims)
 }
 
 /// Storage of a data variable: no fill pass, then deflate and chunking when asked for.
@@ -979,7 +979,7 @@ fn prepare_flag_variable(
 /// `_FillValue` attribute put before it, so float variables put theirs afterwards: CF
 /// readers find missing values by that attribute. A file that fails half-way is never seen
 /// unwritten: it is the `.partial` file, removed on error.
-fn set_compression(
+fn set_storage(
     var: &mut netcdf::VariableMut<'_>,
     plan: &Plan,
     name: &str,
