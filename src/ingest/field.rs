@@ -3,9 +3,10 @@
 //! unit conversion, a plausibility scan, then the canonical axis order.
 //!
 //! # Memory
-//! A float variable (or an integer one of 16 bits or fewer) is read in one call straight into
-//! the buffer that becomes the final array; masking, unpacking and conversion happen in place,
-//! and so does the reversal of a top-down level axis. Wider types (double, 32- and 64-bit
+//! A float variable (or an integer one of 16 bits or fewer) is read straight into the buffer
+//! that becomes the final array, a megabyte at a time when it is stored contiguously (so that
+//! masking, unpacking and conversion run in place on values still in the cache) and in one
+//! call when it is chunked; the reversal of a top-down level axis also happens in place. Wider types (double, 32- and 64-bit
 //! integers) are read as `f64` a slab at a time, so the transient copy is one slab. Only a file
 //! whose dimensions are not in member, time, level, latitude, longitude order costs one
 //! transient copy of the field (the permutation).
@@ -343,8 +344,8 @@ impl Decoder {
         let pass = DecodePass {
             fill0,
             fill1,
-            min: self.raw_min.unwrap_or(f64::NEG_INFINITY),
-            max: self.raw_max.unwrap_or(f64::INFINITY),
+            min: f32_at_least(self.raw_min.unwrap_or(f64::NEG_INFINITY)),
+            max: f32_at_most(self.raw_max.unwrap_or(f64::INFINITY)),
             scale: self.linear.scale,
             offset: self.linear.offset,
             limits: limits.unwrap_or(Limits::NONE),
@@ -387,14 +388,38 @@ struct DecodePass {
     /// Fill values (`NaN` when absent: nothing equals it).
     fill0: f32,
     fill1: f32,
-    /// Valid range of the raw values (infinite when absent).
-    min: f64,
-    max: f64,
+    /// Valid range of the raw values (infinite when absent), as the nearest `f32` inside
+    /// it ([`f32_at_least`], [`f32_at_most`]): for `f32` raw values the same test as with
+    /// the `f64` bounds, without widening every value.
+    min: f32,
+    max: f32,
     /// Unpacking and conversion to SI: `raw * scale + offset`.
     scale: f64,
     offset: f64,
     /// Plausibility limits ([`Limits::NONE`] when none).
     limits: Limits,
+}
+
+/// The smallest `f32` at least `x`: for any `f32` value `r`, `r < x` exactly when
+/// `r < f32_at_least(x)` (`NaN` stays `NaN`, so that nothing compares below it).
+fn f32_at_least(x: f64) -> f32 {
+    let r = x as f32;
+    if f64::from(r) >= x || r.is_nan() {
+        return r;
+    }
+    // `r < x`, so `r` is finite or −∞: the next `f32` up.
+    if r == 0.0 {
+        f32::from_bits(1)
+    } else if r > 0.0 {
+        f32::from_bits(r.to_bits() + 1)
+    } else {
+        f32::from_bits(r.to_bits() - 1)
+    }
+}
+
+/// The largest `f32` at most `x`: `r > x` exactly when `r > f32_at_most(x)`.
+fn f32_at_most(x: f64) -> f32 {
+    -f32_at_least(-x)
 }
 
 /// One decoding pass without a branch on the data (selects only), so that it compiles to
@@ -407,8 +432,7 @@ fn decode_lanes<const IDENTITY: bool>(p: &DecodePass, data: &mut [f32]) -> bool 
     for v in data.iter_mut() {
         let r = *v;
         let rd = f64::from(r);
-        let missing =
-            !r.is_finite() | (r == p.fill0) | (r == p.fill1) | (rd < p.min) | (rd > p.max);
+        let missing = !r.is_finite() | (r == p.fill0) | (r == p.fill1) | (r < p.min) | (r > p.max);
         let x = if IDENTITY {
             r
         } else {
@@ -452,7 +476,6 @@ fn read_error(file: &str, var: &Variable<'_>, e: netcdf::Error) -> IngestError {
     }
 }
 
-/// Read and decode a whole variable in file order.
 /// A variable read and decoded in file order.
 struct Decoded {
     /// The variable's shape in the file.
@@ -475,9 +498,13 @@ fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
     let mut bad: Option<usize> = None;
     match storage {
         Storage::Narrow { .. } => {
-            var.get_values_into::<f32, _>(&mut data, ..)
-                .map_err(|e| read_error(req.file, var, e))?;
-            bad = decoder.decode_narrow_in_place(&mut data, limits);
+            bad = read_narrow_in_bands(
+                (req.file, var, &shape),
+                &[],
+                (&decoder, limits),
+                BAND_VALUES,
+                &mut data,
+            )?;
         }
         Storage::Wide { .. } => {
             // Leading dimensions are iterated one index at a time until the slab is at most
@@ -521,6 +548,85 @@ fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
         }
     }
     Ok(Decoded { shape, data, bad })
+}
+
+/// Values per read of [`read_narrow_in_bands`]: a megabyte of `f32`, so that the decoding
+/// pass finds each band still in the core's cache (a level of a 0.5° grid; a quarter of a
+/// level at 0.25°).
+const BAND_VALUES: usize = 1 << 18;
+
+/// Reads the hyperslab of `var` (of file `shape`) that fixes its leading indices to `fixed`
+/// and spans the other dimensions whole, into `out` (file order, one value per element),
+/// and decodes it; returns the first implausible index in `out`, if any (reading stops at
+/// the band that holds it, so later values of `out` are left unread).
+///
+/// Contiguous variables are read and decoded about `band` values ([`BAND_VALUES`]) at a
+/// time: the decoding pass then runs on values the read has just brought into the cache,
+/// instead of a second trip through memory over the whole field. Chunked variables are read
+/// in one call (a band narrower than a chunk would make the library decompress the chunk
+/// again per band).
+fn read_narrow_in_bands(
+    (file, var, shape): (&str, &Variable<'_>, &[usize]),
+    fixed: &[usize],
+    (decoder, limits): (&Decoder, Option<Limits>),
+    band: usize,
+    out: &mut [f32],
+) -> Result<Option<usize>, IngestError> {
+    let one = |i: usize| Extent::from(i..i + 1);
+    let rest = shape.get(fixed.len()..).unwrap_or(&[]);
+    let contiguous = var
+        .chunking()
+        .map_err(|e| read_error(file, var, e))?
+        .is_none();
+    // The split dimension `d` (of `rest`): the first whose trailing dimensions fit a band.
+    let split = (0..rest.len()).find(|&d| rest[d + 1..].iter().product::<usize>() <= band);
+    let (Some(d), true) = (split, contiguous) else {
+        let read = if fixed.is_empty() {
+            var.get_values_into::<f32, _>(out, ..)
+        } else {
+            let mut extents: Vec<Extent> = fixed.iter().map(|&i| one(i)).collect();
+            extents.extend(rest.iter().map(|&n| Extent::from(0..n)));
+            var.get_values_into::<f32, _>(out, extents)
+        };
+        read.map_err(|e| read_error(file, var, e))?;
+        return Ok(decoder.decode_narrow_in_place(out, limits));
+    };
+    let inner: usize = rest[d + 1..].iter().product();
+    let per = (band / inner.max(1)).clamp(1, rest[d].max(1));
+    let outer: usize = rest[..d].iter().product();
+    let mut idx = vec![0usize; d];
+    let mut at = 0usize;
+    for o in 0..outer {
+        // The indices of the dimensions before the split, for outer block `o`.
+        let mut rem = o;
+        for k in (0..d).rev() {
+            idx[k] = rem % rest[k];
+            rem /= rest[k];
+        }
+        let mut start = 0usize;
+        while start < rest[d] {
+            let end = (start + per).min(rest[d]);
+            let len = (end - start) * inner;
+            let Some(part) = out.get_mut(at..at + len) else {
+                return Err(IngestError::Read {
+                    file: file.to_string(),
+                    variable: var.name(),
+                    detail: "the buffer is shorter than the variable".to_string(),
+                });
+            };
+            let mut extents: Vec<Extent> = fixed.iter().chain(&idx).map(|&i| one(i)).collect();
+            extents.push(Extent::from(start..end));
+            extents.extend(rest[d + 1..].iter().map(|&n| Extent::from(0..n)));
+            var.get_values_into::<f32, _>(part, extents)
+                .map_err(|e| read_error(file, var, e))?;
+            if let Some(i) = decoder.decode_narrow_in_place(part, limits) {
+                return Ok(Some(at + i));
+            }
+            at += len;
+            start = end;
+        }
+    }
+    Ok(None)
 }
 
 /// The error for the implausible `value` at flat index `i` (file order).
@@ -699,22 +805,21 @@ impl<'f> StepwiseField<'f> {
         time: usize,
         out: &mut [f32],
     ) -> Result<(), IngestError> {
-        let extents: Vec<Extent> = (0..self.file_shape.len())
-            .map(|d| {
-                if self.axes[0] == Some(d) {
-                    Extent::from(member..member + 1)
-                } else if self.axes[1] == Some(d) {
-                    Extent::from(time..time + 1)
-                } else {
-                    Extent::from(..)
-                }
-            })
+        // Dimensions are in canonical order: the member and time dimensions, where the file
+        // has them, lead.
+        let fixed: Vec<usize> = [(self.axes[0], member), (self.axes[1], time)]
+            .iter()
+            .filter_map(|&(axis, i)| axis.map(|_| i))
             .collect();
-        self.var
-            .get_values_into::<f32, _>(out, extents)
-            .map_err(|e| read_error(file, &self.var, e))?;
         let limits = self.check.as_ref().map(Limits::of);
-        if let Some(i) = self.decoder.decode_narrow_in_place(out, limits) {
+        let bad = read_narrow_in_bands(
+            (file, &self.var, &self.file_shape),
+            &fixed,
+            (&self.decoder, limits),
+            BAND_VALUES,
+            out,
+        )?;
+        if let Some(i) = bad {
             let req = FieldRequest {
                 file,
                 var: &self.var,
@@ -838,6 +943,150 @@ mod tests {
                 }
             }
             prop_assert_eq!(first_bad, want_bad);
+        }
+    }
+
+    /// Bounds that sit on, just beside and far from `f32` values, and the special ones.
+    fn bound() -> impl Strategy<Value = f64> {
+        prop_oneof![
+            -1e3_f64..1e3,
+            any::<f32>().prop_map(f64::from),
+            (any::<f32>(), -1.0_f64..1.0).prop_map(|(r, t)| f64::from(r) * (1.0 + t * 1e-8)),
+            Just(0.0),
+            Just(-0.0),
+            Just(1e-46),
+            Just(-1e-46),
+            Just(f64::from(f32::MAX) * 1.000_001),
+            Just(f64::INFINITY),
+            Just(f64::NEG_INFINITY),
+            Just(f64::NAN),
+        ]
+    }
+
+    proptest! {
+        // The `f32` bounds of the valid range test exactly as the `f64` ones do, for every
+        // `f32` raw value (NaN included: it is below and above nothing).
+        #[test]
+        fn f32_bounds_test_as_the_f64_bounds(x in bound(), r in any::<f32>()) {
+            let wide = f64::from(r);
+            prop_assert_eq!(wide < x, r < f32_at_least(x), "{} < {}", r, x);
+            prop_assert_eq!(wide > x, r > f32_at_most(x), "{} > {}", r, x);
+        }
+    }
+
+    /// A `[time 3, level 5, lat 4, lon 6]` variable of raw values `i` (flat index) with
+    /// value `bad` at the flat indices `bad_at`, contiguous (classic format) or in chunks.
+    fn banded_fixture(
+        dir: &std::path::Path,
+        chunked: bool,
+        bad_at: &[usize],
+    ) -> std::path::PathBuf {
+        let path = dir.join(format!("bands-{chunked}-{}.nc", bad_at.len()));
+        let options = if chunked {
+            netcdf::Options::NETCDF4
+        } else {
+            netcdf::Options::empty()
+        };
+        let mut file = netcdf::create_with(&path, options).expect("create");
+        for (name, n) in [("time", 3), ("plev", 5), ("lat", 4), ("lon", 6)] {
+            file.add_dimension(name, n).expect("dimension");
+        }
+        let mut var = file
+            .add_variable::<f32>("t", &["time", "plev", "lat", "lon"])
+            .expect("variable");
+        if chunked {
+            var.set_chunking(&[1, 2, 3, 4]).expect("chunking");
+        } else {
+            // Classic files take data only outside define mode.
+            file.enddef().expect("enddef");
+        }
+        let mut raw: Vec<f32> = (0..360).map(|i| i as f32).collect();
+        for &i in bad_at {
+            raw[i] = 5000.0;
+        }
+        let mut var = file.variable_mut("t").expect("t");
+        var.put_values(&raw, ..).expect("values");
+        path
+    }
+
+    #[test]
+    fn reads_in_bands_equal_one_read_of_the_same_values() {
+        // The NetCDF library is not thread-safe: hold the session lock, as its readers do.
+        let _session = crate::netcdf_session::lock();
+        let dir = tempfile::tempdir().expect("tempdir");
+        // Unpacking and conversion (raw × 0.5 + 100), a fill value and plausibility limits
+        // of 100..=2000 after decoding: raw 5000 is implausible, raw 7 is missing.
+        let decoder = Decoder {
+            fills: vec![7.0],
+            raw_min: None,
+            raw_max: None,
+            compare_as_f32: true,
+            linear: Linear {
+                scale: 0.5,
+                offset: 100.0,
+            },
+        };
+        let limits = Some(Limits {
+            lo: 100.0,
+            hi: 2000.0,
+            floor: 100.0,
+        });
+        // Values compared bit for bit (the missing ones are NaN).
+        let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        let bands = [0, 1, 5, 6, 23, 24, 25, 119, 120, 121, 360, 1 << 20];
+        for chunked in [false, true] {
+            for bad_at in [vec![], vec![0], vec![200, 100], vec![359], vec![143, 144]] {
+                let path = banded_fixture(dir.path(), chunked, &bad_at);
+                let file = netcdf::open(&path).expect("open");
+                let var = file.variable("t").expect("t");
+                let shape = [3, 5, 4, 6];
+                // The reference: every value in memory, decoded in one pass.
+                let mut want: Vec<f32> = (0..360).map(|i| i as f32).collect();
+                for &i in &bad_at {
+                    want[i] = 5000.0;
+                }
+                let want_bad = decoder.decode_narrow_in_place(&mut want, limits);
+                for band in bands {
+                    let label = format!("chunked {chunked}, bad at {bad_at:?}, band {band}");
+                    // The whole variable, then each time step on its own.
+                    let mut got = vec![0f32; 360];
+                    let bad = read_narrow_in_bands(
+                        ("f.nc", &var, &shape),
+                        &[],
+                        (&decoder, limits),
+                        band,
+                        &mut got,
+                    )
+                    .expect(&label);
+                    assert_eq!(bad, want_bad, "{label}");
+                    let upto = bad.unwrap_or(360);
+                    assert_eq!(bits(&got[..upto]), bits(&want[..upto]), "{label}");
+                    for step in 0..3 {
+                        let mut got = vec![0f32; 120];
+                        let bad = read_narrow_in_bands(
+                            ("f.nc", &var, &shape),
+                            &[step],
+                            (&decoder, limits),
+                            band,
+                            &mut got,
+                        )
+                        .expect(&label);
+                        let range = step * 120..(step + 1) * 120;
+                        let want_step = bad_at.iter().filter(|i| range.contains(i)).min();
+                        assert_eq!(
+                            bad,
+                            want_step.map(|i| i - step * 120),
+                            "{label}, step {step}"
+                        );
+                        let upto = bad.unwrap_or(120);
+                        assert_eq!(
+                            bits(&got[..upto]),
+                            bits(&want[range][..upto]),
+                            "{label}, step {step}"
+                        );
+                    }
+                }
+            }
         }
     }
 
