@@ -13,7 +13,9 @@
 //!   thickness whose top lies between levels (1000 hPa to between 550 and 500 hPa: rebuilt);
 //! - `position` of 1 and of 1000 points, bilinear, one time: the on-level 1000–500 hPa
 //!   thickness, and for 1000 points also the height between levels;
-//! - one bilinear `profile`.
+//! - one bilinear `profile`;
+//! - precipitation-type guidance on a 50 x 50 area (`guidance_on`, what `GetGuidanceArea`
+//!   computes).
 //!
 //! Throughput is reported in points per second (criterion's "elem/s").
 //!
@@ -31,6 +33,7 @@ use hypsogrid::compute::ComputeConfig;
 use hypsogrid::demo::{write_synthetic_global, SyntheticGlobal};
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::{Layer, Vertical};
+use hypsogrid::products::guidance::{guidance_on, GuidanceSettings};
 use hypsogrid::query::{
     area, area_shape, position, profile, AreaQuery, BoundingBox, Interpolation, Limits,
     LoadedCycle, PositionQuery, ProfileQuery, Quantity, TimeSelector,
@@ -332,6 +335,45 @@ fn profile_benches(c: &mut Criterion) {
 
 /// Removes the temporary folder (statics are never dropped, so `TempDir` alone would leave
 /// the 80 MB file behind).
+/// Side of the guidance area, grid points.
+const GUIDANCE_SIDE: usize = 50;
+
+/// Precipitation-type guidance on a 50 × 50 area (what `GetGuidanceArea` computes: the
+/// area's own columns), as columns per second.
+fn guidance_benches(c: &mut Criterion) {
+    with_fixture(|fx| {
+        let lc = &fx.cycle;
+        let settings = GuidanceSettings::default();
+        // 45° N to 20.5° N, 167.5° E to 168° W: subtropical and mid-latitude columns.
+        let rows: Vec<usize> = (ROWS / 4..ROWS / 4 + GUIDANCE_SIDE).collect();
+        let cols: Vec<usize> =
+            (COLS / 2 - GUIDANCE_SIDE / 2..COLS / 2 + GUIDANCE_SIDE / 2).collect();
+        // One answer checked outside the timing: every point has a thickness and a category.
+        let g = guidance_on(lc, (0, 0), &settings, &rows, &cols).expect("guidance on the area");
+        let finite = g
+            .thickness_1000_500
+            .iter()
+            .filter(|v| v.is_finite())
+            .count();
+        assert_eq!(
+            finite,
+            GUIDANCE_SIDE * GUIDANCE_SIDE,
+            "guidance: missing thickness"
+        );
+        eprintln!("guidance area: {:?}", g.summary().categories);
+        let mut group = c.benchmark_group("guidance_area");
+        group
+            .sample_size(10)
+            .warm_up_time(Duration::from_millis(500))
+            .measurement_time(Duration::from_secs(3));
+        group.throughput(Throughput::Elements((GUIDANCE_SIDE * GUIDANCE_SIDE) as u64));
+        group.bench_function(format!("{GUIDANCE_SIDE}x{GUIDANCE_SIDE}"), |b| {
+            b.iter(|| guidance_on(lc, (0, 0), &settings, &rows, &cols).expect("guidance"))
+        });
+        group.finish();
+    });
+}
+
 fn cleanup(_c: &mut Criterion) {
     if let Some(cell) = FIXTURE.get() {
         if let Ok(mut guard) = cell.lock() {
@@ -352,6 +394,7 @@ criterion_group!(
     area_benches,
     position_benches,
     profile_benches,
+    guidance_benches,
     cleanup
 );
 criterion_main!(benches);

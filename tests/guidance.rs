@@ -21,9 +21,9 @@ use hypsogrid::physics::standard_atmosphere::{
 };
 use hypsogrid::physics::Constants;
 use hypsogrid::products::guidance::{
-    classify, column_guidance, guidance_at_point, guidance_grid, ColumnInput, GuidanceError,
-    GuidanceInputs, GuidanceSettings, LayerValue, PrecipitationType, Rule, ZeroLevel,
-    ZeroLevelKind, CAUTION, LEVEL_AT_SURFACE, LEVEL_MULTIPLE, LEVEL_NO_HUMIDITY,
+    classify, column_guidance, guidance_at_point, guidance_grid, guidance_on, ColumnInput,
+    GuidanceError, GuidanceInputs, GuidanceSettings, LayerValue, PrecipitationType, Rule,
+    ZeroLevel, ZeroLevelKind, CAUTION, LEVEL_AT_SURFACE, LEVEL_MULTIPLE, LEVEL_NO_HUMIDITY,
 };
 use hypsogrid::query::{grid_field, LoadedCycle, Quantity, FLAG_BELOW_GROUND, FLAG_MISSING};
 
@@ -750,6 +750,72 @@ fn a_cycle_without_humidity_has_no_wet_bulb_level_and_says_so() {
     assert!(summary.rule_count(Rule::NoWetBulbZero) > 0);
     assert!(
         summary.count(PrecipitationType::Indeterminate) == summary.rule_count(Rule::NoWetBulbZero)
+    );
+}
+
+/// Guidance on chosen rows and columns (an area, in any order) is the whole grid's at those
+/// points, bit for bit, for every field: it is computed there alone, by the same columns.
+#[test]
+fn guidance_on_chosen_points_equals_the_whole_grid_there() {
+    let (_dir, lc) = demo_cycle();
+    let s = GuidanceSettings::default();
+    let whole = guidance_grid(&lc, 4, 0, &s).expect("whole grid");
+    let (rows, cols) = (lc.cycle.grid.rows(), lc.cycle.grid.cols());
+    // Rows south to north and back, columns out of order and repeated: the answer follows.
+    let pick_rows = vec![rows - 1, 0, rows / 2, rows / 3, rows / 2];
+    let pick_cols = vec![cols / 4, cols - 1, 0, 3 * cols / 5];
+    let part = guidance_on(&lc, (4, 0), &s, &pick_rows, &pick_cols).expect("chosen points");
+    assert_eq!(part.category.dim(), (pick_rows.len(), pick_cols.len()));
+    for (i, &r) in pick_rows.iter().enumerate() {
+        assert_eq!(part.latitudes[i], lc.cycle.grid.latitudes[r]);
+        for (j, &c) in pick_cols.iter().enumerate() {
+            assert_eq!(part.longitudes[j], lc.cycle.grid.longitudes[c]);
+            let (a, b) = ([i, j], [r, c]);
+            let floats = [
+                (&part.thickness_1000_500, &whole.thickness_1000_500),
+                (&part.thickness_1000_850, &whole.thickness_1000_850),
+                (&part.thickness_850_700, &whole.thickness_850_700),
+                (&part.freezing_level_m, &whole.freezing_level_m),
+                (&part.freezing_level_agl_m, &whole.freezing_level_agl_m),
+                (&part.wet_bulb_zero_m, &whole.wet_bulb_zero_m),
+                (&part.wet_bulb_zero_agl_m, &whole.wet_bulb_zero_agl_m),
+            ];
+            for (n, (p, w)) in floats.iter().enumerate() {
+                assert_eq!(p[a].to_bits(), w[b].to_bits(), "field {n} at {b:?}");
+            }
+            let codes = [
+                (
+                    &part.thickness_1000_500_flags,
+                    &whole.thickness_1000_500_flags,
+                ),
+                (
+                    &part.thickness_1000_850_flags,
+                    &whole.thickness_1000_850_flags,
+                ),
+                (
+                    &part.thickness_850_700_flags,
+                    &whole.thickness_850_700_flags,
+                ),
+                (&part.freezing_level_flags, &whole.freezing_level_flags),
+                (&part.wet_bulb_zero_flags, &whole.wet_bulb_zero_flags),
+                (&part.category, &whole.category),
+                (&part.rule, &whole.rule),
+            ];
+            for (n, (p, w)) in codes.iter().enumerate() {
+                assert_eq!(p[a], w[b], "code {n} at {b:?}");
+            }
+        }
+    }
+    // An index beyond the grid is refused by axis, before any column is computed.
+    let e = guidance_on(&lc, (4, 0), &s, &[0, rows], &[0]).expect_err("row beyond the grid");
+    assert!(
+        matches!(e, GuidanceError::GridIndex { axis: "row", .. }),
+        "{e}"
+    );
+    let e = guidance_on(&lc, (4, 0), &s, &[0], &[cols + 5]).expect_err("column beyond");
+    assert!(
+        e.to_string().contains(&format!("column {}", cols + 5)),
+        "{e}"
     );
 }
 

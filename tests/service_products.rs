@@ -263,6 +263,55 @@ async fn guidance_over_grpc_carries_the_caution_and_the_thresholds_asked_for() {
     let cols = area.longitudes_deg.len();
     assert_eq!(area.category.len(), rows * cols);
     assert_eq!(area.thickness_1000_500_m.len(), rows * cols);
+    // A box inside the region, every second point: each value is the whole grid's at the
+    // point of that latitude and longitude (the server computes the box's columns alone).
+    let grid_lats = &f.demo.cycle.grid.latitudes;
+    let grid_lons = &f.demo.cycle.grid.longitudes;
+    let (south, north) = (
+        grid_lats[3].min(grid_lats[14]),
+        grid_lats[3].max(grid_lats[14]),
+    );
+    let (west, east) = (grid_lons[5], grid_lons[20]);
+    let part = c
+        .get_guidance_area(pb::GuidanceAreaRequest {
+            field: Some(selection(DEMO_FILE_NAME, 24)),
+            bbox: Some(pb::BoundingBox {
+                south_deg: south,
+                north_deg: north,
+                west_deg: west,
+                east_deg: east,
+            }),
+            stride: Some(2),
+            thresholds: None,
+        })
+        .await
+        .expect("guidance on a box")
+        .into_inner();
+    let (prows, pcols) = (part.latitudes_deg.len(), part.longitudes_deg.len());
+    assert!(prows >= 5 && pcols >= 7, "{prows} x {pcols}");
+    assert_eq!(part.category.len(), prows * pcols);
+    let index = |axis: &[f64], v: f64| {
+        axis.iter()
+            .position(|&a| (a - v).abs() < 1e-9 || ((a - v).abs() - 360.0).abs() < 1e-9)
+            .unwrap_or_else(|| panic!("{v} is not on the grid"))
+    };
+    for (i, &lat) in part.latitudes_deg.iter().enumerate() {
+        let r = index(grid_lats, lat);
+        for (j, &lon) in part.longitudes_deg.iter().enumerate() {
+            let (k, at) = (i * pcols + j, [r, index(grid_lons, lon)]);
+            assert_eq!(part.category[k], grid.category[at], "{at:?}");
+            let pairs = [
+                (part.thickness_1000_500_m[k], grid.thickness_1000_500[at]),
+                (part.thickness_1000_850_m[k], grid.thickness_1000_850[at]),
+                (part.thickness_850_700_m[k], grid.thickness_850_700[at]),
+                (part.freezing_level_m[k], grid.freezing_level_m[at]),
+                (part.wet_bulb_zero_m[k], grid.wet_bulb_zero_m[at]),
+            ];
+            for (n, (got, want)) in pairs.into_iter().enumerate() {
+                assert_eq!(got.to_bits(), want.to_bits(), "value {n} at {at:?}");
+            }
+        }
+    }
     let defaults = area.thresholds.expect("thresholds used");
     // GUIDE §3 common practice: 5400 m, 1300 m, 1540 m.
     assert_eq!(defaults.thickness_1000_500_m, Some(5400.0));

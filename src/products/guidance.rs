@@ -492,6 +492,16 @@ pub enum GuidanceError {
     /// The position is not on the grid.
     #[error("position: {0}")]
     Position(#[from] SampleError),
+    /// A grid row or column index beyond the grid.
+    #[error("{axis} {index} is outside the grid, which has {len}")]
+    GridIndex {
+        /// `row` or `column`.
+        axis: &'static str,
+        /// The index asked for.
+        index: usize,
+        /// How many rows or columns the grid has.
+        len: usize,
+    },
 }
 
 /// A thickness with its flags.
@@ -965,7 +975,9 @@ pub fn classify(inputs: &GuidanceInputs, s: &GuidanceSettings) -> (Precipitation
 // Whole grids and points of a loaded cycle.
 // ---------------------------------------------------------------------------------------------
 
-/// Guidance on the whole grid of one (member, time) step, in the file's row and column order.
+/// Guidance on the whole grid of one (member, time) step ([`guidance_grid`]), in the file's
+/// row and column order, or on chosen rows and columns of it ([`guidance_on`]), in the order
+/// chosen.
 #[derive(Clone, Debug)]
 pub struct GuidanceGrid {
     /// Index of the time step.
@@ -976,9 +988,9 @@ pub struct GuidanceGrid {
     pub lead_time_s: i64,
     /// Valid time, seconds since the Unix epoch, when the cycle has a reference time.
     pub valid_time_unix_s: Option<i64>,
-    /// Latitudes of the rows, degrees north (the file's order).
+    /// Latitudes of the rows, degrees north.
     pub latitudes: Vec<f64>,
-    /// Longitudes of the columns, degrees east (the file's order).
+    /// Longitudes of the columns, degrees east.
     pub longitudes: Vec<f64>,
     /// 1000–500 hPa thickness, m, `[row, col]`; `NaN` where masked.
     pub thickness_1000_500: Array2<f32>,
@@ -1274,24 +1286,50 @@ pub fn guidance_grid(
     member: usize,
     settings: &GuidanceSettings,
 ) -> Result<GuidanceGrid, GuidanceError> {
+    let all_rows: Vec<usize> = (0..lc.cycle.grid.rows()).collect();
+    let all_cols: Vec<usize> = (0..lc.cycle.grid.cols()).collect();
+    guidance_on(lc, (time_index, member), settings, &all_rows, &all_cols)
+}
+
+/// Guidance at the grid points of the chosen `rows` and `cols` (indices into the cycle's
+/// grid, in any order; each answer row and column in the order given) of step
+/// (`time_index`, `member`): what [`guidance_grid`] gives at those points, computed only
+/// there, so that an area costs its own columns rather than the whole grid's.
+///
+/// # Errors
+/// As [`guidance_grid`]; also [`GuidanceError::GridIndex`] for a row or column outside the
+/// grid.
+pub fn guidance_on(
+    lc: &LoadedCycle,
+    (time_index, member): (usize, usize),
+    settings: &GuidanceSettings,
+    rows: &[usize],
+    cols: &[usize],
+) -> Result<GuidanceGrid, GuidanceError> {
     let sg = StepGuidance::new(lc, time_index, member, settings)?;
-    let (rows, cols) = (lc.cycle.grid.rows(), lc.cycle.grid.cols());
-    let per_row: Vec<Vec<ColumnGuidance>> = (0..rows)
-        .into_par_iter()
+    let grid = &lc.cycle.grid;
+    for (axis, indices, len) in [("row", rows, grid.rows()), ("column", cols, grid.cols())] {
+        if let Some(&index) = indices.iter().find(|&&i| i >= len) {
+            return Err(GuidanceError::GridIndex { axis, index, len });
+        }
+    }
+    let per_row: Vec<Vec<ColumnGuidance>> = rows
+        .par_iter()
         .map_init(
             || sg.buffers(),
-            |b, row| (0..cols).map(|col| sg.column(row, col, b)).collect(),
+            |b, &row| cols.iter().map(|&col| sg.column(row, col, b)).collect(),
         )
         .collect();
-    let f32_grid = || Array2::<f32>::from_elem((rows, cols), f32::NAN);
-    let u8_grid = || Array2::<u8>::zeros((rows, cols));
+    let (rows_n, cols_n) = (rows.len(), cols.len());
+    let f32_grid = || Array2::<f32>::from_elem((rows_n, cols_n), f32::NAN);
+    let u8_grid = || Array2::<u8>::zeros((rows_n, cols_n));
     let mut g = GuidanceGrid {
         time_index,
         member,
         lead_time_s: lc.cycle.lead_times_s[time_index],
         valid_time_unix_s: lc.valid_time_unix_s(time_index),
-        latitudes: lc.cycle.grid.latitudes.clone(),
-        longitudes: lc.cycle.grid.longitudes.clone(),
+        latitudes: rows.iter().map(|&r| grid.latitudes[r]).collect(),
+        longitudes: cols.iter().map(|&c| grid.longitudes[c]).collect(),
         thickness_1000_500: f32_grid(),
         thickness_1000_850: f32_grid(),
         thickness_850_700: f32_grid(),

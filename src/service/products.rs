@@ -18,7 +18,7 @@ use crate::pb;
 use crate::pb::product_service_server::ProductService;
 use crate::products::ensemble::{ensemble_at_points, ensemble_grid, EnsembleStatistic};
 use crate::products::guidance::{
-    guidance_at_point, guidance_grid, GuidanceError, GuidanceSettings, PointGuidance,
+    guidance_at_point, guidance_on, GuidanceError, GuidanceSettings, PointGuidance,
     PrecipitationType, CAUTION,
 };
 use crate::products::orders::{
@@ -439,23 +439,22 @@ impl ProductService for HeightServiceHandlers {
                         ),
                     }));
                 }
-                let g = guidance_grid(&lc, resolved.time_index, member, &settings)?;
+                // Only the area's own columns: the whole grid would cost a global grid's
+                // columns for a box of a few points.
+                let g = guidance_on(
+                    &lc,
+                    (resolved.time_index, member),
+                    &settings,
+                    &area.rows,
+                    &area.cols,
+                )?;
                 Ok((resolved, area, g, settings))
             })
             .await?;
             let (resolved, area, g, settings) = answer;
-            let pick = |a: &ndarray::Array2<f32>| -> Vec<f32> {
-                area.rows
-                    .iter()
-                    .flat_map(|&row| area.cols.iter().map(move |&col| a[[row, col]]))
-                    .collect()
-            };
-            let category: Vec<u8> = area
-                .rows
-                .iter()
-                .flat_map(|&row| area.cols.iter().map(move |&col| (row, col)))
-                .map(|(row, col)| g.category[[row, col]])
-                .collect();
+            // The answer's arrays are the area's rows and columns in the area's order.
+            let pick = |a: &ndarray::Array2<f32>| -> Vec<f32> { a.iter().copied().collect() };
+            let category: Vec<u8> = g.category.iter().copied().collect();
             let mut counts = vec![0u64; PrecipitationType::ALL.len()];
             for &c in &category {
                 if let Some(n) = counts.get_mut(usize::from(c)) {

@@ -245,6 +245,7 @@ pub fn product_error(e: ProductError, selection: &str) -> Status {
                     Status::not_found(format!("{}: {message}", within("time")))
                 }
                 GuidanceError::Position(_) => Status::out_of_range(format!("points: {message}")),
+                GuidanceError::GridIndex { .. } => Status::out_of_range(message),
                 GuidanceError::Compute(_) => {
                     Status::failed_precondition(format!("{}: {message}", within("cycle_id")))
                 }
