@@ -440,3 +440,142 @@ fn bad_settings_end_with_one_line_naming_them() {
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(err.contains("127.0.0.1:9"), "{err}");
 }
+
+/// Precipitation-type guidance over the whole demo region from a running server, with the
+/// request's thresholds if any.
+fn guidance_over_grpc(
+    server: &Server,
+    thresholds: Option<hypsogrid::pb::GuidanceThresholds>,
+) -> hypsogrid::pb::GuidanceAreaResponse {
+    use hypsogrid::pb;
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .expect("runtime");
+    runtime.block_on(async {
+        let mut client = pb::product_service_client::ProductServiceClient::connect(server.url())
+            .await
+            .expect("connecting");
+        client
+            .get_guidance_area(pb::GuidanceAreaRequest {
+                field: Some(pb::FieldSelection {
+                    cycle_id: DEMO_FILE_NAME.to_string(),
+                    time: Some(pb::TimeSelection {
+                        kind: Some(pb::time_selection::Kind::LeadTimeS(24 * 3600)),
+                    }),
+                    member: 0,
+                    quantity: None,
+                    allow_extrapolation: false,
+                }),
+                bbox: Some(pb::BoundingBox {
+                    south_deg: -90.0,
+                    north_deg: 90.0,
+                    west_deg: -180.0,
+                    east_deg: 180.0,
+                }),
+                stride: None,
+                thresholds,
+            })
+            .await
+            .expect("guidance area")
+            .into_inner()
+    })
+}
+
+/// An office's guidance settings file (named in the server config, relative to it) is what
+/// every guidance answer starts from; a request's threshold still replaces the one it names;
+/// a bad file stops the server before it serves, naming the file and the key.
+#[test]
+fn the_offices_guidance_settings_are_what_guidance_answers_start_from() {
+    use hypsogrid::pb::GuidanceThresholds;
+    let dir = tempfile::tempdir().unwrap();
+    write_demo_cycle(dir.path()).unwrap();
+    // 5280 m: the critical 1000-500 hPa thickness many European offices use (GUIDE §3,
+    // common practice); 1530 m for 850-700 hPa, an office's own choice.
+    std::fs::write(
+        dir.path().join("guidance.toml"),
+        "critical_1000_500_m = 5280.0\ncritical_850_700_m = 1530.0\n",
+    )
+    .unwrap();
+    let config = dir.path().join("server.toml");
+    std::fs::write(
+        &config,
+        "[server]\ndata = \".\"\n\n[products]\nguidance_settings = \"guidance.toml\"\n",
+    )
+    .unwrap();
+    let config_arg = config.to_string_lossy().into_owned();
+    let server = Server::start(
+        &[
+            "--config",
+            &config_arg,
+            "--listen",
+            "127.0.0.1:0",
+            "--settle",
+            "100ms",
+        ],
+        &[],
+    );
+    server.wait_serving();
+    let office = guidance_over_grpc(&server, None);
+    let used = office.thresholds.expect("thresholds used");
+    assert_eq!(used.thickness_1000_500_m, Some(5280.0));
+    assert_eq!(used.thickness_850_700_m, Some(1530.0));
+    // Not in the file: the built-in 1300 m (GUIDE §3, common practice).
+    assert_eq!(used.thickness_1000_850_m, Some(1300.0));
+    // The request names one threshold: that one changes, the office's other one stays.
+    let asked = guidance_over_grpc(
+        &server,
+        Some(GuidanceThresholds {
+            thickness_1000_500_m: Some(5400.0),
+            ..Default::default()
+        }),
+    );
+    let used = asked.thresholds.expect("thresholds used");
+    assert_eq!(used.thickness_1000_500_m, Some(5400.0));
+    assert_eq!(used.thickness_850_700_m, Some(1530.0));
+    // A lower critical line puts more of the region on the rain side.
+    let rain = hypsogrid::pb::PrecipitationType::Rain as usize;
+    assert!(
+        office.category_counts[rain] > asked.category_counts[rain],
+        "{:?} vs {:?}",
+        office.category_counts,
+        asked.category_counts
+    );
+    let log = server.log();
+    assert!(
+        log.contains("guidance settings") && log.contains("guidance.toml"),
+        "{log}"
+    );
+    assert_eq!(server.terminate().0, Some(0));
+
+    // A misspelt key (the TOML parser's message, which shows the line) and a value out of
+    // range (one line): the first line names the file, the message the key.
+    for (text, key, lines) in [
+        ("critical_1000_500 = 5280.0\n", "critical_1000_500", None),
+        (
+            "critical_1000_500_m = -5.0\n",
+            "critical_1000_500_m",
+            Some(1),
+        ),
+    ] {
+        let bad = dir.path().join("bad-guidance.toml");
+        std::fs::write(&bad, text).unwrap();
+        let out = Command::new(BIN)
+            .args(["serve", "--listen", "127.0.0.1:0", "--guidance-settings"])
+            .arg(&bad)
+            .arg("--data")
+            .arg(dir.path())
+            .output()
+            .unwrap();
+        assert_eq!(out.status.code(), Some(1), "{text}");
+        let err = String::from_utf8_lossy(&out.stderr);
+        let first = err.lines().next().unwrap_or_default();
+        assert!(
+            first.contains("bad-guidance.toml") && err.contains(key),
+            "{text}: {err}"
+        );
+        if let Some(n) = lines {
+            assert_eq!(err.trim_end().lines().count(), n, "{err}");
+        }
+    }
+}

@@ -88,6 +88,15 @@ async fn client() -> (
     ProductServiceClient<Channel>,
     tokio::sync::oneshot::Sender<()>,
 ) {
+    client_with(ServiceConfig::default()).await
+}
+
+async fn client_with(
+    config: ServiceConfig,
+) -> (
+    ProductServiceClient<Channel>,
+    tokio::sync::oneshot::Sender<()>,
+) {
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
         .await
         .expect("bind");
@@ -96,7 +105,7 @@ async fn client() -> (
     tokio::spawn(serve_on(
         listener,
         Arc::clone(&fixture().store),
-        ServiceConfig::default(),
+        config,
         async move {
             let _ = stopped.await;
         },
@@ -408,6 +417,83 @@ async fn guidance_over_grpc_carries_the_caution_and_the_thresholds_asked_for() {
         "{}",
         bad.message()
     );
+}
+
+/// A server with an office's own guidance settings answers what the library answers with
+/// those settings (thresholds and tiers alike); settings out of range stop it from serving.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_server_with_its_own_guidance_settings_answers_with_them() {
+    let f = fixture();
+    // 5280 m (GUIDE §3: many European offices, common practice) and a lower limit of the
+    // low-ground tier (150 m instead of 300 m): an office's own settings, not only thresholds.
+    let office = GuidanceSettings {
+        critical_1000_500_m: 5280.0,
+        low_ground_max_m: 150.0,
+        ..GuidanceSettings::default()
+    };
+    let (mut c, _stop) = client_with(ServiceConfig {
+        guidance: office.clone(),
+        ..ServiceConfig::default()
+    })
+    .await;
+    let area = c
+        .get_guidance_area(pb::GuidanceAreaRequest {
+            field: Some(selection(DEMO_FILE_NAME, 24)),
+            bbox: Some(pb::BoundingBox {
+                south_deg: -90.0,
+                north_deg: 90.0,
+                west_deg: -180.0,
+                east_deg: 180.0,
+            }),
+            stride: None,
+            thresholds: None,
+        })
+        .await
+        .expect("guidance area")
+        .into_inner();
+    let want = guidance_grid(&f.demo, 4, 0, &office).expect("library guidance");
+    let defaults = guidance_grid(&f.demo, 4, 0, &GuidanceSettings::default()).expect("defaults");
+    assert_ne!(
+        want.summary(),
+        defaults.summary(),
+        "the settings change nothing here"
+    );
+    for (category, n) in &want.summary().categories {
+        assert_eq!(
+            area.category_counts[usize::from(category.code())],
+            *n as u64,
+            "{}",
+            category.name()
+        );
+    }
+    assert_eq!(
+        area.thresholds.and_then(|t| t.thickness_1000_500_m),
+        Some(5280.0)
+    );
+
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0")
+        .await
+        .expect("bind");
+    let refused = serve_on(
+        listener,
+        Arc::clone(&f.store),
+        ServiceConfig {
+            guidance: GuidanceSettings {
+                search_top_hpa: f64::NAN,
+                ..GuidanceSettings::default()
+            },
+            ..ServiceConfig::default()
+        },
+        std::future::ready(()),
+    )
+    .await;
+    match refused {
+        Err(hypsogrid::service::ServiceError::InvalidSetting { setting, message }) => {
+            assert_eq!(setting, "guidance");
+            assert!(message.contains("search_top_hpa"), "{message}");
+        }
+        other => panic!("expected an invalid setting, got {other:?}"),
+    }
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -221,14 +221,15 @@ fn parse_size(text: &str) -> Result<(u32, u32), String> {
 }
 
 /// Reads guidance thresholds from a TOML file, or the defaults (common practice).
-fn guidance_settings(path: Option<&Path>) -> Result<GuidanceSettings> {
+/// The guidance settings of the TOML file at `path` (validated), or the defaults; errors
+/// name the file.
+pub(super) fn guidance_settings(path: Option<&Path>) -> Result<GuidanceSettings> {
     match path {
         None => Ok(GuidanceSettings::default()),
         Some(p) => {
             let text = std::fs::read_to_string(p)
                 .with_context(|| format!("reading guidance settings '{}'", p.display()))?;
-            GuidanceSettings::from_toml_str(&text)
-                .with_context(|| format!("guidance settings '{}'", p.display()))
+            GuidanceSettings::from_toml_str(&text).with_context(|| format!("'{}'", p.display()))
         }
     }
 }

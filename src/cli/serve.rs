@@ -16,6 +16,7 @@ use serde::Deserialize;
 use hypsogrid::compute::{ComputeConfig, NoSurfaceReference};
 use hypsogrid::ingest::{load_config, IngestConfig};
 use hypsogrid::metrics::Recorder;
+use hypsogrid::products::guidance::GuidanceSettings;
 use hypsogrid::query::Limits;
 use hypsogrid::service::{serve_on, ReloadSignal, ServiceConfig, TlsFiles};
 use hypsogrid::store::{CycleStore, StoreConfig};
@@ -28,7 +29,7 @@ use super::{parse_reference, Saturation, ServeArgs};
 pub(crate) const DEFAULT_LISTEN: &str = "127.0.0.1:50951";
 
 /// The operations settings of `hypsogrid serve` (flattened into its arguments): client
-/// certificates, exposure on the network, metrics.
+/// certificates, exposure on the network, metrics, the office's guidance settings.
 #[derive(Debug, Default, clap::Args)]
 pub(crate) struct OpsArgs {
     /// CA certificate(s) (PEM) that sign client certificates: with TLS on, every client must
@@ -52,6 +53,12 @@ pub(crate) struct OpsArgs {
     /// one (printed on stderr as `metrics on ADDR`) [default: off]
     #[arg(long, value_name = "ADDR", env = "HYPSOGRID_METRICS_LISTEN")]
     metrics_listen: Option<SocketAddr>,
+    /// Guidance settings (TOML, the format of `hypsogrid guidance --settings`): the critical
+    /// thicknesses, margins and elevation tiers that suit this office's climate and terrain;
+    /// every guidance answer and chart starts from them, and a request's thresholds replace
+    /// only the critical thicknesses it names [default: the built-in rules of thumb]
+    #[arg(long, value_name = "FILE", env = "HYPSOGRID_GUIDANCE_SETTINGS")]
+    guidance_settings: Option<PathBuf>,
 }
 
 /// Log format on stderr.
@@ -171,6 +178,7 @@ struct FileSettings {
     security: SecurityTable,
     dataset: DatasetTable,
     metrics: MetricsTable,
+    products: ProductsTable,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -223,6 +231,12 @@ struct MetricsTable {
 
 #[derive(Debug, Default, Deserialize)]
 #[serde(default, deny_unknown_fields)]
+struct ProductsTable {
+    guidance_settings: Option<PathBuf>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(default, deny_unknown_fields)]
 struct DatasetTable {
     config: Option<PathBuf>,
     reference: Option<String>,
@@ -248,6 +262,7 @@ fn read_file_settings(path: &Path) -> Result<FileSettings> {
     rebase(&mut settings.security.tls_key);
     rebase(&mut settings.security.tls_client_ca);
     rebase(&mut settings.dataset.config);
+    rebase(&mut settings.products.guidance_settings);
     Ok(settings)
 }
 
@@ -278,6 +293,10 @@ pub(crate) struct ServeSettings {
     pub(crate) dataset: Option<PathBuf>,
     pub(crate) reference: NoSurfaceReference,
     pub(crate) saturation: Saturation,
+    /// The guidance settings file, if one was given.
+    pub(crate) guidance_file: Option<PathBuf>,
+    /// Its settings (validated), or the defaults.
+    pub(crate) guidance: GuidanceSettings,
 }
 
 impl ServeSettings {
@@ -318,7 +337,15 @@ impl ServeSettings {
             (Some(_), None) => bail!("--tls-cert needs --tls-key (the certificate's private key)"),
             (None, Some(_)) => bail!("--tls-key needs --tls-cert (the certificate chain)"),
         };
+        let guidance_file = args
+            .ops
+            .guidance_settings
+            .clone()
+            .or(file.products.guidance_settings);
+        let guidance = super::products::guidance_settings(guidance_file.as_deref())?;
         let settings = Self {
+            guidance_file,
+            guidance,
             data: args
                 .data
                 .clone()
@@ -520,6 +547,7 @@ impl ServeSettings {
             tls_client_ca: self.tls_client_ca.clone(),
             max_concurrent_requests: self.max_concurrent_requests,
             metrics: None,
+            guidance: self.guidance.clone(),
         }
     }
 }
@@ -596,6 +624,18 @@ async fn serve(
     };
     let mut service_config = settings.service_config();
     service_config.token_reload = Some(token_reload);
+    let g = &settings.guidance;
+    tracing::info!(
+        file = %settings
+            .guidance_file
+            .as_deref()
+            .map_or_else(|| "built-in defaults".to_string(), |p| p.display().to_string()),
+        critical_1000_500_m = g.critical_1000_500_m,
+        critical_1000_850_m = g.critical_1000_850_m,
+        critical_850_700_m = g.critical_850_700_m,
+        "guidance settings (guidance from model fields, not a forecast or warning: thresholds \
+         must suit the local climate and terrain)"
+    );
     let metrics = match metrics_listener {
         Some(metrics_listener) => {
             let recorder = Arc::new(Recorder::new());

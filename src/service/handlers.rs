@@ -26,6 +26,7 @@ use super::status::{self, Rpc};
 use crate::model::Vertical;
 use crate::pb;
 use crate::pb::height_service_server::HeightService;
+use crate::products::guidance::GuidanceSettings;
 use crate::query::{
     area_rows, area_shape, position, profile, trajectory, AreaQuery, Limits, LoadedCycle,
     PositionQuery, ProfileQuery, TrajectoryQuery,
@@ -46,6 +47,9 @@ pub struct HandlerSettings {
     pub tokens: Option<TokenSet>,
     /// Calls served at once; further calls are refused with `RESOURCE_EXHAUSTED`.
     pub max_concurrent_requests: usize,
+    /// The guidance settings every guidance answer and chart starts from; a request's
+    /// thresholds replace the critical thicknesses it names.
+    pub guidance: GuidanceSettings,
 }
 
 /// The service: a store and the settings. Cheap to clone (shared state is behind `Arc`).

@@ -53,6 +53,7 @@ pub use handlers::{HandlerSettings, HeightServiceHandlers};
 use crate::metrics::{Method, Recorder};
 use crate::pb;
 use crate::pb::height_service_server::{HeightService, HeightServiceServer};
+use crate::products::guidance::GuidanceSettings;
 use crate::query::Limits;
 use crate::store::CycleStore;
 
@@ -92,6 +93,10 @@ pub struct ServiceConfig {
     pub max_concurrent_requests: usize,
     /// Counts every call (method, status code, latency) when set.
     pub metrics: Option<Arc<Recorder>>,
+    /// The guidance settings of this server (the office's thresholds and tiers, which must
+    /// suit its climate and terrain): every guidance answer and chart starts from them, and
+    /// a request's thresholds replace only the critical thicknesses it names.
+    pub guidance: GuidanceSettings,
 }
 
 impl Default for ServiceConfig {
@@ -106,6 +111,7 @@ impl Default for ServiceConfig {
             tls_client_ca: None,
             max_concurrent_requests: 64,
             metrics: None,
+            guidance: GuidanceSettings::default(),
         }
     }
 }
@@ -183,6 +189,12 @@ impl ServiceConfig {
                 message: "client certificates are checked only over tls: give the server's own certificate and key too".into(),
             });
         }
+        self.guidance
+            .validate()
+            .map_err(|e| ServiceError::InvalidSetting {
+                setting: "guidance",
+                message: e.to_string(),
+            })?;
         let tokens = match &self.auth_tokens {
             Some(path) => Some(auth::TokenSet::from_file(path)?),
             None => None,
@@ -193,6 +205,7 @@ impl ServiceConfig {
             request_timeout: self.request_timeout,
             tokens,
             max_concurrent_requests: self.max_concurrent_requests,
+            guidance: self.guidance.clone(),
         })
     }
 }

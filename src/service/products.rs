@@ -99,8 +99,13 @@ fn resolved_field(r: &Resolved) -> pb::ResolvedField {
 }
 
 /// The server's guidance settings (common-practice defaults) with the request's overrides.
-fn guidance_settings(t: Option<&pb::GuidanceThresholds>) -> Result<GuidanceSettings, Status> {
-    let mut s = GuidanceSettings::default();
+/// The server's guidance settings (`base`) with the request's thresholds, where it gives
+/// them, in place of the critical thicknesses.
+fn guidance_settings(
+    base: &GuidanceSettings,
+    t: Option<&pb::GuidanceThresholds>,
+) -> Result<GuidanceSettings, Status> {
+    let mut s = base.clone();
     if let Some(t) = t {
         if let Some(v) = t.thickness_1000_500_m {
             s.critical_1000_500_m = v;
@@ -382,7 +387,7 @@ impl ProductService for HeightServiceHandlers {
                     product(&call, "field", move || field_chart(&lc, &choice, &options)).await?
                 }
                 pb::ChartKind::PrecipitationType => {
-                    let settings = guidance_settings(r.thresholds.as_ref())?;
+                    let settings = guidance_settings(&self.settings().guidance, r.thresholds.as_ref())?;
                     let (time, member) = (selection.time, selection.member);
                     product(&call, "field", move || {
                         guidance_chart(&lc, time.as_ref(), member, &settings, &options)
@@ -423,7 +428,7 @@ impl ProductService for HeightServiceHandlers {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let bbox = crate::query::BoundingBox::from(r.bbox.as_ref().ok_or_else(|| missing("bbox"))?);
             let stride = r.stride.unwrap_or(1) as usize;
-            let settings = guidance_settings(r.thresholds.as_ref())?;
+            let settings = guidance_settings(&self.settings().guidance, r.thresholds.as_ref())?;
             let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let limit = self.settings().limits.max_points;
@@ -491,7 +496,7 @@ impl ProductService for HeightServiceHandlers {
             let r = request.into_inner();
             let selection = Selection::from_wire(r.field.as_ref())?;
             let pts = points(&r.points)?;
-            let settings = guidance_settings(r.thresholds.as_ref())?;
+            let settings = guidance_settings(&self.settings().guidance, r.thresholds.as_ref())?;
             let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let answer = product(&call, "field", move || {
@@ -705,14 +710,28 @@ mod tests {
 
     #[test]
     fn threshold_overrides_replace_only_what_is_set() {
-        let s = guidance_settings(Some(&pb::GuidanceThresholds {
-            thickness_1000_500_m: Some(5280.0),
-            ..Default::default()
-        }))
+        // A server whose own settings differ from the defaults: the request's threshold
+        // replaces one critical thickness, everything else stays the server's.
+        let base = GuidanceSettings {
+            critical_1000_850_m: 1290.0,
+            search_top_hpa: 400.0,
+            ..GuidanceSettings::default()
+        };
+        let s = guidance_settings(
+            &base,
+            Some(&pb::GuidanceThresholds {
+                thickness_1000_500_m: Some(5280.0),
+                ..Default::default()
+            }),
+        )
         .unwrap();
-        let d = GuidanceSettings::default();
         assert_eq!(s.critical_1000_500_m, 5280.0);
-        assert_eq!(s.critical_1000_850_m, d.critical_1000_850_m);
-        assert_eq!(s.critical_850_700_m, d.critical_850_700_m);
+        assert_eq!(s.critical_1000_850_m, 1290.0);
+        assert_eq!(s.critical_850_700_m, base.critical_850_700_m);
+        assert_eq!(s.search_top_hpa, 400.0);
+        // No thresholds: the server's settings as they are.
+        let same = guidance_settings(&base, None).unwrap();
+        assert_eq!(same.critical_1000_850_m, 1290.0);
+        assert_eq!(same.critical_1000_500_m, base.critical_1000_500_m);
     }
 }
