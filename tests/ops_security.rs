@@ -394,6 +394,59 @@ async fn tls_client_ca_serves_only_clients_with_a_certificate_from_that_authorit
     // The good client still works after the refusals.
     let again = catalogue_over_tls(port, &pki.ca, Some((&pki.client_cert, &pki.client_key))).await;
     assert_eq!(again, Ok(0));
+
+    // The command-line client: served with --client-cert/--client-key from that authority,
+    // refused without them or with the unrelated authority's, each failure in words.
+    let file = |name: &str| path_arg(&dir.path().join(name));
+    let (ca, client_pem, client_key, rogue_pem, rogue_key) = (
+        file("ca.pem"),
+        file("client.pem"),
+        file("client.key"),
+        file("rogue.pem"),
+        file("rogue.key"),
+    );
+    let cli = move |identity: Option<(String, String)>| {
+        let mut cmd = Command::new(BIN);
+        cmd.args([
+            "catalogue",
+            "--server",
+            &format!("https://localhost:{port}"),
+        ])
+        .args(["--ca-cert", &ca, "--timeout", "10s"])
+        .env_remove("HYPSOGRID_CLIENT_CERT")
+        .env_remove("HYPSOGRID_CLIENT_KEY");
+        if let Some((cert, key)) = identity {
+            cmd.args(["--client-cert", &cert, "--client-key", &key]);
+        }
+        cmd.output().expect("running the catalogue client")
+    };
+    let cli_runs = tokio::task::spawn_blocking(move || {
+        (
+            cli(Some((client_pem.clone(), client_key.clone()))),
+            cli(None),
+            cli(Some((rogue_pem, rogue_key))),
+            cli(Some((client_pem, String::new()))),
+        )
+    })
+    .await
+    .unwrap();
+    let (served, bare, rogue, no_key) = cli_runs;
+    assert!(
+        served.status.success(),
+        "{}\nserver log:\n{}",
+        String::from_utf8_lossy(&served.stderr),
+        server.log()
+    );
+    assert!(String::from_utf8_lossy(&served.stdout).contains("0 cycle(s) loaded"));
+    for (what, out) in [("no certificate", &bare), ("another authority", &rogue)] {
+        assert_eq!(out.status.code(), Some(1), "{what}");
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(err.contains("--client-cert"), "{what}: {err}");
+        assert_eq!(err.trim_end().lines().count(), 1, "{what}: {err}");
+    }
+    // An empty --client-key is a file that cannot be read, named as such.
+    let err = String::from_utf8_lossy(&no_key.stderr);
+    assert!(err.contains("--client-key"), "{err}");
     assert_eq!(
         tokio::task::spawn_blocking(move || server.terminate().0)
             .await

@@ -8,7 +8,7 @@ use anyhow::{bail, Context, Result};
 use serde_json::{json, Value};
 use tonic::metadata::{Ascii, MetadataValue};
 use tonic::service::interceptor::InterceptedService;
-use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint};
+use tonic::transport::{Certificate, Channel, ClientTlsConfig, Endpoint, Identity};
 use tonic::{Request, Status};
 
 use hypsogrid::model::Layer;
@@ -73,26 +73,54 @@ pub(crate) async fn channel(args: &ConnectArgs) -> Result<Channel> {
         .timeout(args.timeout)
         .initial_stream_window_size(hypsogrid::service::STREAM_WINDOW_BYTES)
         .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES);
+    let read = |flag: &str, path: &std::path::Path| {
+        std::fs::read(path).with_context(|| format!("{flag}: cannot read '{}'", path.display()))
+    };
+    let identity = match (&args.client_cert, &args.client_key) {
+        (Some(cert), Some(key)) => Some(Identity::from_pem(
+            read("--client-cert", cert)?,
+            read("--client-key", key)?,
+        )),
+        (None, None) => None,
+        (Some(_), None) => {
+            bail!("--client-cert needs --client-key (the certificate's private key)")
+        }
+        (None, Some(_)) => {
+            bail!("--client-key needs --client-cert (the certificate it belongs to)")
+        }
+    };
     if args.server.starts_with("https://") {
         let mut tls = ClientTlsConfig::new();
         if let Some(ca) = &args.ca_cert {
-            let pem = std::fs::read(ca)
-                .with_context(|| format!("--ca-cert: cannot read '{}'", ca.display()))?;
-            tls = tls.ca_certificate(Certificate::from_pem(pem));
+            tls = tls.ca_certificate(Certificate::from_pem(read("--ca-cert", ca)?));
+        }
+        if let Some(identity) = identity {
+            tls = tls.identity(identity);
         }
         endpoint = endpoint
             .tls_config(tls)
             .with_context(|| format!("--server '{}': tls setup", args.server))?;
-    } else if args.ca_cert.is_some() {
+    } else if args.ca_cert.is_some() || identity.is_some() {
+        let flag = if args.ca_cert.is_some() {
+            "--ca-cert"
+        } else {
+            "--client-cert"
+        };
         bail!(
-            "--ca-cert is for https:// servers; --server is '{}'",
+            "{flag} is for https:// servers; --server is '{}'",
             args.server
         );
     }
+    let tls_hint = if args.server.starts_with("https://") {
+        " (over https: check --ca-cert, and --client-cert where the server requires client \
+         certificates)"
+    } else {
+        ""
+    };
     endpoint
         .connect()
         .await
-        .with_context(|| format!("cannot connect to '{}'", args.server))
+        .with_context(|| format!("cannot connect to '{}'{tls_hint}", args.server))
 }
 
 /// Connects the query client.
@@ -107,12 +135,31 @@ pub(crate) fn client_on(channel: Channel, token: BearerToken) -> Client {
         .max_decoding_message_size(MAX_DECODING_BYTES)
 }
 
-/// A gRPC error as one line: what was asked, the code in its canonical name, the message.
+/// A gRPC error as one line: what was asked, the code in its canonical name, the message,
+/// and for a failure below gRPC (a transport error) its causes, such as the TLS alert of a
+/// server that wants a client certificate.
 pub(crate) fn status_error(what: &str, status: Status) -> anyhow::Error {
+    let mut detail = status.message().to_string();
+    let mut source = std::error::Error::source(&status);
+    while let Some(cause) = source {
+        let text = cause.to_string();
+        if !detail.contains(&text) {
+            detail.push_str(": ");
+            detail.push_str(&text);
+        }
+        source = cause.source();
+    }
+    // Timing decides which code a broken connection comes back as (UNKNOWN, CANCELLED).
+    let hint = if detail.contains("transport error") {
+        " (the connection broke below gRPC; a server started with --tls-client-ca does this to \
+         a client without a certificate it accepts: see --client-cert)"
+    } else {
+        ""
+    };
     anyhow::anyhow!(
-        "{what}: server answered {}: {}",
+        "{what}: server answered {}: {}{hint}",
         code_name(status.code()),
-        status.message()
+        detail.replace('\n', " ")
     )
 }
 

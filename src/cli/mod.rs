@@ -267,6 +267,13 @@ pub(crate) struct ConnectArgs {
     /// CA certificate (PEM) to trust for an https:// server with its own certificate
     #[arg(long, value_name = "FILE", env = "HYPSOGRID_CA_CERT")]
     ca_cert: Option<PathBuf>,
+    /// Client certificate (PEM) for an https:// server that requires one (started with
+    /// --tls-client-ca); needs --client-key
+    #[arg(long, value_name = "FILE", env = "HYPSOGRID_CLIENT_CERT")]
+    client_cert: Option<PathBuf>,
+    /// Private key (PEM) of --client-cert
+    #[arg(long, value_name = "FILE", env = "HYPSOGRID_CLIENT_KEY")]
+    client_key: Option<PathBuf>,
     /// Give up on the call after this long, e.g. 30s
     #[arg(long, value_name = "DURATION", default_value = "30s", value_parser = serve::parse_duration)]
     timeout: std::time::Duration,
