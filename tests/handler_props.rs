@@ -521,12 +521,7 @@ fn a_whole_globe_box_at_stride_one_beyond_the_point_limit_is_refused_quickly() {
                 top_pa: 50_000.0,
             })),
         }],
-        bbox: Some(pb::BoundingBox {
-            south_deg: -90.0,
-            north_deg: 90.0,
-            west_deg: -180.0,
-            east_deg: 180.0,
-        }),
+        bbox: Some(pb::BoundingBox::whole_globe()),
         stride: Some(1),
         ..pb::AreaRequest::default()
     };

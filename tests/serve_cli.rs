@@ -467,12 +467,7 @@ fn guidance_over_grpc(
                     quantity: None,
                     allow_extrapolation: false,
                 }),
-                bbox: Some(pb::BoundingBox {
-                    south_deg: -90.0,
-                    north_deg: 90.0,
-                    west_deg: -180.0,
-                    east_deg: 180.0,
-                }),
+                bbox: Some(pb::BoundingBox::whole_globe()),
                 stride: None,
                 thresholds,
             })

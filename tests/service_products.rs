@@ -241,12 +241,7 @@ async fn isolines_and_charts_over_grpc_equal_the_library_answers() {
 async fn guidance_over_grpc_carries_the_caution_and_the_thresholds_asked_for() {
     let f = fixture();
     let (mut c, _stop) = client().await;
-    let whole = pb::BoundingBox {
-        south_deg: -90.0,
-        north_deg: 90.0,
-        west_deg: -180.0,
-        east_deg: 180.0,
-    };
+    let whole = pb::BoundingBox::whole_globe();
     let area = c
         .get_guidance_area(pb::GuidanceAreaRequest {
             field: Some(selection(DEMO_FILE_NAME, 24)),
@@ -439,12 +434,7 @@ async fn a_server_with_its_own_guidance_settings_answers_with_them() {
     let area = c
         .get_guidance_area(pb::GuidanceAreaRequest {
             field: Some(selection(DEMO_FILE_NAME, 24)),
-            bbox: Some(pb::BoundingBox {
-                south_deg: -90.0,
-                north_deg: 90.0,
-                west_deg: -180.0,
-                east_deg: 180.0,
-            }),
+            bbox: Some(pb::BoundingBox::whole_globe()),
             stride: None,
             thresholds: None,
         })

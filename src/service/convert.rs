@@ -142,6 +142,18 @@ fn quantities(qs: &[pb::Quantity]) -> Result<Vec<Quantity>, FieldError> {
         .collect()
 }
 
+impl pb::BoundingBox {
+    /// The whole globe: every grid point of a cycle's domain, global or not.
+    pub fn whole_globe() -> Self {
+        pb::BoundingBox {
+            south_deg: -90.0,
+            north_deg: 90.0,
+            west_deg: -180.0,
+            east_deg: 180.0,
+        }
+    }
+}
+
 impl From<&pb::BoundingBox> for BoundingBox {
     fn from(b: &pb::BoundingBox) -> Self {
         BoundingBox {

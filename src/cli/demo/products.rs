@@ -135,12 +135,7 @@ pub(super) async fn query(address: SocketAddr, dir: &Path) -> Result<String> {
     let area = client
         .get_guidance_area(pb::GuidanceAreaRequest {
             field: Some(field(DEMO_FILE_NAME, PRODUCT_LEAD_S)),
-            bbox: Some(pb::BoundingBox {
-                south_deg: -90.0,
-                north_deg: 90.0,
-                west_deg: -180.0,
-                east_deg: 180.0,
-            }),
+            bbox: Some(pb::BoundingBox::whole_globe()),
             stride: None,
             thresholds: None,
         })
