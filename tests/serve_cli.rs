@@ -541,6 +541,45 @@ fn the_offices_guidance_settings_are_what_guidance_answers_start_from() {
         log.contains("guidance settings") && log.contains("guidance.toml"),
         "{log}"
     );
+
+    // SIGHUP re-reads the file: a changed threshold is in force without a restart (the
+    // cycles stay loaded); a broken file is logged and the settings in force stay.
+    let used_now = |server: &Server| {
+        guidance_over_grpc(server, None)
+            .thresholds
+            .and_then(|t| t.thickness_1000_500_m)
+    };
+    std::fs::write(
+        dir.path().join("guidance.toml"),
+        "critical_1000_500_m = 5340.0\ncritical_850_700_m = 1530.0\n",
+    )
+    .unwrap();
+    server.signal(libc::SIGHUP);
+    let deadline = Instant::now() + Duration::from_secs(20);
+    while used_now(&server) != Some(5340.0) {
+        assert!(
+            Instant::now() < deadline,
+            "the re-read settings are not in force; server log:\n{}",
+            server.log()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    std::fs::write(
+        dir.path().join("guidance.toml"),
+        "critical_1000_500_m = \"high\"\n",
+    )
+    .unwrap();
+    server.signal(libc::SIGHUP);
+    let deadline = Instant::now() + Duration::from_secs(20);
+    while !server.log().contains("previous settings stay in force") {
+        assert!(
+            Instant::now() < deadline,
+            "no warning for a broken file; server log:\n{}",
+            server.log()
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
+    assert_eq!(used_now(&server), Some(5340.0));
     assert_eq!(server.terminate().0, Some(0));
 
     // A misspelt key (the TOML parser's message, which shows the line) and a value out of

@@ -539,7 +539,7 @@ impl ServeSettings {
             max_message_bytes: usize::try_from(self.max_message_bytes).unwrap_or(usize::MAX),
             request_timeout: self.request_timeout,
             auth_tokens: self.auth_tokens.clone(),
-            token_reload: None,
+            reload: None,
             tls: self.tls.as_ref().map(|(cert, key)| TlsFiles {
                 cert: cert.clone(),
                 key: key.clone(),
@@ -548,6 +548,7 @@ impl ServeSettings {
             max_concurrent_requests: self.max_concurrent_requests,
             metrics: None,
             guidance: self.guidance.clone(),
+            guidance_file: self.guidance_file.clone(),
         }
     }
 }
@@ -592,8 +593,8 @@ async fn serve(
     // orderly stop (right after the scan) rather than the default abrupt exit, and a SIGHUP
     // does not end the process (its default action).
     let signal = shutdown_signal()?;
-    let token_reload = ReloadSignal::new();
-    let hangups = forward_hangups(token_reload.clone())?;
+    let reload = ReloadSignal::new();
+    let hangups = forward_hangups(reload.clone())?;
     let store = Arc::new(CycleStore::new(settings.store_config()));
     let watch_config = settings.watch_config();
     let mut state = WatchState::new();
@@ -623,7 +624,7 @@ async fn serve(
         let _ = stop.wait_for(|stop| *stop).await;
     };
     let mut service_config = settings.service_config();
-    service_config.token_reload = Some(token_reload);
+    service_config.reload = Some(reload);
     let g = &settings.guidance;
     tracing::info!(
         file = %settings
@@ -743,14 +744,17 @@ fn forward_hangups(reload: ReloadSignal) -> Result<tokio::task::JoinHandle<()>> 
         let mut hangup = signal(SignalKind::hangup()).context("listening for SIGHUP")?;
         Ok(tokio::spawn(async move {
             while hangup.recv().await.is_some() {
-                tracing::info!(signal = "SIGHUP", "re-reading the token file");
+                tracing::info!(
+                    signal = "SIGHUP",
+                    "re-reading the token file and the guidance settings file"
+                );
                 reload.request();
             }
         }))
     }
     #[cfg(not(unix))]
     {
-        // No SIGHUP: the token file is read at start only.
+        // No SIGHUP: the token and guidance settings files are read at start only.
         let _ = reload;
         Ok(tokio::spawn(async {}))
     }

@@ -210,8 +210,9 @@ fn parse_digest(hex: &str) -> Option<[u8; SHA256_OUTPUT_LEN]> {
     Some(out)
 }
 
-/// A request to re-read the token file, shared between whoever notices the need (the
-/// command line on SIGHUP) and the server task that re-reads. Requests made while no one
+/// A request to re-read the server's files (the token file, the guidance settings file),
+/// shared between whoever notices the need (the command line on SIGHUP) and the server task
+/// that re-reads. Requests made while no one
 /// waits are remembered (one at a time), so none is lost between two reloads.
 #[derive(Clone, Debug, Default)]
 pub struct ReloadSignal {
@@ -224,7 +225,7 @@ impl ReloadSignal {
         Self::default()
     }
 
-    /// Asks for the token file to be re-read.
+    /// Asks for the files to be re-read.
     pub fn request(&self) {
         self.notify.notify_one();
     }
@@ -240,21 +241,27 @@ impl ReloadSignal {
 pub async fn reload_on_request(tokens: TokenSet, path: PathBuf, signal: ReloadSignal) {
     loop {
         signal.requested().await;
-        // Reading a small file; done on a blocking thread all the same, as a token file may
-        // sit on a slow network mount.
-        let read_path = path.clone();
-        let read = tokio::task::spawn_blocking(move || TokenSet::from_file(&read_path)).await;
-        match read {
-            Ok(Ok(next)) => {
-                tokens.replace(&next);
-                tracing::info!(file = %path.display(), entries = next.len(), "token file re-read; the new tokens are in force");
-            }
-            Ok(Err(error)) => {
-                tracing::warn!(%error, "token file not re-read; the previous tokens stay in force");
-            }
-            Err(error) => {
-                tracing::warn!(%error, "token file re-read failed; the previous tokens stay in force");
-            }
+        reload_tokens(&tokens, &path).await;
+    }
+}
+
+/// Re-reads `path` into `tokens` once; a file that cannot be used is logged and the tokens in
+/// force stay in force.
+pub(crate) async fn reload_tokens(tokens: &TokenSet, path: &std::path::Path) {
+    // Reading a small file; done on a blocking thread all the same, as a token file may sit
+    // on a slow network mount.
+    let read_path = path.to_path_buf();
+    let read = tokio::task::spawn_blocking(move || TokenSet::from_file(&read_path)).await;
+    match read {
+        Ok(Ok(next)) => {
+            tokens.replace(&next);
+            tracing::info!(file = %path.display(), entries = next.len(), "token file re-read; the new tokens are in force");
+        }
+        Ok(Err(error)) => {
+            tracing::warn!(%error, "token file not re-read; the previous tokens stay in force");
+        }
+        Err(error) => {
+            tracing::warn!(%error, "token file re-read failed; the previous tokens stay in force");
         }
     }
 }

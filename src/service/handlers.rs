@@ -9,7 +9,7 @@
 
 use std::collections::VecDeque;
 use std::pin::Pin;
-use std::sync::Arc;
+use std::sync::{Arc, RwLock};
 use std::time::{Duration, Instant};
 
 use prost::Message;
@@ -49,7 +49,38 @@ pub struct HandlerSettings {
     pub max_concurrent_requests: usize,
     /// The guidance settings every guidance answer and chart starts from; a request's
     /// thresholds replace the critical thicknesses it names.
-    pub guidance: GuidanceSettings,
+    pub guidance: GuidanceInForce,
+}
+
+/// The guidance settings in force, shared by every handler and swapped whole when the
+/// settings file is re-read: a call uses the settings it started with.
+#[derive(Clone, Debug)]
+pub struct GuidanceInForce(Arc<RwLock<Arc<GuidanceSettings>>>);
+
+impl GuidanceInForce {
+    /// Settings in force from now on.
+    pub fn new(settings: GuidanceSettings) -> Self {
+        Self(Arc::new(RwLock::new(Arc::new(settings))))
+    }
+
+    /// The settings in force now.
+    pub fn current(&self) -> Arc<GuidanceSettings> {
+        match self.0.read() {
+            Ok(s) => Arc::clone(&s),
+            // A writer cannot panic while holding the lock (it only stores an Arc); should
+            // the lock be poisoned all the same, its value is whole.
+            Err(poisoned) => Arc::clone(&poisoned.into_inner()),
+        }
+    }
+
+    /// Puts `settings` in force for the calls that start from now on.
+    pub fn replace(&self, settings: GuidanceSettings) {
+        let next = Arc::new(settings);
+        match self.0.write() {
+            Ok(mut s) => *s = next,
+            Err(poisoned) => *poisoned.into_inner() = next,
+        }
+    }
 }
 
 /// The service: a store and the settings. Cheap to clone (shared state is behind `Arc`).

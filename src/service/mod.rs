@@ -12,6 +12,8 @@
 //!   `authorization: Bearer <token>`; health and reflection stay open for probes and tools.
 //!   The file may hold SHA-256 digests instead of tokens ([`auth`]); a [`ReloadSignal`]
 //!   re-reads it, swapping the whole set at once, and a bad new file leaves the old set.
+//! - Guidance: every guidance answer starts from the server's settings
+//!   ([`ServiceConfig::guidance`]); the same signal re-reads their file, with the same rule.
 //! - TLS: a PEM certificate chain and private key (rustls with the ring provider); with a
 //!   client CA, every client must present a certificate signed by it (mutual TLS).
 //! - Metrics: with a [`Recorder`], every call to `HeightService` is counted by method and
@@ -56,6 +58,7 @@ use crate::pb::height_service_server::{HeightService, HeightServiceServer};
 use crate::products::guidance::GuidanceSettings;
 use crate::query::Limits;
 use crate::store::CycleStore;
+use handlers::GuidanceInForce;
 
 /// Encoded `FileDescriptorSet` of the `hypsogrid.v1` protos, for reflection.
 pub const FILE_DESCRIPTOR_SET: &[u8] = tonic::include_file_descriptor_set!("hypsogrid_descriptor");
@@ -81,9 +84,10 @@ pub struct ServiceConfig {
     /// comments ignored; see [`auth`]): when set, every call to the project's service must
     /// carry `authorization: Bearer <token>`.
     pub auth_tokens: Option<PathBuf>,
-    /// Re-reads the token file whenever this signal is raised (the command line raises it on
-    /// SIGHUP). Without a token file a request is logged and changes nothing.
-    pub token_reload: Option<ReloadSignal>,
+    /// Re-reads the token file and the guidance settings file whenever this signal is raised
+    /// (the command line raises it on SIGHUP); a file that cannot be used is logged and what
+    /// is in force stays. Without either file a request is logged and changes nothing.
+    pub reload: Option<ReloadSignal>,
     /// Serve TLS with this certificate and key.
     pub tls: Option<TlsFiles>,
     /// PEM certificate(s) of the authority that signs client certificates: when set (it
@@ -97,6 +101,8 @@ pub struct ServiceConfig {
     /// suit its climate and terrain): every guidance answer and chart starts from them, and
     /// a request's thresholds replace only the critical thicknesses it names.
     pub guidance: GuidanceSettings,
+    /// The file `guidance` was read from, re-read on [`ServiceConfig::reload`].
+    pub guidance_file: Option<PathBuf>,
 }
 
 impl Default for ServiceConfig {
@@ -106,12 +112,13 @@ impl Default for ServiceConfig {
             max_message_bytes: 4 * 1024 * 1024,
             request_timeout: Duration::from_secs(30),
             auth_tokens: None,
-            token_reload: None,
+            reload: None,
             tls: None,
             tls_client_ca: None,
             max_concurrent_requests: 64,
             metrics: None,
             guidance: GuidanceSettings::default(),
+            guidance_file: None,
         }
     }
 }
@@ -205,7 +212,7 @@ impl ServiceConfig {
             request_timeout: self.request_timeout,
             tokens,
             max_concurrent_requests: self.max_concurrent_requests,
-            guidance: self.guidance.clone(),
+            guidance: GuidanceInForce::new(self.guidance.clone()),
         })
     }
 }
@@ -222,22 +229,14 @@ pub async fn serve_on(
     shutdown: impl Future<Output = ()> + Send + 'static,
 ) -> Result<(), ServiceError> {
     let settings = config.handler_settings()?;
-    let reloader =
-        match (&config.token_reload, &settings.tokens, &config.auth_tokens) {
-            (Some(signal), Some(tokens), Some(path)) => Some(tokio::spawn(
-                auth::reload_on_request(tokens.clone(), path.clone(), signal.clone()),
-            )),
-            (Some(signal), _, _) => {
-                let signal = signal.clone();
-                Some(tokio::spawn(async move {
-                    loop {
-                        signal.requested().await;
-                        tracing::info!("token reload asked for, but no token file is configured");
-                    }
-                }))
-            }
-            (None, _, _) => None,
-        };
+    let reloader = config.reload.clone().map(|signal| {
+        let tokens = settings.tokens.clone().zip(config.auth_tokens.clone());
+        let guidance = config
+            .guidance_file
+            .clone()
+            .map(|path| (settings.guidance.clone(), path));
+        tokio::spawn(reload_on_request(signal, tokens, guidance))
+    });
     let handlers = Metered {
         inner: HeightServiceHandlers::new(Arc::clone(&store), settings),
         recorder: config.metrics.clone(),
@@ -332,6 +331,57 @@ pub async fn serve_on(
     }
     health.stop().await;
     result
+}
+
+/// On every request of `signal`, forever: re-reads the token file into its set and the
+/// guidance settings file into the settings in force, where configured. A file that cannot
+/// be used is logged and what is in force stays in force.
+async fn reload_on_request(
+    signal: ReloadSignal,
+    tokens: Option<(auth::TokenSet, PathBuf)>,
+    guidance: Option<(GuidanceInForce, PathBuf)>,
+) {
+    loop {
+        signal.requested().await;
+        if tokens.is_none() && guidance.is_none() {
+            tracing::info!(
+                "reload asked for, but neither a token file nor a guidance settings file is configured"
+            );
+        }
+        if let Some((set, path)) = &tokens {
+            auth::reload_tokens(set, path).await;
+        }
+        if let Some((in_force, path)) = &guidance {
+            let read_path = path.clone();
+            let read = tokio::task::spawn_blocking(move || {
+                let text = std::fs::read_to_string(&read_path).map_err(|e| e.to_string())?;
+                GuidanceSettings::from_toml_str(&text).map_err(|e| e.to_string())
+            })
+            .await;
+            match read {
+                Ok(Ok(next)) => {
+                    tracing::info!(
+                        file = %path.display(),
+                        critical_1000_500_m = next.critical_1000_500_m,
+                        critical_1000_850_m = next.critical_1000_850_m,
+                        critical_850_700_m = next.critical_850_700_m,
+                        "guidance settings re-read; the new settings are in force"
+                    );
+                    in_force.replace(next);
+                }
+                Ok(Err(error)) => tracing::warn!(
+                    file = %path.display(),
+                    %error,
+                    "guidance settings not re-read; the previous settings stay in force"
+                ),
+                Err(error) => tracing::warn!(
+                    file = %path.display(),
+                    %error,
+                    "guidance settings re-read failed; the previous settings stay in force"
+                ),
+            }
+        }
+    }
 }
 
 /// The handlers with every call counted: method, final status code and latency. Counting is
