@@ -97,7 +97,17 @@ impl ServeChild {
         let started = Instant::now();
         loop {
             if let Some(status) = self.child.try_wait().expect("waiting for the server") {
-                return (status.code(), started.elapsed());
+                let elapsed = started.elapsed();
+                if status.code() != Some(0) {
+                    // For the failure message of the test that expected 0: the last lines
+                    // reach the reading thread shortly after the exit.
+                    std::thread::sleep(Duration::from_millis(200));
+                    eprintln!(
+                        "the server ended with {status} after SIGTERM; its log:\n{}",
+                        self.log()
+                    );
+                }
+                return (status.code(), elapsed);
             }
             if started.elapsed() > Duration::from_secs(15) {
                 let _ = self.child.kill();
