@@ -913,4 +913,37 @@ fn valid_times_must_match_and_errors_name_both_files() {
     )
     .expect_err("south of north");
     assert!(err.to_string().starts_with("regions[1]"), "{err}");
+
+    // The command line: a valid time picks the analysis step valid then and the forecast
+    // step valid then (00Z on the 11th: +12 h); a valid time the forecast does not reach is
+    // refused naming both files; a lead time still picks the forecast step.
+    let run = |time: &str| {
+        Command::new(env!("CARGO_BIN_EXE_hypsogrid"))
+            .arg("verify")
+            .arg(dir.path().join("fc-2011011012.nc"))
+            .arg(dir.path().join("an-2011011100.nc"))
+            .args(["--height", "500", "--region", "global", "--time", time])
+            .output()
+            .expect("running hypsogrid verify")
+    };
+    for time in ["2011-01-11T00:00:00Z", "12h"] {
+        let out = run(time);
+        let text = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success(),
+            "{time}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(
+            text.contains("(lead +12h)") && text.contains("valid 2011-01-11T00:00:00Z"),
+            "{time}: {text}"
+        );
+    }
+    let out = run("2011-01-11T06:00:00Z");
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains("fc-2011011012.nc") && err.contains("an-2011011100.nc"),
+        "{err}"
+    );
 }

@@ -691,8 +691,10 @@ pub(crate) struct VerifyArgs {
     /// A box of your own, SOUTH,NORTH,WEST,EAST in degrees (repeat for several)
     #[arg(long = "box", value_name = "S,N,W,E", allow_hyphen_values = true, value_parser = client::parse_bbox)]
     boxes: Vec<client::BoxArg>,
-    /// Forecast lead time to verify [default: the step valid at the analysis time]; for a
-    /// single-file check, the time step (lead or RFC 3339 valid time) [default: the first]
+    /// With an analysis: the forecast lead time to verify, or an RFC 3339 valid time (the
+    /// analysis step valid then, against the forecast step valid then) [default: the first
+    /// analysis step the forecast has]; for a single-file check, the time step (lead or valid
+    /// time) [default: the first]
     #[arg(long, value_name = "LEAD|TIME", value_parser = parse_time)]
     time: Option<TimeSelector>,
     /// Forecast member, 0-based
@@ -740,18 +742,19 @@ pub(super) fn verify(args: VerifyArgs) -> Result<()> {
     let report = match &args.analysis {
         Some(path) => {
             let analysis = args.dataset.load(path)?;
-            let lead_time_s = match args.time {
-                None => None,
-                Some(TimeSelector::LeadTime { seconds }) => Some(seconds),
-                Some(TimeSelector::ValidTime { .. }) => {
-                    bail!("--time: give the forecast's lead time (e.g. 24h) when an analysis is given; the valid time is the analysis time")
-                }
+            // A lead time picks the forecast step (and the analysis step valid then); a valid
+            // time picks the analysis step valid then (and the forecast step valid then).
+            let (lead_time_s, analysis_time) = match args.time {
+                None => (None, None),
+                Some(TimeSelector::LeadTime { seconds }) => (Some(seconds), None),
+                Some(valid @ TimeSelector::ValidTime { .. }) => (None, Some(valid)),
             };
             let request = VerifyRequest {
                 items,
                 regions,
                 member: args.member,
                 lead_time_s,
+                analysis_time,
                 include_below_ground: args.include_below_ground,
                 ..VerifyRequest::default()
             };
