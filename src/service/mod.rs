@@ -50,7 +50,7 @@ use tonic_health::server::HealthReporter;
 use tonic_health::ServingStatus;
 
 pub use auth::ReloadSignal;
-pub use handlers::{HandlerSettings, HeightServiceHandlers};
+pub use handlers::{GuidanceInForce, HandlerSettings, HeightServiceHandlers};
 
 use crate::metrics::{Method, Recorder};
 use crate::pb;
@@ -58,7 +58,6 @@ use crate::pb::height_service_server::{HeightService, HeightServiceServer};
 use crate::products::guidance::GuidanceSettings;
 use crate::query::Limits;
 use crate::store::CycleStore;
-use handlers::GuidanceInForce;
 
 /// Encoded `FileDescriptorSet` of the `hypsogrid.v1` protos, for reflection.
 pub const FILE_DESCRIPTOR_SET: &[u8] = tonic::include_file_descriptor_set!("hypsogrid_descriptor");
