@@ -169,3 +169,68 @@ fn compute_rejects_an_inverted_layer_before_reading_anything() {
     assert!(!out.status.success());
     assert!(stderr(&out).contains("500:1000"), "{}", stderr(&out));
 }
+
+/// `guidance --box`: a box over the whole domain counts what the whole grid counts; a box
+/// around one grid point holds that point, with the category `--point` gives there; a box
+/// with points, or upside down, is refused.
+#[test]
+fn guidance_over_a_box_counts_the_points_inside_it() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = write_demo_cycle(dir.path()).unwrap();
+    let json_of = |extra: &[&str]| -> serde_json::Value {
+        let mut args = vec![os("guidance"), input.as_os_str(), os("--time"), os("24h")];
+        args.extend(extra.iter().map(|a| os(a)));
+        args.extend([os("--format"), os("json")]);
+        let out = hypsogrid(&args);
+        assert!(out.status.success(), "{extra:?}: {}", stderr(&out));
+        serde_json::from_slice(&out.stdout).expect("JSON")
+    };
+    let whole = json_of(&[]);
+    let boxed = json_of(&["--box", "-90,90,-180,180"]);
+    assert_eq!(whole["categories"], boxed["categories"]);
+    assert_eq!(whole["points"], boxed["points"]);
+    assert_eq!(boxed["box"]["south_deg"], -90.0);
+
+    // One grid point of the file (its own coordinates, read with the NetCDF library).
+    let file = netcdf::open(&input).unwrap();
+    let axis = |name: &str| -> Vec<f64> {
+        file.variable(name)
+            .unwrap_or_else(|| panic!("{name} in the demo file"))
+            .get_values::<f64, _>(..)
+            .unwrap()
+    };
+    let (lats, lons) = (axis("lat"), axis("lon"));
+    let (lat, lon) = (lats[lats.len() / 3], lons[lons.len() / 2]);
+    let one = json_of(&[
+        "--box",
+        &format!(
+            "{},{},{},{}",
+            lat - 0.01,
+            lat + 0.01,
+            lon - 0.01,
+            lon + 0.01
+        ),
+    ]);
+    assert_eq!(one["points"], 1, "{one}");
+    let at = json_of(&["--point", &format!("{lat},{lon}")]);
+    let category = at["points"][0]["category"].as_str().expect("category");
+    assert_eq!(one["categories"][category], 1, "{one}\n{at}");
+
+    let both = hypsogrid(&[
+        os("guidance"),
+        input.as_os_str(),
+        os("--box"),
+        os("-90,90,-180,180"),
+        os("--point"),
+        os("55,-40"),
+    ]);
+    assert_eq!(both.status.code(), Some(2), "{}", stderr(&both));
+    let upside = hypsogrid(&[
+        os("guidance"),
+        input.as_os_str(),
+        os("--box"),
+        os("60,50,-45,-25"),
+    ]);
+    assert_eq!(upside.status.code(), Some(1));
+    assert!(stderr(&upside).contains("--box"), "{}", stderr(&upside));
+}

@@ -13,7 +13,8 @@ use hypsogrid::ingest::time::format_rfc3339_utc;
 use hypsogrid::model::Layer;
 use hypsogrid::products::ensemble::{ensemble_at_points, ensemble_grids, EnsembleStatistic};
 use hypsogrid::products::guidance::{
-    guidance_at_point, guidance_grid, GuidanceGrid, GuidanceSettings, PointGuidance, CAUTION,
+    guidance_at_point, guidance_grid, guidance_on, GuidanceGrid, GuidanceSettings, PointGuidance,
+    CAUTION,
 };
 use hypsogrid::products::orders::{
     field_chart, field_isolines, guidance_chart, isolines_geojson, quantity_title, resolve,
@@ -286,6 +287,10 @@ pub(crate) struct GuidanceArgs {
     /// A point LAT,LON in degrees (repeat for several); without points, a summary of the grid
     #[arg(long = "point", value_name = "LAT,LON", allow_hyphen_values = true, value_parser = client::parse_point)]
     points: Vec<(f64, f64)>,
+    /// Summarise only the grid points in a box SOUTH,NORTH,WEST,EAST in degrees (an office's
+    /// region), computing nothing outside it
+    #[arg(long = "box", value_name = "S,N,W,E", allow_hyphen_values = true, value_parser = client::parse_bbox, conflicts_with = "points")]
+    area: Option<client::BoxArg>,
     /// Guidance thresholds (TOML; every key optional, the defaults are common practice)
     #[arg(long, value_name = "FILE")]
     settings: Option<PathBuf>,
@@ -301,10 +306,30 @@ pub(super) fn guidance(args: GuidanceArgs) -> Result<()> {
     let settings = guidance_settings(args.settings.as_deref())?;
     let resolved = resolve(&lc, args.when.time.as_ref(), args.when.member)?;
     let context = || format!("guidance on '{}'", args.input.display());
-    if args.points.is_empty() {
+    if let Some(b) = &args.area {
+        let bbox = BoundingBox {
+            south: b.south,
+            north: b.north,
+            west: b.west,
+            east: b.east,
+        };
+        let area = select_area(&lc, &bbox, 1).map_err(|e| anyhow::anyhow!("--box: {e}"))?;
+        let grid = guidance_on(
+            &lc,
+            (resolved.time_index, resolved.member),
+            &settings,
+            &area.rows,
+            &area.cols,
+        )
+        .with_context(context)?;
+        print!(
+            "{}",
+            render_guidance_summary(&grid, Some(&bbox), args.format)?
+        );
+    } else if args.points.is_empty() {
         let grid = guidance_grid(&lc, resolved.time_index, resolved.member, &settings)
             .with_context(context)?;
-        print!("{}", render_guidance_summary(&grid, args.format)?);
+        print!("{}", render_guidance_summary(&grid, None, args.format)?);
     } else {
         let points = args
             .points
@@ -329,7 +354,13 @@ pub(super) fn guidance(args: GuidanceArgs) -> Result<()> {
     Ok(())
 }
 
-fn render_guidance_summary(grid: &GuidanceGrid, format: OutputFormat) -> Result<String> {
+/// The category and rule counts of `grid` (over `area` when given, else the whole grid).
+fn render_guidance_summary(
+    grid: &GuidanceGrid,
+    area: Option<&BoundingBox>,
+    format: OutputFormat,
+) -> Result<String> {
+    let over = area.map(|b| format!("{}..{} °N, {}..{} °E", b.south, b.north, b.west, b.east));
     let summary = grid.summary();
     Ok(match format {
         OutputFormat::Json => {
@@ -347,6 +378,10 @@ fn render_guidance_summary(grid: &GuidanceGrid, format: OutputFormat) -> Result<
                 "lead_time_s": grid.lead_time_s,
                 "valid_time": grid.valid_time_unix_s.map(format_rfc3339_utc),
                 "member": grid.member,
+                "box": area.map(|b| serde_json::json!({
+                    "south_deg": b.south, "north_deg": b.north,
+                    "west_deg": b.west, "east_deg": b.east,
+                })),
                 "points": summary.points,
                 "categories": categories,
                 "rules": rules,
@@ -361,17 +396,24 @@ fn render_guidance_summary(grid: &GuidanceGrid, format: OutputFormat) -> Result<
             for (c, n) in &summary.categories {
                 csv.record([c.name().to_string(), n.to_string()]);
             }
-            format!("# {}\n{}", grid.caution, csv.finish())
+            let area_line = over
+                .as_deref()
+                .map(|o| format!("# box: {o}\n"))
+                .unwrap_or_default();
+            format!("# {}\n{area_line}{}", grid.caution, csv.finish())
         }
         OutputFormat::Table => {
             let mut out = format!(
-                "Precipitation-type guidance, lead {}{}, member {}: {} points\n",
+                "Precipitation-type guidance, lead {}{}, member {}: {} points{}\n",
                 lead_label(grid.lead_time_s),
                 grid.valid_time_unix_s
                     .map(|t| format!(" (valid {})", format_rfc3339_utc(t)))
                     .unwrap_or_default(),
                 grid.member,
-                summary.points
+                summary.points,
+                over.as_deref()
+                    .map(|o| format!(" in {o}"))
+                    .unwrap_or_default()
             );
             let mut table = Table::new(["category", "points", "share"]);
             for (c, n) in &summary.categories {
