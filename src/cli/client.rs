@@ -207,6 +207,17 @@ pub(crate) struct BoxArg {
     pub(crate) east: f64,
 }
 
+impl From<BoxArg> for hypsogrid::query::BoundingBox {
+    fn from(b: BoxArg) -> Self {
+        Self {
+            south: b.south,
+            north: b.north,
+            west: b.west,
+            east: b.east,
+        }
+    }
+}
+
 fn parse_numbers(text: &str, n: usize, what: &str) -> Result<Vec<f64>, String> {
     let parts: Vec<&str> = text.split(',').map(str::trim).collect();
     if parts.len() != n {

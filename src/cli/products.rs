@@ -221,17 +221,12 @@ fn parse_size(text: &str) -> Result<(u32, u32), String> {
     Ok((n(w)?, n(h)?))
 }
 
-/// Reads guidance thresholds from a TOML file, or the defaults (common practice).
-/// The guidance settings of the TOML file at `path` (validated), or the defaults; errors
-/// name the file.
+/// The guidance settings of the TOML file at `path` (validated), or the defaults (common
+/// practice); errors name the file.
 pub(super) fn guidance_settings(path: Option<&Path>) -> Result<GuidanceSettings> {
     match path {
         None => Ok(GuidanceSettings::default()),
-        Some(p) => {
-            let text = std::fs::read_to_string(p)
-                .with_context(|| format!("reading guidance settings '{}'", p.display()))?;
-            GuidanceSettings::from_toml_str(&text).with_context(|| format!("'{}'", p.display()))
-        }
+        Some(p) => Ok(GuidanceSettings::from_toml_file(p)?),
     }
 }
 
@@ -306,13 +301,8 @@ pub(super) fn guidance(args: GuidanceArgs) -> Result<()> {
     let settings = guidance_settings(args.settings.as_deref())?;
     let resolved = resolve(&lc, args.when.time.as_ref(), args.when.member)?;
     let context = || format!("guidance on '{}'", args.input.display());
-    if let Some(b) = &args.area {
-        let bbox = BoundingBox {
-            south: b.south,
-            north: b.north,
-            west: b.west,
-            east: b.east,
-        };
+    if let Some(b) = args.area {
+        let bbox = BoundingBox::from(b);
         let area = select_area(&lc, &bbox, 1).map_err(|e| anyhow::anyhow!("--box: {e}"))?;
         let grid = guidance_on(
             &lc,
@@ -585,12 +575,7 @@ pub(super) fn ensemble(args: EnsembleArgs) -> Result<()> {
     if args.points.is_empty() {
         let fields = ensemble_grids(&lc, &choice.quantity, resolved.time_index, &args.statistics)
             .with_context(context)?;
-        let bbox = args.bbox.map(|b| BoundingBox {
-            south: b.south,
-            north: b.north,
-            west: b.west,
-            east: b.east,
-        });
+        let bbox = args.bbox.map(BoundingBox::from);
         let selection = select_area(&lc, &bbox.unwrap_or(WHOLE_GLOBE), 1)?;
         for (&r, &lat) in selection.rows.iter().zip(&selection.latitudes) {
             for (&c, &lon) in selection.cols.iter().zip(&selection.longitudes) {
@@ -773,14 +758,7 @@ pub(super) fn verify(args: VerifyArgs) -> Result<()> {
         .collect();
     items.extend(args.layers.iter().map(|&l| Quantity::Thickness(l)));
     let mut regions = args.regions.clone();
-    regions.extend(args.boxes.iter().map(|b| {
-        Region::Box(BoundingBox {
-            south: b.south,
-            north: b.north,
-            west: b.west,
-            east: b.east,
-        })
-    }));
+    regions.extend(args.boxes.iter().map(|&b| Region::Box(b.into())));
     let report = match &args.analysis {
         Some(path) => {
             let analysis = args.dataset.load(path)?;

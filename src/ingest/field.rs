@@ -6,10 +6,10 @@
 //! A float variable (or an integer one of 16 bits or fewer) is read straight into the buffer
 //! that becomes the final array, a megabyte at a time when it is stored contiguously (so that
 //! masking, unpacking and conversion run in place on values still in the cache) and in one
-//! call when it is chunked; the reversal of a top-down level axis also happens in place. Wider types (double, 32- and 64-bit
-//! integers) are read as `f64` a slab at a time, so the transient copy is one slab. Only a file
-//! whose dimensions are not in member, time, level, latitude, longitude order costs one
-//! transient copy of the field (the permutation).
+//! call when it is chunked; the reversal of a top-down level axis also happens in place.
+//! Wider types (double, 32- and 64-bit integers) are read as `f64` a slab at a time, so the
+//! transient copy is one slab. Only a file whose dimensions are not in member, time, level,
+//! latitude, longitude order costs one transient copy of the field (the permutation).
 
 use netcdf::types::{FloatType, IntType, NcVariableType};
 use netcdf::{AttributeValue, Extent, Variable};
@@ -974,8 +974,8 @@ mod tests {
         }
     }
 
-    /// A `[time 3, level 5, lat 4, lon 6]` variable of raw values `i` (flat index) with
-    /// value `bad` at the flat indices `bad_at`, contiguous (classic format) or in chunks.
+    /// A `[time 3, level 5, lat 4, lon 6]` variable of raw values `i` (flat index), with
+    /// 5000 at the flat indices `bad_at`, contiguous (classic format) or in chunks.
     fn banded_fixture(
         dir: &std::path::Path,
         chunked: bool,

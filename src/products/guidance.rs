@@ -378,6 +378,20 @@ impl GuidanceSettings {
         Ok(settings)
     }
 
+    /// Reads settings from the TOML file at `path`, as [`GuidanceSettings::from_toml_str`];
+    /// every error names the file.
+    pub fn from_toml_file(path: &std::path::Path) -> Result<Self, GuidanceError> {
+        let file = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|e| GuidanceError::SettingsFile {
+            file: file.clone(),
+            message: format!("cannot read it: {e}"),
+        })?;
+        Self::from_toml_str(&text).map_err(|e| GuidanceError::SettingsFile {
+            file,
+            message: e.to_string(),
+        })
+    }
+
     /// Checks that every threshold is a finite number in its range.
     pub fn validate(&self) -> Result<(), GuidanceError> {
         let bad = |field: &'static str, value: f64, expected: &'static str| {
@@ -464,6 +478,14 @@ pub enum GuidanceError {
     #[error("guidance settings: {message}")]
     SettingsToml {
         /// The parser's message, naming the line and key.
+        message: String,
+    },
+    /// A settings file that cannot be read or used.
+    #[error("'{file}': {message}")]
+    SettingsFile {
+        /// The file.
+        file: String,
+        /// What is wrong with it: the reading or the settings error.
         message: String,
     },
     /// The member is not in the cycle.

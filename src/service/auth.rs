@@ -212,8 +212,8 @@ fn parse_digest(hex: &str) -> Option<[u8; SHA256_OUTPUT_LEN]> {
 
 /// A request to re-read the server's files (the token file, the guidance settings file),
 /// shared between whoever notices the need (the command line on SIGHUP) and the server task
-/// that re-reads. Requests made while no one
-/// waits are remembered (one at a time), so none is lost between two reloads.
+/// that re-reads. Requests made while no one waits are remembered (one at a time), so none
+/// is lost between two reloads.
 #[derive(Clone, Debug, Default)]
 pub struct ReloadSignal {
     notify: Arc<Notify>,

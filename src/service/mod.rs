@@ -352,11 +352,9 @@ async fn reload_on_request(
         }
         if let Some((in_force, path)) = &guidance {
             let read_path = path.clone();
-            let read = tokio::task::spawn_blocking(move || {
-                let text = std::fs::read_to_string(&read_path).map_err(|e| e.to_string())?;
-                GuidanceSettings::from_toml_str(&text).map_err(|e| e.to_string())
-            })
-            .await;
+            let read =
+                tokio::task::spawn_blocking(move || GuidanceSettings::from_toml_file(&read_path))
+                    .await;
             match read {
                 Ok(Ok(next)) => {
                     tracing::info!(

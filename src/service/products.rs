@@ -122,6 +122,13 @@ fn guidance_settings(
     Ok(s)
 }
 
+impl HeightServiceHandlers {
+    /// This server's guidance settings in force, with the request's thresholds.
+    fn guidance_for(&self, t: Option<&pb::GuidanceThresholds>) -> Result<GuidanceSettings, Status> {
+        guidance_settings(&self.settings().guidance.current(), t)
+    }
+}
+
 fn thresholds(s: &GuidanceSettings) -> pb::GuidanceThresholds {
     pb::GuidanceThresholds {
         thickness_1000_500_m: Some(s.critical_1000_500_m),
@@ -387,7 +394,7 @@ impl ProductService for HeightServiceHandlers {
                     product(&call, "field", move || field_chart(&lc, &choice, &options)).await?
                 }
                 pb::ChartKind::PrecipitationType => {
-                    let settings = guidance_settings(&self.settings().guidance.current(), r.thresholds.as_ref())?;
+                    let settings = self.guidance_for(r.thresholds.as_ref())?;
                     let (time, member) = (selection.time, selection.member);
                     product(&call, "field", move || {
                         guidance_chart(&lc, time.as_ref(), member, &settings, &options)
@@ -428,7 +435,7 @@ impl ProductService for HeightServiceHandlers {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let bbox = crate::query::BoundingBox::from(r.bbox.as_ref().ok_or_else(|| missing("bbox"))?);
             let stride = r.stride.unwrap_or(1) as usize;
-            let settings = guidance_settings(&self.settings().guidance.current(), r.thresholds.as_ref())?;
+            let settings = self.guidance_for(r.thresholds.as_ref())?;
             let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let limit = self.settings().limits.max_points;
@@ -496,8 +503,7 @@ impl ProductService for HeightServiceHandlers {
             let r = request.into_inner();
             let selection = Selection::from_wire(r.field.as_ref())?;
             let pts = points(&r.points)?;
-            let settings =
-                guidance_settings(&self.settings().guidance.current(), r.thresholds.as_ref())?;
+            let settings = self.guidance_for(r.thresholds.as_ref())?;
             let lc = find_cycle(&call.snapshot, &selection.cycle_id)?;
             let (time, member) = (selection.time, selection.member);
             let answer = product(&call, "field", move || {

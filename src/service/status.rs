@@ -249,7 +249,7 @@ pub fn product_error(e: ProductError, selection: &str) -> Status {
                 GuidanceError::Compute(_) => {
                     Status::failed_precondition(format!("{}: {message}", within("cycle_id")))
                 }
-                GuidanceError::SettingsToml { .. } => {
+                GuidanceError::SettingsToml { .. } | GuidanceError::SettingsFile { .. } => {
                     tracing::error!(error = %message, "guidance settings");
                     internal(
                         "the server's guidance settings are unusable; the server log has details",
