@@ -22,8 +22,12 @@ fn main() -> ExitCode {
     match cli::run(args) {
         Ok(()) => ExitCode::SUCCESS,
         Err(err) => {
-            // One line, the whole chain of causes: it names the file and the variable.
-            eprintln!("hypsogrid: error: {err:#}");
+            // One line, the whole chain of causes (each once): it names the file and the
+            // variable.
+            eprintln!(
+                "hypsogrid: error: {}",
+                cli::format::one_line(err.to_string(), err.source())
+            );
             ExitCode::FAILURE
         }
     }

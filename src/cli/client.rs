@@ -139,16 +139,10 @@ pub(crate) fn client_on(channel: Channel, token: BearerToken) -> Client {
 /// and for a failure below gRPC (a transport error) its causes, such as the TLS alert of a
 /// server that wants a client certificate.
 pub(crate) fn status_error(what: &str, status: Status) -> anyhow::Error {
-    let mut detail = status.message().to_string();
-    let mut source = std::error::Error::source(&status);
-    while let Some(cause) = source {
-        let text = cause.to_string();
-        if !detail.contains(&text) {
-            detail.push_str(": ");
-            detail.push_str(&text);
-        }
-        source = cause.source();
-    }
+    let detail = super::format::one_line(
+        status.message().to_string(),
+        std::error::Error::source(&status),
+    );
     // Timing decides which code a broken connection comes back as (UNKNOWN, CANCELLED).
     let hint = if detail.contains("transport error") {
         " (the connection broke below gRPC; a server started with --tls-client-ca does this to \
@@ -159,7 +153,7 @@ pub(crate) fn status_error(what: &str, status: Status) -> anyhow::Error {
     anyhow::anyhow!(
         "{what}: server answered {}: {}{hint}",
         code_name(status.code()),
-        detail.replace('\n', " ")
+        detail
     )
 }
 

@@ -188,9 +188,46 @@ pub(crate) fn bytes_label(bytes: u64) -> String {
     }
 }
 
+/// A message and the causes from `source` on as one line, `message: cause: cause`, leaving
+/// out a cause whose text the line already holds (many errors print their source in their
+/// own message too) and any line breaks.
+pub(crate) fn one_line(
+    message: String,
+    mut source: Option<&(dyn std::error::Error + 'static)>,
+) -> String {
+    let mut text = message;
+    while let Some(cause) = source {
+        let more = cause.to_string();
+        if !text.contains(&more) {
+            text.push_str(": ");
+            text.push_str(&more);
+        }
+        source = cause.source();
+    }
+    text.replace('\n', " ")
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn one_line_keeps_each_cause_once_and_on_one_line() {
+        // The shape of an ingest error: the message already holds its source's text, and an
+        // outer error repeats the message.
+        let io = std::io::Error::new(std::io::ErrorKind::NotFound, "no such file");
+        let inner = anyhow::Error::new(io).context("cannot read 'a.nc': no such file");
+        let outer = inner.context("loading 'a.nc'");
+        assert_eq!(
+            one_line(outer.to_string(), outer.source()),
+            "loading 'a.nc': cannot read 'a.nc': no such file"
+        );
+        let broken = std::io::Error::other("line one\nline two");
+        assert_eq!(
+            one_line("call failed".to_string(), Some(&broken)),
+            "call failed: line one line two"
+        );
+    }
 
     #[test]
     fn table_aligns_numbers_right_and_text_left() {

@@ -8,7 +8,7 @@
 mod client;
 mod compute;
 mod demo;
-mod format;
+pub(crate) mod format;
 mod products;
 mod serve;
 
