@@ -20,6 +20,7 @@ pub mod output;
 pub mod physics;
 pub mod products;
 pub mod query;
+pub mod served;
 pub mod service;
 pub mod store;
 pub mod watch;

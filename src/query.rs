@@ -25,19 +25,24 @@
 //! is allocated for it.
 
 use std::path::{Path, PathBuf};
+use std::sync::Mutex;
 use std::time::{Instant, SystemTime};
 
 use ndarray::{s, ArrayView1, ArrayView3, Axis};
 use rayon::prelude::*;
 
-use crate::compute::{read_and_compute, ColumnScratch, ComputeConfig, StepColumns};
+use crate::compute::{
+    heights_method, read_for_serving, ColumnScratch, ComputeConfig, ComputeError, PendingSteps,
+    StepColumns,
+};
 use crate::grid::{locate, SampleError, Stencil};
 use crate::ingest::time::{format_rfc3339_utc, parse_date_time};
 use crate::ingest::IngestConfig;
-use crate::model::{Cycle, Heights, Layer, Vertical};
+use crate::model::{Cycle, Layer, Vertical};
 use crate::physics::column::{ColumnNodes, HeightAtPressure};
 use crate::physics::hypsometric::{isothermal_height, scale_height};
 use crate::physics::Constants;
+use crate::served::{ServedHeights, StepHeights};
 
 /// Relative tolerance within which a requested pressure counts as lying on a level.
 const ON_LEVEL_RELATIVE: f64 = 1e-6;
@@ -52,6 +57,11 @@ pub const FLAG_BELOW_GROUND: u8 = 1;
 pub const FLAG_MISSING: u8 = 2;
 
 /// One cycle as served: the fields read from the file and the heights on every level.
+///
+/// A cycle is served as soon as its file has been read ([`LoadedCycle::read`]); the heights
+/// of steps still pending then ([`LoadedCycle::finish_heights`]) are computed after. Until a
+/// step's heights are in, queries on it that need few columns rebuild them exactly as the
+/// batch does, and the others wait for the step (see [`ServedHeights`]).
 #[derive(Debug)]
 pub struct LoadedCycle {
     /// The file name, unique within the data folder; clients name cycles by it.
@@ -60,26 +70,49 @@ pub struct LoadedCycle {
     pub path: PathBuf,
     /// The fields as read.
     pub cycle: Cycle,
-    /// Heights on every level (computed with no layers: thickness is answered per query).
-    pub heights: Heights,
+    /// Heights on every level (computed with no layers: thickness is answered per query),
+    /// step by step.
+    pub heights: ServedHeights,
     /// The settings the heights were computed with; columns are rebuilt with the same.
     pub config: ComputeConfig,
-    /// When the load finished.
+    /// When the cycle became servable.
     pub loaded_at: SystemTime,
-    /// Seconds spent reading and computing.
+    /// Seconds spent reading (and computing what was computed during the read) until the
+    /// cycle was servable.
     pub load_seconds: f64,
-    /// Bytes held by the fields and the heights (for the store's memory budget).
+    /// Bytes held by the fields and the heights, once all computed (for the store's
+    /// memory budget).
     pub bytes: usize,
+    /// The steps still to compute, until [`LoadedCycle::finish_heights`] takes them.
+    pending: Mutex<Option<PendingSteps>>,
 }
 
 pub use crate::compute::LoadError;
 
 impl LoadedCycle {
-    /// Reads a cycle and computes its heights on every level.
+    /// Reads a cycle and computes its heights on every level: [`LoadedCycle::read`] then
+    /// [`LoadedCycle::finish_heights`].
     ///
     /// The thickness layers of `compute` are ignored: thickness is answered per query from
     /// the heights and the rebuilt columns, so the stored config has no layers.
     pub fn load(
+        path: &Path,
+        ingest: &IngestConfig,
+        compute: &ComputeConfig,
+    ) -> Result<Self, LoadError> {
+        let lc = Self::read(path, ingest, compute)?;
+        lc.finish_heights();
+        Ok(lc)
+    }
+
+    /// Reads a cycle, ready to serve: the heights of the steps computed while later steps
+    /// were read are in, the rest (at least the last step) pending until
+    /// [`LoadedCycle::finish_heights`].
+    ///
+    /// # Errors
+    /// The file cannot be read as a cycle, or its heights cannot be computed with
+    /// `compute` (both found before anything is served).
+    pub fn read(
         path: &Path,
         ingest: &IngestConfig,
         compute: &ComputeConfig,
@@ -89,12 +122,12 @@ impl LoadedCycle {
             layers: Vec::new(),
             ..compute.clone()
         };
-        let (cycle, heights) = read_and_compute(path, ingest, &config, &|_, _| {})?;
+        let (cycle, heights, pending) = read_for_serving(path, ingest, &config)?;
         let id = path
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_else(|| path.display().to_string());
-        let bytes = held_bytes(&cycle, &heights);
+        let bytes = held_bytes(&cycle);
         Ok(Self {
             id,
             path: path.to_path_buf(),
@@ -104,7 +137,77 @@ impl LoadedCycle {
             loaded_at: SystemTime::now(),
             load_seconds: started.elapsed().as_secs_f64(),
             bytes,
+            pending: Mutex::new(Some(pending)),
         })
+    }
+
+    /// A cycle held in memory (`cycle.source` is its path), its heights all pending until
+    /// [`LoadedCycle::finish_heights`].
+    ///
+    /// # Errors
+    /// The heights cannot be computed with `compute`.
+    pub fn from_cycle(
+        id: &str,
+        cycle: Cycle,
+        compute: &ComputeConfig,
+    ) -> Result<Self, ComputeError> {
+        let config = ComputeConfig {
+            layers: Vec::new(),
+            ..compute.clone()
+        };
+        let method = heights_method(&cycle, &config)?;
+        let (members, times, ..) = cycle.temperature.dim();
+        let pending = PendingSteps::for_cycle(&cycle, &config);
+        Ok(Self {
+            id: id.to_string(),
+            path: cycle.source.clone(),
+            bytes: held_bytes(&cycle),
+            heights: ServedHeights::pending(members, times, method),
+            cycle,
+            config,
+            loaded_at: SystemTime::now(),
+            load_seconds: 0.0,
+            pending: Mutex::new(Some(pending)),
+        })
+    }
+
+    /// A cycle held in memory with its heights all computed.
+    ///
+    /// # Errors
+    /// The heights cannot be computed with `compute`.
+    pub fn computed(id: &str, cycle: Cycle, compute: &ComputeConfig) -> Result<Self, ComputeError> {
+        let lc = Self::from_cycle(id, cycle, compute)?;
+        lc.finish_heights();
+        Ok(lc)
+    }
+
+    /// Computes the heights of the steps still pending, on the calling thread (rows in
+    /// parallel on rayon's threads), releasing waiting queries step by step. Returns
+    /// the seconds it took; a second call (or one on a cycle whose heights are all in)
+    /// returns at once.
+    pub fn finish_heights(&self) -> f64 {
+        let started = Instant::now();
+        let pending = self
+            .pending
+            .lock()
+            .unwrap_or_else(std::sync::PoisonError::into_inner)
+            .take();
+        if let Some(pending) = pending {
+            pending.finish(&self.cycle, &self.config, &self.heights);
+        }
+        started.elapsed().as_secs_f64()
+    }
+
+    /// The heights of step (`member`, `time`), waiting while they are computed.
+    ///
+    /// # Errors
+    /// As [`ServedHeights::wait`], with the cycle named.
+    pub fn step_heights(&self, member: usize, time: usize) -> Result<&StepHeights, QueryError> {
+        self.heights
+            .wait(member, time)
+            .map_err(|e| QueryError::HeightsUnavailable {
+                detail: format!("cycle '{}': {e}", self.id),
+            })
     }
 
     /// Reference time, seconds since the Unix epoch, when the file gives one.
@@ -123,28 +226,18 @@ impl LoadedCycle {
     }
 }
 
-/// Bytes held by the fields of a cycle and its heights.
-pub(crate) fn held_bytes(cycle: &Cycle, heights: &Heights) -> usize {
+/// Bytes held by the fields of a cycle and its heights on every level (an `f32` height and
+/// a `u8` flag per point-level), once all computed.
+pub(crate) fn held_bytes(cycle: &Cycle) -> usize {
     let f32s = cycle.temperature.len()
         + cycle.humidity.as_ref().map_or(0, |h| h.values.len())
         + cycle
             .surface
             .as_ref()
             .map_or(0, |s| s.pressure_pa.len() + s.height_m.len())
-        + cycle.file_heights.as_ref().map_or(0, |z| z.len())
-        + heights.geopotential_height.len()
-        + heights
-            .thickness
-            .iter()
-            .map(|t| t.values.len())
-            .sum::<usize>();
-    let u8s = heights.below_ground.len()
-        + heights
-            .thickness
-            .iter()
-            .map(|t| t.below_ground.len())
-            .sum::<usize>();
-    f32s * std::mem::size_of::<f32>() + u8s
+        + cycle.file_heights.as_ref().map_or(0, |z| z.len());
+    let point_levels = cycle.temperature.len();
+    f32s * std::mem::size_of::<f32>() + point_levels * (std::mem::size_of::<f32>() + 1)
 }
 
 /// What to compute.
@@ -427,6 +520,13 @@ pub enum QueryError {
         field: String,
         /// How large the answer would be, and the limit.
         message: String,
+    },
+    /// The heights of the step asked for could not be computed (the computation after the
+    /// read failed or stopped); the cycle's other steps may still answer.
+    #[error("{detail}")]
+    HeightsUnavailable {
+        /// Which cycle and step, and why.
+        detail: String,
     },
 }
 
@@ -831,15 +931,26 @@ fn isothermal_height_above_top(nodes: &ColumnNodes, p_pa: f64, c: &Constants) ->
     z.is_finite().then_some(z)
 }
 
+/// What a query does about a step whose heights are still being computed (see
+/// [`ServedHeights`]).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum WhilePending {
+    /// Wait for the step: for queries over many columns (areas), where rebuilding every
+    /// column would take longer than the wait (17 ms for 200 × 200 at 0.5°, the computation
+    /// of a whole step about as long).
+    Wait,
+    /// Rebuild the columns asked for, as the batch does: for queries at a few points.
+    Rebuild,
+}
+
 /// Answers the planned quantities at grid columns of one (member, time) step.
 struct Evaluator<'a> {
     plans: &'a [Plan],
     allow_extrapolation: bool,
     constants: Constants,
-    /// Batch heights `[level, lat, lon]` of the step.
-    z: ArrayView3<'a, f32>,
-    /// Batch below-ground flags `[level, lat, lon]` of the step.
-    below: ArrayView3<'a, u8>,
+    /// Heights and below-ground flags `[level, lat, lon]` of the step; `None` while they
+    /// are being computed: levels are then read from rebuilt columns.
+    stored: Option<(ArrayView3<'a, f32>, ArrayView3<'a, u8>)>,
     /// Column builder and its scratch, when some quantity needs a rebuilt column.
     columns: Option<(StepColumns<'a>, ColumnScratch)>,
     /// The column held in the scratch.
@@ -850,13 +961,19 @@ impl<'a> Evaluator<'a> {
     fn new(
         lc: &'a LoadedCycle,
         plans: &'a [Plan],
-        member: usize,
-        time: usize,
+        (member, time): (usize, usize),
         allow_extrapolation: bool,
+        pending: WhilePending,
     ) -> Result<Self, QueryError> {
-        let needs_columns = plans
-            .iter()
-            .any(|p| matches!(p, Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. }));
+        let stored = match pending {
+            WhilePending::Wait => Some(lc.step_heights(member, time)?),
+            WhilePending::Rebuild => lc.heights.ready(member, time),
+        }
+        .map(|h| (h.geopotential_height.view(), h.below_ground.view()));
+        let needs_columns = stored.is_none()
+            || plans
+                .iter()
+                .any(|p| matches!(p, Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. }));
         let columns = if needs_columns {
             let step = StepColumns::new(&lc.cycle, &lc.config, member, time)
                 .map_err(|e| out_of_range("quantities", format!("cycle '{}': {e}", lc.id)))?;
@@ -867,24 +984,38 @@ impl<'a> Evaluator<'a> {
         Ok(Self {
             plans,
             allow_extrapolation,
-            constants: lc.heights.constants,
-            z: lc
-                .heights
-                .geopotential_height
-                .slice(s![member, time, .., .., ..]),
-            below: lc.heights.below_ground.slice(s![member, time, .., .., ..]),
+            constants: lc.cycle.constants,
+            stored,
             columns,
             built: None,
         })
     }
 
-    fn nodes(&mut self, row: usize, col: usize) -> Option<&ColumnNodes> {
+    /// The column at (`row`, `col`), built once for all the quantities asked there.
+    fn column(&mut self, row: usize, col: usize) -> Option<&ColumnScratch> {
         let (step, scratch) = self.columns.as_mut()?;
         if self.built != Some((row, col)) {
             step.build(row, col, scratch);
             self.built = Some((row, col));
         }
-        Some(&scratch.nodes)
+        Some(scratch)
+    }
+
+    fn nodes(&mut self, row: usize, col: usize) -> Option<&ColumnNodes> {
+        self.column(row, col).map(|s| &s.nodes)
+    }
+
+    /// Height (as stored: `f32`) and below-ground flag of level `k` at (`row`, `col`): the
+    /// step's stored heights, or while they are computed the rebuilt column, which the
+    /// batch stores as it is.
+    fn level(&mut self, k: usize, row: usize, col: usize) -> (f64, bool) {
+        if let Some((z, below)) = &self.stored {
+            return (f64::from(z[[k, row, col]]), below[[k, row, col]] != 0);
+        }
+        match self.column(row, col) {
+            Some(s) => (f64::from(s.height[k] as f32), s.below[k]),
+            None => (f64::NAN, false),
+        }
     }
 
     /// Value (geopotential metres) and flags of quantity `q` at grid column (`row`, `col`).
@@ -892,18 +1023,18 @@ impl<'a> Evaluator<'a> {
         const MISSING: (f64, u8) = (f64::NAN, FLAG_MISSING);
         match self.plans[q] {
             Plan::Level(k) => {
-                let z = f64::from(self.z[[k, row, col]]);
+                let (z, below) = self.level(k, row, col);
                 if z.is_finite() {
-                    (z, flag(self.below[[k, row, col]] != 0))
+                    (z, flag(below))
                 } else {
                     MISSING
                 }
             }
             Plan::LevelThickness { bottom, top } => {
-                let zb = f64::from(self.z[[bottom, row, col]]);
-                let zt = f64::from(self.z[[top, row, col]]);
+                let (zb, below) = self.level(bottom, row, col);
+                let (zt, _) = self.level(top, row, col);
                 if zb.is_finite() && zt.is_finite() {
-                    (zt - zb, flag(self.below[[bottom, row, col]] != 0))
+                    (zt - zb, flag(below))
                 } else {
                     MISSING
                 }
@@ -1279,8 +1410,9 @@ pub struct AreaShape {
     /// Longitudes (columns) of the answer.
     pub cols: usize,
     /// Whether every quantity is copied from the stored heights (heights on levels and
-    /// thicknesses between levels): a few nanoseconds a value, where a quantity between
-    /// levels rebuilds each column (about a microsecond a value).
+    /// thicknesses between levels) and the step's heights are in: a few nanoseconds a
+    /// value, where a quantity between levels rebuilds each column (about a microsecond a
+    /// value) and a step still being computed is waited for.
     pub stored: bool,
 }
 
@@ -1290,10 +1422,11 @@ pub fn area_shape(lc: &LoadedCycle, q: &AreaQuery) -> Result<AreaShape, QueryErr
     Ok(AreaShape {
         rows: plan.selection.rows.len(),
         cols: plan.selection.cols.len(),
-        stored: plan
-            .plans
-            .iter()
-            .all(|p| matches!(p, Plan::Level(_) | Plan::LevelThickness { .. })),
+        stored: lc.heights.ready(q.member, plan.time).is_some()
+            && plan
+                .plans
+                .iter()
+                .all(|p| matches!(p, Plan::Level(_) | Plan::LevelThickness { .. })),
     })
 }
 
@@ -1369,7 +1502,13 @@ pub fn grid_field(
         .zip(flags.axis_iter_mut(Axis(0)).into_par_iter())
         .enumerate()
         .map(|(row, (mut v_row, mut f_row))| {
-            let mut ev = Evaluator::new(lc, plans, member, time_index, allow_extrapolation)?;
+            let mut ev = Evaluator::new(
+                lc,
+                plans,
+                (member, time_index),
+                allow_extrapolation,
+                WhilePending::Wait,
+            )?;
             for col in 0..cols {
                 let (v, f) = ev.value(0, row, col);
                 v_row[col] = v as f32;
@@ -1419,7 +1558,13 @@ fn fill_area(
     let sel = &plan.selection;
     let rows = &sel.rows[row_start..row_end];
     let n = rows.len() * sel.cols.len();
-    let mut ev = Evaluator::new(lc, &plan.plans, q.member, plan.time, q.allow_extrapolation)?;
+    let mut ev = Evaluator::new(
+        lc,
+        &plan.plans,
+        (q.member, plan.time),
+        q.allow_extrapolation,
+        WhilePending::Wait,
+    )?;
     let mut fields: Vec<QuantityField> = q
         .quantities
         .iter()
@@ -1434,6 +1579,12 @@ fn fill_area(
     // (no stride, no seam) are read as slices of the stored rows; others are gathered first.
     let run = contiguous_run(&sel.cols);
     let ncols = sel.cols.len();
+    // The evaluator waited for the step's heights, so they are stored.
+    let Some((z_step, below_step)) = ev.stored else {
+        return Err(QueryError::HeightsUnavailable {
+            detail: format!("cycle '{}': the heights of the step are not stored", lc.id),
+        });
+    };
     let mut gathered = RowGather::default();
     let mut column_plans = false;
     for (qi, field) in fields.iter_mut().enumerate() {
@@ -1445,9 +1596,9 @@ fn fill_area(
                 continue;
             }
         };
-        let zb = ev.z.index_axis(Axis(0), bottom);
-        let zt = top.map(|k| ev.z.index_axis(Axis(0), k));
-        let below = ev.below.index_axis(Axis(0), bottom);
+        let zb = z_step.index_axis(Axis(0), bottom);
+        let zt = top.map(|k| z_step.index_axis(Axis(0), k));
+        let below = below_step.index_axis(Axis(0), bottom);
         let out = field
             .values
             .chunks_exact_mut(ncols)
@@ -1550,7 +1701,15 @@ pub fn position(
     }
     let mut evaluators: Vec<Evaluator<'_>> = times
         .iter()
-        .map(|&t| Evaluator::new(lc, &plans, q.member, t, q.allow_extrapolation))
+        .map(|&t| {
+            Evaluator::new(
+                lc,
+                &plans,
+                (q.member, t),
+                q.allow_extrapolation,
+                WhilePending::Rebuild,
+            )
+        })
         .collect::<Result<_, _>>()?;
     let nq = plans.len();
     // Parsed once, not once per sample.
@@ -1596,7 +1755,7 @@ pub fn profile(lc: &LoadedCycle, q: &ProfileQuery) -> Result<Profile, QueryError
         .map_err(|e| out_of_range("latitude", format!("cycle '{}': {e}", lc.id)))?;
     let nlev = lc.cycle.vertical.levels();
     let mut scratch = ColumnScratch::new(nlev);
-    let c = lc.heights.constants;
+    let c = lc.cycle.constants;
     let temperature = lc.cycle.temperature.slice(s![q.member, time, .., .., ..]);
     let mut levels: Vec<ProfileLevel> = (0..nlev)
         .map(|_| ProfileLevel {
@@ -1742,8 +1901,16 @@ pub fn trajectory(
         .iter()
         .enumerate()
         .map(|(t, &u)| {
-            u.then(|| Evaluator::new(lc, &plans, q.member, t, q.allow_extrapolation))
-                .transpose()
+            u.then(|| {
+                Evaluator::new(
+                    lc,
+                    &plans,
+                    (q.member, t),
+                    q.allow_extrapolation,
+                    WhilePending::Rebuild,
+                )
+            })
+            .transpose()
         })
         .collect();
     let mut evaluators = evaluators?;

@@ -163,9 +163,10 @@ impl CycleStore {
     /// Adds a cycle, replacing one with the same id; clears a failure recorded for its path;
     /// then evicts beyond `keep_newest` cycles or the memory budget, oldest reference time
     /// first, noting why.
-    pub fn insert(&self, cycle: LoadedCycle) {
+    pub fn insert(&self, cycle: LoadedCycle) -> Arc<LoadedCycle> {
         let config = self.config;
         let cycle = Arc::new(cycle);
+        let inserted = Arc::clone(&cycle);
         self.update(|s| {
             s.cycles.retain(|c| c.id != cycle.id);
             s.failures.retain(|f| f.path != cycle.path);
@@ -206,6 +207,7 @@ impl CycleStore {
             }
             true
         });
+        inserted
     }
 
     /// Records that a file failed to load (replacing an earlier failure of the same path).
@@ -269,7 +271,7 @@ impl CycleStore {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::compute::{compute_heights, ComputeConfig};
+    use crate::compute::ComputeConfig;
     use crate::model::{Cycle, Grid, Vertical};
     use crate::physics::Constants;
     use ndarray::Array5;
@@ -298,19 +300,7 @@ mod tests {
             variables: Vec::new(),
             notes: Vec::new(),
         };
-        let config = ComputeConfig::default();
-        let heights = compute_heights(&cycle, &config, &|_| {}).unwrap();
-        let bytes = crate::query::held_bytes(&cycle, &heights);
-        LoadedCycle {
-            id: id.to_string(),
-            path: cycle.source.clone(),
-            cycle,
-            heights,
-            config,
-            loaded_at: SystemTime::now(),
-            load_seconds: 0.0,
-            bytes,
-        }
+        LoadedCycle::computed(id, cycle, &ComputeConfig::default()).unwrap()
     }
 
     #[test]

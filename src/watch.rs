@@ -273,7 +273,8 @@ async fn load_one(
 ) {
     let (p, i, c) = (path.to_path_buf(), ingest.clone(), compute.clone());
     let loaded = tokio::task::spawn_blocking(move || {
-        let result = LoadedCycle::load(&p, &i, &c).map_err(|e| e.to_string());
+        // Read and checked: servable now; the heights of its last step(s) follow below.
+        let result = LoadedCycle::read(&p, &i, &c).map_err(|e| e.to_string());
         // The fingerprint after the read: if it moved, the read may have seen a partial file.
         let after = std::fs::metadata(&p).ok().map(|m| fingerprint(&m));
         (result, after)
@@ -303,7 +304,29 @@ async fn load_one(
                 bytes = cycle.bytes,
                 "cycle loaded"
             );
-            store.insert(cycle);
+            let served = store.insert(cycle);
+            // Queries already see the cycle; those that need the heights of steps still
+            // pending rebuild their columns or wait for them (crate::served). The watcher
+            // waits too, so that two cycles are never computed at once.
+            let finished = tokio::task::spawn_blocking(move || {
+                let seconds = served.finish_heights();
+                (served, seconds)
+            })
+            .await;
+            match finished {
+                Ok((served, seconds)) => tracing::info!(
+                    file = %path.display(),
+                    heights_seconds = seconds,
+                    steps = served.heights.steps(),
+                    steps_with_heights = served.heights.ready_steps(),
+                    "cycle heights computed"
+                ),
+                Err(e) => tracing::error!(
+                    file = %path.display(),
+                    error = %e,
+                    "computing the cycle's heights stopped; its steps still pending answer with an error"
+                ),
+            }
             tracked.status = Status::Loaded;
             report.loaded.push(path.to_path_buf());
         }

@@ -151,7 +151,7 @@ fn probability_mean_and_spread_of_the_1000_500_thickness_are_the_known_values() 
     ));
     assert_eq!(lc.cycle.members, MEMBERS);
     assert_eq!(
-        lc.heights.constants.dry_air_gas_constant, DRY_AIR_GAS_CONSTANT,
+        lc.cycle.constants.dry_air_gas_constant, DRY_AIR_GAS_CONSTANT,
         "the test's closed form uses the crate's default R_d"
     );
     let q = thickness_1000_500();

@@ -8,7 +8,7 @@
 
 use std::path::{Path, PathBuf};
 
-use hypsogrid::compute::{compute_heights, ComputeConfig};
+use hypsogrid::compute::ComputeConfig;
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::Layer;
 use hypsogrid::physics::column::{ColumnAnchor, ColumnNodes};
@@ -733,7 +733,7 @@ fn a_cycle_without_humidity_has_no_wet_bulb_level_and_says_so() {
     // The demo cycle with its humidity removed (heights recomputed dry).
     let (_dir, mut lc) = demo_cycle();
     lc.cycle.humidity = None;
-    lc.heights = compute_heights(&lc.cycle, &lc.config, &|_| {}).expect("heights");
+    lc = LoadedCycle::computed(&lc.id, lc.cycle, &lc.config).expect("heights");
     let g = guidance_grid(&lc, 0, 0, &GuidanceSettings::default()).expect("guidance");
     assert!(g.wet_bulb_zero_m.iter().all(|v| v.is_nan()));
     assert!(g

@@ -17,6 +17,7 @@ use common::fixtures::{hybrid_variants, isobaric_variants, FixtureSpec, Humidity
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig, LoadError};
 use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
 use hypsogrid::model::{Cycle, Heights, Layer};
+use hypsogrid::query::LoadedCycle;
 
 /// Layers on and between the fixture's levels (1000 925 850 700 500 300 200 100 hPa).
 fn config() -> ComputeConfig {
@@ -139,6 +140,64 @@ fn every_variant_reads_and_computes_overlapped_as_in_two_passes() {
         same_cycle(&label, &cycle, &cycle2);
         same_heights(&label, &heights, &heights2);
     }
+}
+
+/// A cycle read for serving holds the heights of the steps computed while later steps were
+/// read, leaves at least the last step pending, and once finished holds, step for step and
+/// bit for bit, what the batch computes (with no layers: a served cycle answers thickness
+/// per query).
+#[test]
+fn every_variant_reads_for_serving_and_finishes_as_the_batch_computes() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    let served_config = ComputeConfig::default();
+    let mut overlapped = 0;
+    for (label, spec) in variants() {
+        let path = write(dir.path(), &label, &spec);
+        let cycle = read_cycle(&path, &ingest).expect(&label);
+        let batch = compute_heights(&cycle, &served_config, &|_| {}).expect(&label);
+        let lc =
+            LoadedCycle::read(&path, &ingest, &config()).unwrap_or_else(|e| panic!("{label}: {e}"));
+        same_cycle(&label, &cycle, &lc.cycle);
+        assert!(
+            lc.config.layers.is_empty(),
+            "{label}: served without layers"
+        );
+        let (members, times, ..) = cycle.temperature.dim();
+        let pending = lc.heights.pending_steps();
+        assert!(
+            pending.contains(&(members - 1, times - 1)),
+            "{label}: the last step is left to compute after the read: {pending:?}"
+        );
+        overlapped += usize::from(pending.len() < members * times);
+        // Steps already in are the batch's.
+        for m in 0..members {
+            for t in 0..times {
+                if let Some(step) = lc.heights.ready(m, t) {
+                    let what = format!("{label}: step ({m}, {t}) computed while reading");
+                    same_bits(
+                        &what,
+                        &step.geopotential_height,
+                        batch.geopotential_height.slice(s![m, t, .., .., ..]),
+                    );
+                }
+            }
+        }
+        assert!(lc.finish_heights() >= 0.0);
+        assert!(lc.heights.pending_steps().is_empty(), "{label}");
+        assert_eq!(lc.heights.ready_steps(), members * times, "{label}");
+        assert_eq!(lc.heights.method(), batch.method, "{label}");
+        let (z, below) = lc.heights.to_arrays().expect(&label);
+        same_bits(&format!("{label}: heights"), &z, &batch.geopotential_height);
+        assert_eq!(below, batch.below_ground, "{label}: below-ground flags");
+        // A second call finds nothing left to do.
+        lc.finish_heights();
+        assert_eq!(lc.heights.ready_steps(), members * times, "{label}");
+    }
+    assert!(
+        overlapped >= 2,
+        "the multi-step variants compute steps while reading"
+    );
 }
 
 /// The steps handed over while reading are the cycle's own values at those steps, in file
@@ -268,7 +327,7 @@ fn overwrite(path: &Path, name: &str, index: &[usize], value: f32) {
         .expect("writing one value");
 }
 
-fn error_of(r: Result<(Cycle, Heights), LoadError>) -> String {
+fn error_of<T>(r: Result<T, LoadError>) -> String {
     match r {
         Ok(_) => panic!("a bad file was read"),
         Err(LoadError::Ingest(e)) => e.to_string(),
@@ -296,6 +355,9 @@ fn a_bad_value_in_a_later_step_gives_the_whole_read_error() {
         };
         let overlapped = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
         assert_eq!(overlapped, whole);
+        // Nothing is served from such a file: its read for serving fails alike.
+        let served = error_of(LoadedCycle::read(&path, &ingest, &config()));
+        assert_eq!(served, whole);
         assert!(
             whole.contains(&format!("'{name}'")) && whole.contains("time=2, plev=4"),
             "{whole}"

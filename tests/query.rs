@@ -12,7 +12,7 @@
 
 use std::path::PathBuf;
 use std::sync::OnceLock;
-use std::time::{Instant, SystemTime};
+use std::time::Instant;
 
 use ndarray::{Array4, Array5};
 
@@ -151,17 +151,7 @@ fn synthetic(
         variables: Vec::new(),
         notes: Vec::new(),
     };
-    let heights = compute_heights(&cycle, &config, &|_| {}).unwrap();
-    LoadedCycle {
-        id: "synthetic.nc".to_string(),
-        path: cycle.source.clone(),
-        cycle,
-        heights,
-        config,
-        loaded_at: SystemTime::now(),
-        load_seconds: 0.0,
-        bytes: 0,
-    }
+    LoadedCycle::computed("synthetic.nc", cycle, &config).unwrap()
 }
 
 fn standard_reference() -> ComputeConfig {
@@ -408,7 +398,7 @@ fn a_box_across_the_antimeridian_selects_the_right_columns_in_order() {
         assert_eq!(a.latitudes, vec![10.0, 0.0, -10.0]);
         for (i, r) in [2usize, 1, 0].into_iter().enumerate() {
             for (j, &c) in cols.iter().enumerate() {
-                let z = lc.heights.geopotential_height[[0, 0, 1, r, c]];
+                let z = lc.heights.ready(0, 0).unwrap().geopotential_height[[1, r, c]];
                 assert_eq!(
                     a.fields[0].values[i * cols.len() + j],
                     z,
@@ -436,7 +426,7 @@ fn bilinear_and_nearest_follow_the_closed_form_of_isothermal_columns() {
         None,
         standard_reference(),
     );
-    let z1000 = f64::from(lc.heights.geopotential_height[[0, 0, 0, 0, 0]]);
+    let z1000 = f64::from(lc.heights.ready(0, 0).unwrap().geopotential_height[[0, 0, 0]]);
     let closed = |t: f64| z1000 + rd_over_g0_1976() * t * 2f64.ln();
     let mut q = position_query(
         vec![(40.5, 10.25), (40.5, 11.75)],
@@ -458,7 +448,7 @@ fn bilinear_and_nearest_follow_the_closed_form_of_isothermal_columns() {
     let nearest = position(&lc, &q, &Limits::default()).unwrap();
     // 10.25 is nearest to column 0 (10 E), 11.75 to column 2 (12 E).
     for (series, c) in nearest.iter().zip([0usize, 2]) {
-        let z = lc.heights.geopotential_height[[0, 0, 1, 1, c]];
+        let z = lc.heights.ready(0, 0).unwrap().geopotential_height[[1, 1, c]];
         assert_eq!(series.samples[0].values[0], f64::from(z));
     }
 }
@@ -490,10 +480,10 @@ fn a_time_series_covers_every_lead_time_when_none_is_named() {
     let reference = lc.reference_time_unix_s().unwrap();
     for (t, s) in series[0].samples.iter().enumerate() {
         // A point on a grid point takes that grid point's value.
-        let z = lc.heights.geopotential_height[[0, t, k700, r, c]];
+        let z = lc.heights.ready(0, t).unwrap().geopotential_height[[k700, r, c]];
         assert_eq!(s.values[0], f64::from(z));
-        let th = lc.heights.geopotential_height[[0, t, k500, r, c]]
-            - lc.heights.geopotential_height[[0, t, 0, r, c]];
+        let th = lc.heights.ready(0, t).unwrap().geopotential_height[[k500, r, c]]
+            - lc.heights.ready(0, t).unwrap().geopotential_height[[0, r, c]];
         assert!((s.values[1] - f64::from(th)).abs() < 2e-3);
         assert_eq!(s.valid_time_unix_s, Some(reference + s.lead_time_s));
     }
@@ -535,11 +525,11 @@ fn a_profile_lists_the_batch_column_bottom_up() {
         assert_eq!(level.pressure_pa, DEMO_LEVELS_HPA[k] * 100.0);
         assert_eq!(
             level.geopotential_height_m as f32,
-            lc.heights.geopotential_height[[0, t, k, r, c]]
+            lc.heights.ready(0, t).unwrap().geopotential_height[[k, r, c]]
         );
         assert_eq!(
             level.below_ground,
-            lc.heights.below_ground[[0, t, k, r, c]] != 0
+            lc.heights.ready(0, t).unwrap().below_ground[[k, r, c]] != 0
         );
         below += usize::from(level.below_ground);
         if !level.below_ground {
@@ -563,7 +553,9 @@ fn a_profile_lists_the_batch_column_bottom_up() {
     let (fr, fc) = (0.4, 0.2);
     let r2 = index_of(&lc.cycle.grid.latitudes, lat + 0.25);
     for (k, level) in pb.levels.iter().enumerate() {
-        let z = |r: usize, c: usize| f64::from(lc.heights.geopotential_height[[0, t, k, r, c]]);
+        let z = |r: usize, c: usize| {
+            f64::from(lc.heights.ready(0, t).unwrap().geopotential_height[[k, r, c]])
+        };
         let expected = (1.0 - fr) * ((1.0 - fc) * z(r, c) + fc * z(r, c + 1))
             + fr * ((1.0 - fc) * z(r2, c) + fc * z(r2, c + 1));
         assert!(
@@ -591,7 +583,7 @@ fn a_trajectory_interpolates_linearly_in_time() {
         standard_reference(),
     );
     let t0 = lc.reference_time_unix_s().unwrap();
-    let z1000 = f64::from(lc.heights.geopotential_height[[0, 0, 0, 0, 0]]);
+    let z1000 = f64::from(lc.heights.ready(0, 0).unwrap().geopotential_height[[0, 0, 0]]);
     let expected = |dt: i64| {
         let temperature = 250.0 + 2.0 * dt as f64 / six_h as f64;
         z1000 + rd_over_g0_1976() * temperature * 2f64.ln()
@@ -727,7 +719,9 @@ fn below_ground_extrapolation_is_flagged_and_refused_unless_asked_for() {
     q.allow_extrapolation = true;
     let s = &position(&lc, &q, &Limits::default()).unwrap()[0].samples[0];
     assert_eq!(s.flags, vec![FLAG_BELOW_GROUND]);
-    assert!(s.values[0] < f64::from(lc.heights.geopotential_height[[0, 0, 0, 0, 0]]));
+    assert!(
+        s.values[0] < f64::from(lc.heights.ready(0, 0).unwrap().geopotential_height[[0, 0, 0]])
+    );
 }
 
 #[test]
@@ -770,6 +764,7 @@ fn field_of(e: QueryError) -> (&'static str, String) {
         QueryError::NotFound { field, .. } => ("not_found", field),
         QueryError::OutOfRange { field, .. } => ("out_of_range", field),
         QueryError::ResourceExhausted { field, .. } => ("exhausted", field),
+        QueryError::HeightsUnavailable { detail } => ("unavailable", detail),
     }
 }
 
@@ -1017,7 +1012,11 @@ fn extrapolation_when_asked_for_answers_outside_the_levels() {
     let north_west = a.fields[1].values[0];
     let r = index_of(&lc.cycle.grid.latitudes, a.latitudes[0]);
     let c = index_of(&lc.cycle.grid.longitudes, a.longitudes[0]);
-    let z100_here = lc.heights.geopotential_height[[0, a.time_index, k100, r, c]];
+    let z100_here = lc
+        .heights
+        .ready(0, a.time_index)
+        .unwrap()
+        .geopotential_height[[k100, r, c]];
     let dz = north_west - z100_here;
     assert!((3_900.0..5_200.0).contains(&dz), "{dz}");
 }
@@ -1108,17 +1107,7 @@ fn hybrid() -> LoadedCycle {
         notes: Vec::new(),
     };
     let config = ComputeConfig::default();
-    let heights = compute_heights(&cycle, &config, &|_| {}).unwrap();
-    LoadedCycle {
-        id: "hybrid.nc".to_string(),
-        path: cycle.source.clone(),
-        cycle,
-        heights,
-        config,
-        loaded_at: SystemTime::now(),
-        load_seconds: 0.0,
-        bytes: 0,
-    }
+    LoadedCycle::computed("hybrid.nc", cycle, &config).unwrap()
 }
 
 #[test]
@@ -1200,8 +1189,116 @@ fn hybrid_levels_rebuild_the_column_and_refuse_pressures_outside_it() {
     for (k, level) in p.levels.iter().enumerate() {
         assert_eq!(
             level.geopotential_height_m as f32,
-            lc.heights.geopotential_height[[0, 0, k, 0, 1]]
+            lc.heights.ready(0, 0).unwrap().geopotential_height[[k, 0, 1]]
         );
         assert!(!level.below_ground);
     }
+}
+
+// ----- a cycle served while its heights are computed -----
+
+/// The largest difference allowed between a height from a rebuilt column and the stored
+/// one, which the row kernel computed: 1 mm, or one `f32` step where that is larger (the
+/// agreement `tests/kernel.rs` asks of the kernel against the column path).
+fn stored_tolerance(z: f64) -> f64 {
+    let step = f64::from(z.abs() as f32) * f64::from(f32::EPSILON);
+    step.max(1e-3)
+}
+
+/// A cycle is served before the heights of its steps are in: position and trajectory
+/// queries rebuild the columns they need (the batch's own integration), areas wait for the
+/// step; the answers agree with those given once the heights are in (areas bit for bit),
+/// with the same flags.
+#[test]
+fn a_cycle_answers_while_its_heights_are_computed() {
+    let done = demo();
+    let pending = LoadedCycle::from_cycle(&done.id, done.cycle.clone(), &done.config).unwrap();
+    assert_eq!(pending.heights.ready_steps(), 0);
+    assert_eq!(pending.bytes, done.bytes);
+    let grid = &done.cycle.grid;
+    // Points between grid columns all over the domain (bilinear: four columns each), on
+    // levels, between them and near the ground (1000 hPa lies below the ground at some).
+    let points: Vec<(f64, f64)> = (1..grid.latitudes.len() - 1)
+        .step_by(3)
+        .flat_map(|r| {
+            (1..grid.longitudes.len() - 1).step_by(4).map(move |c| {
+                let lat = 0.7 * grid.latitudes[r] + 0.3 * grid.latitudes[r + 1];
+                let lon = 0.4 * grid.longitudes[c] + 0.6 * grid.longitudes[c + 1];
+                (lat, lon)
+            })
+        })
+        .collect();
+    let quantities = vec![
+        height(1000.0),
+        height(500.0),
+        thickness(1000.0, 500.0),
+        height(912.4),
+    ];
+    let q = PositionQuery {
+        times: Vec::new(),
+        allow_extrapolation: true,
+        ..position_query(points.clone(), quantities.clone())
+    };
+    let limits = Limits::default();
+    let rebuilt = position(&pending, &q, &limits).unwrap();
+    let stored = position(done, &q, &limits).unwrap();
+    assert_eq!(pending.heights.ready_steps(), 0, "points do not wait");
+    let mut compared = 0;
+    let mut below = 0;
+    for (a, b) in rebuilt.iter().zip(&stored) {
+        for (sa, sb) in a.samples.iter().zip(&b.samples) {
+            assert_eq!(sa.flags, sb.flags, "({}, {})", a.latitude, a.longitude);
+            below += sa
+                .flags
+                .iter()
+                .filter(|&&f| f & FLAG_BELOW_GROUND != 0)
+                .count();
+            for (va, vb) in sa.values.iter().zip(&sb.values) {
+                assert!(
+                    (va - vb).abs() <= stored_tolerance(*vb),
+                    "({}, {}) lead {}: {va} rebuilt vs {vb} stored",
+                    a.latitude,
+                    a.longitude,
+                    sa.lead_time_s
+                );
+                compared += 1;
+            }
+        }
+    }
+    assert!(
+        compared >= 100 && below > 0,
+        "{compared} values, {below} below ground"
+    );
+
+    // An area waits for its step, then answers from the stored heights: the same bits.
+    let area_q = area_query(quantities, demo_box());
+    let waited = std::thread::scope(|scope| {
+        let asker = scope.spawn(|| area(&pending, &area_q, &limits));
+        pending.finish_heights();
+        asker.join().unwrap().unwrap()
+    });
+    assert_eq!(waited, area(done, &area_q, &limits).unwrap());
+    assert!(pending.heights.pending_steps().is_empty());
+    // Once the heights are in, points read them too.
+    assert_eq!(position(&pending, &q, &limits).unwrap(), stored);
+}
+
+/// Should the computation of a cycle's heights stop, the steps it left answer areas with an
+/// error naming the cycle (nobody waits for ever); points still answer from rebuilt columns.
+#[test]
+fn heights_that_could_not_be_computed_are_an_error_not_a_wait() {
+    let done = demo();
+    let lc = LoadedCycle::from_cycle("stopped.nc", done.cycle.clone(), &done.config).unwrap();
+    lc.heights.fail_pending("stopped for the test");
+    let limits = Limits::default();
+    match area(&lc, &area_query(vec![height(500.0)], demo_box()), &limits) {
+        Err(QueryError::HeightsUnavailable { detail }) => {
+            assert!(detail.contains("'stopped.nc'"), "{detail}");
+            assert!(detail.contains("stopped for the test"), "{detail}");
+        }
+        other => panic!("expected HeightsUnavailable, got {other:?}"),
+    }
+    let q = position_query(vec![(55.0, -35.0)], vec![height(500.0)]);
+    let p = position(&lc, &q, &limits).unwrap();
+    assert!(p[0].samples[0].values[0].is_finite());
 }

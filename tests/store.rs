@@ -17,7 +17,7 @@ use std::time::{Duration, Instant, SystemTime};
 use ndarray::Array5;
 
 use common::fixtures::FixtureSpec;
-use hypsogrid::compute::{compute_heights, ComputeConfig};
+use hypsogrid::compute::ComputeConfig;
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::{Cycle, Grid, Vertical};
 use hypsogrid::physics::Constants;
@@ -50,18 +50,9 @@ fn tiny(id: &str, reference: Option<&str>, bytes: usize) -> LoadedCycle {
         variables: Vec::new(),
         notes: Vec::new(),
     };
-    let config = ComputeConfig::default();
-    let heights = compute_heights(&cycle, &config, &|_| {}).unwrap();
-    LoadedCycle {
-        id: id.to_string(),
-        path: cycle.source.clone(),
-        cycle,
-        heights,
-        config,
-        loaded_at: SystemTime::now(),
-        load_seconds: 0.0,
-        bytes,
-    }
+    let mut lc = LoadedCycle::computed(id, cycle, &ComputeConfig::default()).unwrap();
+    lc.bytes = bytes;
+    lc
 }
 
 fn day(d: u32) -> String {

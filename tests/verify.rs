@@ -340,10 +340,20 @@ fn gfs_2p5deg_consistency_per_level_and_region() {
         }
         // The same points unweighted, as the project measured them (rms 0.7-1.7 m).
         let k = lc_level(&lc, hpa);
-        let ours = lc.heights.geopotential_height.slice(s![0, 0, k, .., ..]);
+        let ours = lc
+            .heights
+            .ready(0, 0)
+            .unwrap()
+            .geopotential_height
+            .slice(s![k, .., ..]);
         let theirs = lc.cycle.file_heights.as_ref().expect("file heights");
         let theirs = theirs.slice(s![0, 0, k, .., ..]);
-        let below = lc.heights.below_ground.slice(s![0, 0, k, .., ..]);
+        let below = lc
+            .heights
+            .ready(0, 0)
+            .unwrap()
+            .below_ground
+            .slice(s![k, .., ..]);
         let (mut f, mut t) = (Vec::new(), Vec::new());
         for ((&a, &b), &g) in ours.iter().zip(theirs.iter()).zip(below.iter()) {
             if g == 0 {
@@ -542,7 +552,7 @@ fn a_constant_and_a_latitude_dependent_offset_give_their_known_scores() {
     }
     .write(&dir.path().join("forecast.nc"));
     let forecast = load(&fpath);
-    let z = forecast.heights.geopotential_height.clone();
+    let (z, _) = forecast.heights.to_arrays().expect("heights");
 
     // Analysis valid 2011-01-10 18Z (the forecast's +6 h step), whose own heights are the
     // forecast's minus 10 m: forecast - analysis = +10 m everywhere.
@@ -708,7 +718,7 @@ fn a_forecast_on_another_grid_is_interpolated_to_the_analysis_grid() {
     }
     .write(&dir.path().join("regional-forecast.nc"));
     let forecast = load(&fpath);
-    let zf = &forecast.heights.geopotential_height;
+    let (zf, _) = forecast.heights.to_arrays().expect("heights");
     let constant: Vec<f64> = (0..LEVELS_HPA.len())
         .map(|k| f64::from(zf[[0, 0, k, 0, 0]]) - plane(flats[0], flons[0]))
         .collect();
@@ -787,7 +797,7 @@ fn an_analysis_without_heights_is_verified_against_its_computed_heights() {
     let report = verify(&forecast, &analysis, &VerifyRequest::default()).expect("verify");
     assert_eq!(report.truth_source, TruthSource::Computed);
     assert!(report.notes.iter().any(|n| n.contains("computed here")));
-    let rd = analysis.heights.constants.dry_air_gas_constant;
+    let rd = analysis.cycle.constants.dry_air_gas_constant;
     for hpa in LEVELS_HPA {
         let want = rd / G0 * 10.0 * (1000.0 / hpa).ln();
         let r = row(&report.rows, hpa, "global");

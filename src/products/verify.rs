@@ -38,7 +38,7 @@
 //! By default a point is left out when either side is flagged below ground there; the count
 //! left out is in each row, and [`VerifyRequest::include_below_ground`] keeps them.
 
-use ndarray::{s, Array2, ArrayView2};
+use ndarray::{s, Array2, ArrayView2, Axis};
 use rayon::prelude::*;
 use serde::Serialize;
 
@@ -48,6 +48,7 @@ use crate::products::field::{latitude_weights, same_grid, RegridPlan};
 use crate::query::{
     grid_field, BoundingBox, LoadedCycle, Quantity, QueryError, TimeSelector, FLAG_BELOW_GROUND,
 };
+use crate::served::StepHeights;
 
 /// Relative tolerance within which a pressure counts as one of a cycle's levels (as the query
 /// module uses).
@@ -871,8 +872,8 @@ fn file_level(
         .map(|z| z.slice(s![member, time, k, .., ..]))
 }
 
-fn below_level(lc: &LoadedCycle, member: usize, time: usize, k: usize) -> ArrayView2<'_, u8> {
-    lc.heights.below_ground.slice(s![member, time, k, .., ..])
+fn below_level(step: &StepHeights, k: usize) -> ArrayView2<'_, u8> {
+    step.below_ground.index_axis(Axis(0), k)
 }
 
 /// The file's own value of an item (height on a level, or thickness between two levels) with
@@ -880,6 +881,7 @@ fn below_level(lc: &LoadedCycle, member: usize, time: usize, k: usize) -> ArrayV
 /// or the file carries no heights.
 fn file_truth(
     lc: &LoadedCycle,
+    step: &StepHeights,
     q: &Quantity,
     member: usize,
     time: usize,
@@ -889,7 +891,7 @@ fn file_truth(
         Quantity::GeopotentialHeight { pressure_pa } => {
             let k = level_index(levels, pressure_pa)?;
             let z = file_level(lc, member, time, k)?;
-            let flags = below_level(lc, member, time, k).mapv(|b| flag(b != 0));
+            let flags = below_level(step, k).mapv(|b| flag(b != 0));
             Some((z.to_owned(), flags))
         }
         Quantity::Thickness(layer) => {
@@ -898,7 +900,7 @@ fn file_truth(
             let zb = file_level(lc, member, time, kb)?;
             let zt = file_level(lc, member, time, kt)?;
             let thickness = &zt - &zb;
-            let flags = below_level(lc, member, time, kb).mapv(|b| flag(b != 0));
+            let flags = below_level(step, kb).mapv(|b| flag(b != 0));
             Some((thickness, flags))
         }
     }
@@ -945,6 +947,9 @@ pub fn verify(
         .then(|| RegridPlan::new(&forecast.cycle.grid, &analysis.cycle.grid));
     let weights = latitude_weights(&analysis.cycle.grid);
     let (fm, am) = (request.member, request.analysis_member);
+    let analysis_step = analysis
+        .step_heights(am, at)
+        .map_err(query_error(analysis))?;
 
     let per_item: Vec<Vec<ScoreRow>> = items
         .par_iter()
@@ -958,7 +963,8 @@ pub fn verify(
                 ),
                 None => (f.values, f.flags),
             };
-            let (truth, truth_flags, source) = match file_truth(analysis, q, am, at) {
+            let (truth, truth_flags, source) = match file_truth(analysis, analysis_step, q, am, at)
+            {
                 Some((z, fl)) => (z, fl, TruthSource::FileHeights),
                 None => {
                     let a = grid_field(analysis, q, at, am, request.allow_extrapolation)
@@ -1086,6 +1092,7 @@ pub fn consistency(
         });
     }
     let m = request.member;
+    let step = lc.step_heights(m, time).map_err(query_error(lc))?;
     let weights = latitude_weights(&lc.cycle.grid);
     let levels = isobaric_levels(lc);
 
@@ -1133,8 +1140,10 @@ pub fn consistency(
                 Item::Quantity(q) => {
                     let g = grid_field(lc, &q, time, m, false).map_err(query_error(lc))?;
                     let (truth, truth_flags) =
-                        file_truth(lc, &q, m, time).ok_or_else(|| VerifyError::NoFileHeights {
-                            file: lc.id.clone(),
+                        file_truth(lc, step, &q, m, time).ok_or_else(|| {
+                            VerifyError::NoFileHeights {
+                                file: lc.id.clone(),
+                            }
                         })?;
                     (
                         RowKey::of(&q),
@@ -1148,15 +1157,11 @@ pub fn consistency(
                     )
                 }
                 Item::ModelLevel(k) => {
-                    let flags = below_level(lc, m, time, k).mapv(|b| flag(b != 0));
+                    let flags = below_level(step, k).mapv(|b| flag(b != 0));
                     (
                         RowKey::model_level(k),
                         Paired {
-                            forecast: lc
-                                .heights
-                                .geopotential_height
-                                .slice(s![m, time, k, .., ..])
-                                .to_owned(),
+                            forecast: step.geopotential_height.index_axis(Axis(0), k).to_owned(),
                             forecast_flags: flags.clone(),
                             truth: file_z.slice(s![m, time, k, .., ..]).to_owned(),
                             truth_flags: flags,

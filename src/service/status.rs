@@ -37,6 +37,7 @@ pub fn query_error(e: QueryError, rpc: Rpc) -> Status {
         QueryError::ResourceExhausted { field, message } => {
             (Code::ResourceExhausted, field, message)
         }
+        QueryError::HeightsUnavailable { detail } => return Status::internal(detail),
     };
     Status::new(code, format!("{}: {message}", wire_field(&field, rpc)))
 }
@@ -179,6 +180,7 @@ pub fn product_error(e: ProductError, selection: &str) -> Status {
             QueryError::ResourceExhausted { field, message } => {
                 (Code::ResourceExhausted, field, message)
             }
+            QueryError::HeightsUnavailable { detail } => return Status::internal(detail),
         };
         // The domain names the single quantity of a product `quantities[0]`; the wire
         // names it `quantity` inside the selection.
