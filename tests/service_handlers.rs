@@ -164,6 +164,10 @@ async fn catalogue_describes_the_loaded_cycle() {
     assert_eq!(entry.id, DEMO_FILE_NAME);
     assert!(entry.load_s > 0.0);
     assert!(entry.memory_bytes > 0);
+    assert!(
+        entry.heights_ready,
+        "the fixture's cycle was loaded with its heights"
+    );
     assert!(entry.loaded_at.ends_with('Z'), "{}", entry.loaded_at);
     let d = entry.description.as_ref().expect("description");
     // The demo's invented reference time, 2031-01-14 00:00 UTC (hypsogrid::demo).
@@ -875,4 +879,73 @@ async fn calls_beyond_the_concurrency_limit_are_shed() {
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
     assert!(ok, "the slot is released when the stream ends");
+}
+
+/// A cycle in the store whose heights are still being computed is listed as such, and
+/// answers over the service as it will once they are in: areas wait for the step (off the
+/// async threads), points rebuild their columns.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_cycle_still_computing_answers_as_it_will_once_computed() {
+    let ready = fixture().store.find(DEMO_FILE_NAME).expect("demo");
+    let pending = LoadedCycle::from_cycle(DEMO_FILE_NAME, ready.cycle.clone(), &ready.config)
+        .expect("pending cycle");
+    let store = Arc::new(CycleStore::new(StoreConfig::default()));
+    let pending = store.insert(pending);
+    let svc = HeightServiceHandlers::new(Arc::clone(&store), settings());
+    let catalogue = svc
+        .get_catalogue(Request::new(pb::CatalogueRequest {}))
+        .await
+        .expect("catalogue")
+        .into_inner();
+    assert!(!catalogue.cycles[0].heights_ready);
+
+    let points = pb::PositionRequest {
+        points: vec![point(55.1, -37.3), point(58.6, -41.9)],
+        quantities: vec![thickness_q(100_000.0, 50_000.0), height_q(50_000.0)],
+        ..Default::default()
+    };
+    let rebuilt = svc
+        .query_position(Request::new(points.clone()))
+        .await
+        .expect("points while computing")
+        .into_inner();
+
+    // The area is asked first; the heights are computed while it waits.
+    let asked = {
+        let svc = HeightServiceHandlers::new(Arc::clone(&store), settings());
+        tokio::spawn(async move { area_chunks(&svc, Request::new(area_request())).await })
+    };
+    let computing = Arc::clone(&pending);
+    tokio::task::spawn_blocking(move || computing.finish_heights())
+        .await
+        .expect("heights");
+    let waited = asked
+        .await
+        .expect("area task")
+        .expect("area while computing");
+    let stored = area_chunks(&service(), Request::new(area_request()))
+        .await
+        .expect("area on the computed cycle");
+    assert_eq!(waited, stored);
+
+    let after = svc
+        .query_position(Request::new(points))
+        .await
+        .expect("points once computed")
+        .into_inner();
+    for (a, b) in rebuilt.series.iter().zip(&after.series) {
+        for (sa, sb) in a.samples.iter().zip(&b.samples) {
+            assert_eq!(sa.flags, sb.flags);
+            for (va, vb) in sa.values.iter().zip(&sb.values) {
+                // 1 mm: the rebuilt column against the kernel's stored heights.
+                assert!((va - vb).abs() <= 1e-3, "{va} rebuilt vs {vb} stored");
+            }
+        }
+    }
+    let catalogue = svc
+        .get_catalogue(Request::new(pb::CatalogueRequest {}))
+        .await
+        .expect("catalogue")
+        .into_inner();
+    assert!(catalogue.cycles[0].heights_ready);
 }

@@ -304,6 +304,10 @@ async fn a_new_file_is_loaded_once_it_has_settled_and_a_deleted_one_is_dropped()
         served.cycle.grid.latitudes,
         FixtureSpec::default().latitudes()
     );
+    // Served once read; the scan also waits for the heights of the steps left pending, so
+    // that cycles are computed one at a time: by its end every step is in.
+    assert!(served.heights.pending_steps().is_empty());
+    assert_eq!(served.heights.ready_steps(), served.heights.steps());
     // Nothing new: the next scan does nothing.
     let generation = store.snapshot().generation;
     assert_eq!(

@@ -560,6 +560,7 @@ fn render_catalogue(c: &pb::CatalogueResponse, format: OutputFormat) -> Result<S
                         "loaded_at": e.loaded_at,
                         "load_s": e.load_s,
                         "memory_bytes": e.memory_bytes,
+                        "heights_ready": e.heights_ready,
                     })
                 })
                 .collect();
@@ -593,6 +594,7 @@ fn render_catalogue(c: &pb::CatalogueResponse, format: OutputFormat) -> Result<S
                 "loaded_at",
                 "load_s",
                 "memory_bytes",
+                "heights_ready",
                 "source",
             ]);
             for e in &c.cycles {
@@ -610,6 +612,7 @@ fn render_catalogue(c: &pb::CatalogueResponse, format: OutputFormat) -> Result<S
                     e.loaded_at.clone(),
                     format!("{:.3}", e.load_s),
                     e.memory_bytes.to_string(),
+                    e.heights_ready.to_string(),
                     d.source.clone(),
                 ]);
             }
@@ -634,6 +637,7 @@ fn render_catalogue(c: &pb::CatalogueResponse, format: OutputFormat) -> Result<S
                     "loaded at",
                     "load s",
                     "memory",
+                    "heights",
                 ]);
                 for e in &c.cycles {
                     let d = e.description.clone().unwrap_or_default();
@@ -651,6 +655,12 @@ fn render_catalogue(c: &pb::CatalogueResponse, format: OutputFormat) -> Result<S
                         e.loaded_at.clone(),
                         format!("{:.2}", e.load_s),
                         bytes_label(e.memory_bytes),
+                        if e.heights_ready {
+                            "ready"
+                        } else {
+                            "computing"
+                        }
+                        .to_string(),
                     ]);
                 }
                 writeln!(out)?;

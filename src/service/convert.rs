@@ -472,6 +472,7 @@ impl From<&LoadedCycle> for pb::CycleEntry {
             loaded_at: system_time_rfc3339(lc.loaded_at),
             load_s: lc.load_seconds,
             memory_bytes: u64::try_from(lc.bytes).unwrap_or(u64::MAX),
+            heights_ready: lc.heights.ready_steps() == lc.heights.steps(),
         }
     }
 }
