@@ -9,6 +9,9 @@
 //! - A geopotential height at a pressure on one of the cycle's isobaric levels (within 1e-6
 //!   relative) is read straight from the batch output ([`LoadedCycle::heights`]): no column is
 //!   rebuilt, so these answers are identical to `compute_heights` and cost a memory read.
+//!   While the step's heights are still being computed (a cycle is served as soon as it is
+//!   read), point queries read the level from the rebuilt column instead (within 1 mm, or
+//!   one `f32` step above 8 km, of the stored value; same flags) and areas wait for the step.
 //! - Any other pressure (and every pressure on hybrid levels) rebuilds the column exactly as
 //!   the batch does ([`StepColumns`]) and interpolates it with
 //!   [`ColumnNodes::height_at_pressure`]; one [`ColumnScratch`] is reused per call.
