@@ -323,16 +323,9 @@ fn kernel_step(
     let surface = cycle.surface.as_ref()?;
     let (_, _, levels, rows, cols) = cycle.temperature.dim();
     let mut out = buffer.unwrap_or_else(|| kernel.outputs((1, 1, levels, rows, cols)));
-    let fields = StepFields {
-        t: cycle.temperature.slice(s![m, t, .., .., ..]),
-        q: cycle
-            .humidity
-            .as_ref()
-            .map(|h| h.values.slice(s![m, t, .., .., ..])),
-        ps: surface.pressure_pa.slice(s![m, t, .., ..]),
-        zs: surface.height_m.slice(s![m, t, .., ..]),
-    };
-    kernel.run_step(fields, (0, 0), &mut out).ok()?;
+    kernel
+        .run_step(StepFields::of(cycle, surface, (m, t)), (0, 0), &mut out)
+        .ok()?;
     Some(one_step(out))
 }
 

@@ -42,7 +42,7 @@ use rayon::prelude::*;
 
 use crate::buffers::zeroed_field_array;
 use crate::lanes::{lane_builds, Lanes};
-use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Vertical};
+use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Surface, Vertical};
 use crate::physics::constants::STANDARD_LAPSE_RATE;
 use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
 
@@ -608,6 +608,21 @@ pub struct StepFields<'a> {
     pub zs: ArrayView2<'a, f32>,
 }
 
+impl<'a> StepFields<'a> {
+    /// Member `m`, time step `t` of a cycle held in memory with its `surface` fields.
+    pub fn of(cycle: &'a Cycle, surface: &'a Surface, (m, t): (usize, usize)) -> Self {
+        Self {
+            t: cycle.temperature.slice(s![m, t, .., .., ..]),
+            q: cycle
+                .humidity
+                .as_ref()
+                .map(|h| h.values.slice(s![m, t, .., .., ..])),
+            ps: surface.pressure_pa.slice(s![m, t, .., ..]),
+            zs: surface.height_m.slice(s![m, t, .., ..]),
+        }
+    }
+}
+
 /// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
 fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
     match v.to_slice() {
@@ -845,15 +860,7 @@ impl IsobaricKernel {
         let mut done = 0usize;
         for m in 0..members {
             for t in 0..times {
-                let views = StepFields {
-                    t: cycle.temperature.slice(s![m, t, .., .., ..]),
-                    q: cycle
-                        .humidity
-                        .as_ref()
-                        .map(|h| h.values.slice(s![m, t, .., .., ..])),
-                    ps: surface.pressure_pa.slice(s![m, t, .., ..]),
-                    zs: surface.height_m.slice(s![m, t, .., ..]),
-                };
+                let views = StepFields::of(cycle, surface, (m, t));
                 let step_heights = heights.as_mut().map(|(z, b)| (&mut **z, &mut **b));
                 self.step_into(&views, (m, t), n_levels, step_heights, thickness);
                 done += 1;

@@ -994,6 +994,16 @@ impl<'a> Evaluator<'a> {
         })
     }
 
+    /// For queries at a few points: a step still being computed is not waited for.
+    fn at_points(
+        lc: &'a LoadedCycle,
+        plans: &'a [Plan],
+        step: (usize, usize),
+        allow_extrapolation: bool,
+    ) -> Result<Self, QueryError> {
+        Self::new(lc, plans, step, allow_extrapolation, WhilePending::Rebuild)
+    }
+
     /// The column at (`row`, `col`), built once for all the quantities asked there.
     fn column(&mut self, row: usize, col: usize) -> Option<&ColumnScratch> {
         let (step, scratch) = self.columns.as_mut()?;
@@ -1704,15 +1714,7 @@ pub fn position(
     }
     let mut evaluators: Vec<Evaluator<'_>> = times
         .iter()
-        .map(|&t| {
-            Evaluator::new(
-                lc,
-                &plans,
-                (q.member, t),
-                q.allow_extrapolation,
-                WhilePending::Rebuild,
-            )
-        })
+        .map(|&t| Evaluator::at_points(lc, &plans, (q.member, t), q.allow_extrapolation))
         .collect::<Result<_, _>>()?;
     let nq = plans.len();
     // Parsed once, not once per sample.
@@ -1904,16 +1906,8 @@ pub fn trajectory(
         .iter()
         .enumerate()
         .map(|(t, &u)| {
-            u.then(|| {
-                Evaluator::new(
-                    lc,
-                    &plans,
-                    (q.member, t),
-                    q.allow_extrapolation,
-                    WhilePending::Rebuild,
-                )
-            })
-            .transpose()
+            u.then(|| Evaluator::at_points(lc, &plans, (q.member, t), q.allow_extrapolation))
+                .transpose()
         })
         .collect();
     let mut evaluators = evaluators?;
