@@ -541,6 +541,17 @@ fn the_offices_guidance_settings_are_what_guidance_answers_start_from() {
         log.contains("guidance settings") && log.contains("guidance.toml"),
         "{log}"
     );
+    // Every setting in force is in the log, the file's and the built-in ones alike.
+    for setting in [
+        "critical_1000_500_m=5280.0",
+        "critical_850_700_m=1530.0",
+        "critical_1000_850_m=1300.0",
+        "margin_1000_500_m=30.0",
+        "low_ground_max_m=300.0",
+        "wet_bulb_zero_rain_min_agl_m=600.0",
+    ] {
+        assert!(log.contains(setting), "{setting} not in the log:\n{log}");
+    }
 
     // SIGHUP re-reads the file: a changed threshold is in force without a restart (the
     // cycles stay loaded); a broken file is logged and the settings in force stay.

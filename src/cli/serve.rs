@@ -631,9 +631,7 @@ async fn serve(
             .guidance_file
             .as_deref()
             .map_or_else(|| "built-in defaults".to_string(), |p| p.display().to_string()),
-        critical_1000_500_m = g.critical_1000_500_m,
-        critical_1000_850_m = g.critical_1000_850_m,
-        critical_850_700_m = g.critical_850_700_m,
+        settings = %g.one_line(),
         "guidance settings (guidance from model fields, not a forecast or warning: thresholds \
          must suit the local climate and terrain)"
     );

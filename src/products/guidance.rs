@@ -369,6 +369,19 @@ impl Default for GuidanceSettings {
 }
 
 impl GuidanceSettings {
+    /// Every setting on one line as `name=value` pairs, names in alphabetical order (for
+    /// logs: an office must be able to see every threshold, margin and tier in force).
+    pub fn one_line(&self) -> String {
+        match serde_json::to_value(self) {
+            Ok(serde_json::Value::Object(fields)) => fields
+                .iter()
+                .map(|(k, v)| format!("{k}={v}"))
+                .collect::<Vec<_>>()
+                .join(" "),
+            _ => format!("{self:?}"),
+        }
+    }
+
     /// Reads settings from TOML text (missing fields take their defaults) and validates them.
     pub fn from_toml_str(text: &str) -> Result<Self, GuidanceError> {
         let settings: Self = toml::from_str(text).map_err(|e| GuidanceError::SettingsToml {
@@ -1471,6 +1484,34 @@ pub fn guidance_at_point(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn the_one_line_form_names_every_setting_once_and_reads_back() {
+        let pairs = |g: &GuidanceSettings| -> Vec<(String, f64)> {
+            g.one_line()
+                .split(' ')
+                .map(|p| {
+                    let (k, v) = p.split_once('=').expect(p);
+                    (k.to_string(), v.parse().expect(p))
+                })
+                .collect()
+        };
+        // Every setting moved off its default: each must come back with its own value.
+        let defaults = pairs(&GuidanceSettings::default());
+        let toml: String = defaults
+            .iter()
+            .map(|(k, v)| format!("{k} = {:?}\n", v + 1.0))
+            .collect();
+        let moved = GuidanceSettings::from_toml_str(&toml).expect(&toml);
+        assert_ne!(moved, GuidanceSettings::default());
+        let back = pairs(&moved);
+        assert_eq!(back.len(), defaults.len());
+        for ((k, v), (k0, v0)) in back.iter().zip(&defaults) {
+            assert_eq!((k, *v), (k0, v0 + 1.0));
+        }
+        let toml_back: String = back.iter().map(|(k, v)| format!("{k} = {v:?}\n")).collect();
+        assert_eq!(GuidanceSettings::from_toml_str(&toml_back).unwrap(), moved);
+    }
 
     #[test]
     fn codes_round_trip_and_names_are_plain_words() {

@@ -359,9 +359,7 @@ async fn reload_on_request(
                 Ok(Ok(next)) => {
                     tracing::info!(
                         file = %path.display(),
-                        critical_1000_500_m = next.critical_1000_500_m,
-                        critical_1000_850_m = next.critical_1000_850_m,
-                        critical_850_700_m = next.critical_850_700_m,
+                        settings = %next.one_line(),
                         "guidance settings re-read; the new settings are in force"
                     );
                     in_force.replace(next);
