@@ -22,6 +22,7 @@
 //! | `hypsogrid_newest_cycle_reference_age_seconds` | gauge | |
 //! | `hypsogrid_newest_cycle_load_age_seconds` | gauge | |
 //! | `hypsogrid_cycle_memory_bytes` | gauge | |
+//! | `hypsogrid_cycle_steps_without_heights` | gauge | |
 //! | `hypsogrid_failed_files` | gauge | |
 //! | `hypsogrid_cycle_load_failures_total` | counter | |
 //! | `hypsogrid_cycle_evictions_total` | counter | |
@@ -385,6 +386,18 @@ impl Recorder {
             "hypsogrid_cycle_memory_bytes",
             "Bytes held by the fields and heights of the cycles being served (what the memory budget counts).",
             Some(snapshot.bytes() as f64),
+        );
+        gauge(
+            &mut out,
+            "hypsogrid_cycle_steps_without_heights",
+            "(member, time) steps of the cycles being served whose heights are not stored: computing (for tens of milliseconds after a cycle is listed), or failed if this stays above 0.",
+            Some(
+                snapshot
+                    .cycles
+                    .iter()
+                    .map(|c| c.heights.steps() - c.heights.ready_steps())
+                    .sum::<usize>() as f64,
+            ),
         );
         gauge(
             &mut out,

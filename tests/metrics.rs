@@ -416,6 +416,11 @@ async fn the_metrics_page_counts_calls_store_changes_and_is_well_formed() {
     assert_eq!(before.scalar("hypsogrid_cycles_loaded"), 1.0);
     assert_eq!(before.scalar("hypsogrid_cycle_load_failures_total"), 1.0);
     assert_eq!(before.scalar("hypsogrid_failed_files"), 1.0);
+    assert_eq!(
+        before.scalar("hypsogrid_cycle_steps_without_heights"),
+        0.0,
+        "the watcher computed every step"
+    );
     assert_eq!(before.scalar("hypsogrid_cycle_evictions_total"), 0.0);
     assert_eq!(
         before.scalar("hypsogrid_cycle_memory_bytes"),
@@ -695,4 +700,35 @@ async fn serve_metrics_listen_serves_the_page_of_the_running_server() {
         .unwrap()
         .unwrap();
     assert_eq!(status.code(), Some(0));
+}
+
+/// A cycle listed before its heights are in counts its pending steps, until they are in.
+#[test]
+fn steps_without_heights_are_counted_until_they_are_computed() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = write_demo_cycle(dir.path()).unwrap();
+    let read = LoadedCycle::read(&path, &IngestConfig::default(), &ComputeConfig::default())
+        .expect("demo");
+    let steps = read.heights.steps();
+    let pending = read.heights.pending_steps().len();
+    assert!(pending >= 1 && pending <= steps);
+    let store = CycleStore::new(StoreConfig::default());
+    let served = store.insert(read);
+    let recorder = Recorder::new();
+    let page =
+        |store: &CycleStore| parse_page(&recorder.render(&store.snapshot(), SystemTime::now()));
+    let before = page(&store);
+    assert_eq!(
+        before.types["hypsogrid_cycle_steps_without_heights"],
+        "gauge"
+    );
+    assert_eq!(
+        before.scalar("hypsogrid_cycle_steps_without_heights"),
+        pending as f64
+    );
+    served.finish_heights();
+    assert_eq!(
+        page(&store).scalar("hypsogrid_cycle_steps_without_heights"),
+        0.0
+    );
 }
