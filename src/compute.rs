@@ -293,6 +293,13 @@ impl PendingSteps {
             }
         }
         let _unblock = Unblock(heights);
+        match heights_pool() {
+            Some(pool) => pool.install(|| self.compute_pending(cycle, config, heights)),
+            None => self.compute_pending(cycle, config, heights),
+        }
+    }
+
+    fn compute_pending(&mut self, cycle: &Cycle, config: &ComputeConfig, heights: &ServedHeights) {
         let (_, times, ..) = cycle.temperature.dim();
         for (m, t) in heights.pending_steps() {
             let buffer = self.buffers.get_mut(m * times + t).and_then(Option::take);
@@ -310,6 +317,24 @@ impl PendingSteps {
             }
         }
     }
+}
+
+/// Threads that compute the heights of a served cycle's pending steps, apart from rayon's
+/// global pool: queries on the global pool may be waiting for those very heights (the rows
+/// of a whole-grid field wait in parallel, and verification asks its items in parallel), and
+/// on the global pool they could hold every thread the computation needs, for ever
+/// (`tests/query.rs` reproduces that). As many threads as the global pool, built once;
+/// `None` (the global pool is used) where the pool cannot be built.
+fn heights_pool() -> Option<&'static rayon::ThreadPool> {
+    static POOL: std::sync::OnceLock<Option<rayon::ThreadPool>> = std::sync::OnceLock::new();
+    POOL.get_or_init(|| {
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(rayon::current_num_threads())
+            .thread_name(|i| format!("hypsogrid-heights-{i}"))
+            .build()
+            .ok()
+    })
+    .as_ref()
 }
 
 /// One step through the row kernel, into `buffer` (a one-step output of the kernel) or a

@@ -25,7 +25,7 @@ use hypsogrid::model::{Cycle, Grid, Layer, Surface, Vertical};
 use hypsogrid::physics::column::thickness_between;
 use hypsogrid::physics::Constants;
 use hypsogrid::query::{
-    area, area_rows, area_shape, position, profile, trajectory, AreaQuery, BoundingBox,
+    area, area_rows, area_shape, grid_field, position, profile, trajectory, AreaQuery, BoundingBox,
     Interpolation, Limits, LoadedCycle, PositionQuery, ProfileQuery, Quantity, QueryError,
     TimeSelector, TrajectoryQuery, Waypoint, FLAG_BELOW_GROUND, FLAG_MISSING,
 };
@@ -1301,4 +1301,50 @@ fn heights_that_could_not_be_computed_are_an_error_not_a_wait() {
     let q = position_query(vec![(55.0, -35.0)], vec![height(500.0)]);
     let p = position(&lc, &q, &limits).unwrap();
     assert!(p[0].samples[0].values[0].is_finite());
+}
+
+/// Whole-grid fields asked from rayon's own threads while a cycle's heights are computed
+/// (verification asks its items in parallel, each field's rows in parallel): every row waits
+/// for the step, and the computation must still get threads to run on. It once ran on the
+/// same pool as the waiting rows, which could hold every thread of it for ever.
+#[test]
+fn fields_asked_in_parallel_while_heights_are_computed_do_not_hold_up_the_computation() {
+    use rayon::prelude::*;
+    let done = demo();
+    let pending = LoadedCycle::from_cycle(&done.id, done.cycle.clone(), &done.config).unwrap();
+    let quantity = thickness(1000.0, 500.0);
+    let (finished_tx, finished_rx) = std::sync::mpsc::channel();
+    std::thread::scope(|scope| {
+        let pending = &pending;
+        let asked = scope.spawn(move || {
+            (0..4 * rayon::current_num_threads())
+                .into_par_iter()
+                .map(|i| grid_field(pending, &quantity, i % 2, 0, false))
+                .collect::<Result<Vec<_>, _>>()
+        });
+        // Let the fields start waiting and occupy rayon's threads, then compute.
+        std::thread::sleep(std::time::Duration::from_millis(200));
+        scope.spawn(move || {
+            pending.finish_heights();
+            let _ = finished_tx.send(());
+        });
+        // A guard against a hang, not a speed check: the whole demo cycle computes in well
+        // under a second.
+        if finished_rx
+            .recv_timeout(std::time::Duration::from_secs(120))
+            .is_err()
+        {
+            // The threads would never end, nor would this test: stop the process.
+            eprintln!(
+                "the heights were not computed: the computation is held up by waiting queries"
+            );
+            std::process::abort();
+        }
+        let fields = asked.join().unwrap().expect("fields");
+        for (i, f) in fields.iter().enumerate() {
+            let stored = grid_field(done, &quantity, i % 2, 0, false).unwrap();
+            assert_eq!(f.values, stored.values);
+            assert_eq!(f.flags, stored.flags);
+        }
+    });
 }
