@@ -20,3 +20,37 @@ pub fn lock() -> MutexGuard<'static, ()> {
         .lock()
         .unwrap_or_else(|poisoned| poisoned.into_inner())
 }
+
+extern "C" {
+    /// The NetCDF-C library's one-time set-up (`netcdf.h`, 4.6.2 and later).
+    fn nc_initialize() -> std::os::raw::c_int;
+}
+
+/// Runs the NetCDF-C library's one-time set-up now, on the calling thread: call it from the
+/// main thread before any other thread starts.
+///
+/// The set-up runs at the library's first call, and Debian's build of it then initialises
+/// libcurl and through it OpenSSL, which keeps state for the thread that did it. When that
+/// thread was a worker (a file read on a blocking thread of the server) and exited while the
+/// process was exiting, OpenSSL's per-thread clean-up ran at the same time as its
+/// process-wide clean-up on the main thread, and the server, already stopped, died of heap
+/// corruption (SIGABRT or SIGSEGV after SIGTERM: one run in 25, then one in 72, of
+/// `tests/serve_cli.rs`, which stops five servers a run; the core showed the main thread in
+/// `OPENSSL_cleanup` under `exit` and an exiting worker in OpenSSL's thread-local
+/// destructor). Set up from the main thread, whose thread-local
+/// destructors do not run at exit, no worker holds such state.
+///
+/// # Errors
+/// The library's status code when the set-up fails (the first file operation would then
+/// report the same failure).
+pub fn initialize() -> Result<(), i32> {
+    let _session = lock();
+    // SAFETY: a plain call without arguments, under the session lock like every other
+    // call into the library; it is idempotent.
+    let status = unsafe { nc_initialize() };
+    if status == 0 {
+        Ok(())
+    } else {
+        Err(status)
+    }
+}
