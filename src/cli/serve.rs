@@ -564,8 +564,13 @@ pub(super) fn run(args: ServeArgs) -> Result<()> {
         .build()
         .context("starting the async runtime")?;
     let result = runtime.block_on(serve(settings, ingest, compute));
-    // Do not wait for a file load still running on a blocking thread.
+    // Do not wait for the tasks of a file load still running on a blocking thread...
     runtime.shutdown_background();
+    // ...but for its read, if one is inside the NetCDF and HDF5 libraries: their exit
+    // handlers must not run under it. The session lock is held for a file's whole read;
+    // once it is ours, no thread is inside the libraries, and none enters before the
+    // process has exited (the guard is never released).
+    std::mem::forget(hypsogrid::netcdf_session::lock());
     result
 }
 
