@@ -900,10 +900,22 @@ async fn run(args: Args) -> anyhow::Result<bool> {
     Ok(report.failures.is_empty() && report.requests > 0)
 }
 
-#[tokio::main(flavor = "multi_thread")]
-async fn main() -> ExitCode {
+fn main() -> ExitCode {
+    // The NetCDF library's set-up on the main thread, before any other thread (the served
+    // cycle is read on a worker): see `hypsogrid::netcdf_session::initialize`.
+    let _ = hypsogrid::netcdf_session::initialize();
     let args = Args::parse();
-    match run(args).await {
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(runtime) => runtime,
+        Err(e) => {
+            eprintln!("loadgen: starting the async runtime: {e}");
+            return ExitCode::from(2);
+        }
+    };
+    match runtime.block_on(run(args)) {
         Ok(true) => ExitCode::SUCCESS,
         Ok(false) => ExitCode::FAILURE,
         Err(e) => {
