@@ -217,19 +217,17 @@ pub fn read_for_serving(
             finished: (0..total).map(|_| None).collect(),
             at: (0, 0, 0),
         };
-        Some((kernel, out))
+        Some((kernel, out, (members, times)))
     };
-    let work = |(kernel, mut out): (IsobaricKernel, EachStep),
+    let work = |(kernel, mut out, steps_shape): (IsobaricKernel, EachStep, (usize, usize)),
                 shell: &Cycle,
                 steps: crate::ingest::StepFeed<'_>| {
-        let times = shell.lead_times_s.len().max(1);
-        let members = out.outs.len() / times;
         compute_while_reading(
             &kernel,
             shell,
             steps,
             &mut out,
-            (members, times),
+            steps_shape,
             true,
             &|_, _| {},
         );
