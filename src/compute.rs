@@ -276,8 +276,9 @@ impl PendingSteps {
         }
     }
 
-    /// Computes every step of `heights` still pending (rows in parallel on rayon's threads)
-    /// and sets it, in file order, so that a waiting query is released step by step.
+    /// Computes every step of `heights` still pending (rows in parallel on a pool of its
+    /// own, see `heights_pool`) and sets it, in file order, so that a waiting query is
+    /// released step by step.
     ///
     /// Should a step fail (it cannot once [`read_for_serving`] has accepted the cycle) or
     /// this thread panic, every step still pending is marked failed, so that nobody waits

@@ -184,10 +184,10 @@ impl LoadedCycle {
         Ok(lc)
     }
 
-    /// Computes the heights of the steps still pending, on the calling thread (rows in
-    /// parallel on rayon's threads), releasing waiting queries step by step. Returns
-    /// the seconds it took; a second call (or one on a cycle whose heights are all in)
-    /// returns at once.
+    /// Computes the heights of the steps still pending (rows in parallel on threads kept
+    /// for this, so that queries waiting on rayon's threads cannot hold it up), releasing
+    /// waiting queries step by step. Returns the seconds it took; a second call (or one on
+    /// a cycle whose heights are all in) returns at once.
     pub fn finish_heights(&self) -> f64 {
         let started = Instant::now();
         let pending = self
