@@ -165,7 +165,8 @@ def main():
             leads = ", ".join(lead_label(s) for s in d.lead_times_s)
             print(f"  cycle {entry.id}: reference {d.reference_time or 'unknown'}, "
                   f"{len(d.grid.latitudes_deg)}x{len(d.grid.longitudes_deg)} grid, "
-                  f"{d.members} member(s), lead times {leads}")
+                  f"{d.members} member(s), lead times {leads}, "
+                  f"heights {'ready' if entry.heights_ready else 'computing'}")
         for failure in catalogue.failures:
             print(f"  failed: {failure.source}: {failure.error}")
         if not catalogue.cycles:
