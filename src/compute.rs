@@ -235,9 +235,9 @@ pub fn read_for_serving(
     };
     let (cycle, overlapped) = read_cycle_overlapped(path, ingest, prepare, work)?;
     // The same validation as compute_heights, before the cycle is served.
-    let reference = StepColumns::new(&cycle, config, 0, 0)?.reference;
+    let method = heights_method(&cycle, config)?;
     let (members, times, ..) = cycle.temperature.dim();
-    let heights = ServedHeights::pending(members, times, method_sentence(&cycle, reference));
+    let heights = ServedHeights::pending(members, times, method);
     let pending = match overlapped {
         Some((kernel, out)) => {
             for (i, step) in out.finished.into_iter().enumerate() {
@@ -250,10 +250,7 @@ pub fn read_for_serving(
                 buffers: out.outs,
             }
         }
-        None => PendingSteps {
-            kernel: IsobaricKernel::new(&cycle, &config.layers).ok(),
-            buffers: Vec::new(),
-        },
+        None => PendingSteps::for_cycle(&cycle, config),
     };
     Ok((cycle, heights, pending))
 }
@@ -336,8 +333,8 @@ fn heights_pool() -> Option<&'static rayon::ThreadPool> {
     .as_ref()
 }
 
-/// One step through the row kernel, into `buffer` (a one-step output of the kernel) or a
-/// fresh one; `None` where the kernel refuses the step.
+/// One step of `cycle` through the row kernel (see [`run_one_step`]); `None` where the
+/// kernel refuses the step.
 fn kernel_step(
     kernel: &IsobaricKernel,
     cycle: &Cycle,
@@ -345,22 +342,28 @@ fn kernel_step(
     buffer: Option<KernelOutput>,
 ) -> Option<StepHeights> {
     let surface = cycle.surface.as_ref()?;
-    let (_, _, levels, rows, cols) = cycle.temperature.dim();
-    let mut out = buffer.unwrap_or_else(|| kernel.outputs((1, 1, levels, rows, cols)));
-    kernel
-        .run_step(StepFields::of(cycle, surface, (m, t)), (0, 0), &mut out)
-        .ok()?;
-    Some(one_step(out))
+    run_one_step(kernel, StepFields::of(cycle, surface, (m, t)), buffer).ok()
 }
 
-/// The heights of a one-step kernel output.
-fn one_step(out: KernelOutput) -> StepHeights {
-    let first = |a: Array5<f32>| a.index_axis_move(Axis(0), 0).index_axis_move(Axis(0), 0);
-    let first_u8 = |a: Array5<u8>| a.index_axis_move(Axis(0), 0).index_axis_move(Axis(0), 0);
-    StepHeights {
-        geopotential_height: first(out.geopotential_height),
-        below_ground: first_u8(out.below_ground),
-    }
+/// The kernel on one step's fields, into `buffer` (a one-step output of the kernel) or a
+/// fresh one sized from the fields.
+fn run_one_step(
+    kernel: &IsobaricKernel,
+    fields: StepFields<'_>,
+    buffer: Option<KernelOutput>,
+) -> Result<StepHeights, crate::kernel::NotApplicable> {
+    let (levels, rows, cols) = fields.t.dim();
+    let mut out = buffer.unwrap_or_else(|| kernel.outputs((1, 1, levels, rows, cols)));
+    kernel.run_step(fields, (0, 0), &mut out)?;
+    Ok(StepHeights {
+        geopotential_height: only_step(out.geopotential_height),
+        below_ground: only_step(out.below_ground),
+    })
+}
+
+/// The `[level, lat, lon]` field of a one-step `[member, time, level, lat, lon]` array.
+fn only_step<T>(a: Array5<T>) -> Array3<T> {
+    a.index_axis_move(Axis(0), 0).index_axis_move(Axis(0), 0)
 }
 
 /// One step on the column path.
@@ -471,16 +474,8 @@ impl StepSink for EachStep {
         index: usize,
         _mt: (usize, usize),
     ) -> Result<(), crate::kernel::NotApplicable> {
-        let Some(mut out) = self.outs.get_mut(index).and_then(Option::take) else {
-            return Err(crate::kernel::NotApplicable::StepIndex {
-                member: index,
-                time: 0,
-                members: self.outs.len(),
-                times: 1,
-            });
-        };
-        kernel.run_step(fields, (0, 0), &mut out)?;
-        self.finished[index] = Some(one_step(out));
+        let buffer = self.outs.get_mut(index).and_then(Option::take);
+        self.finished[index] = Some(run_one_step(kernel, fields, buffer)?);
         Ok(())
     }
 }

@@ -121,10 +121,7 @@ impl LoadedCycle {
         compute: &ComputeConfig,
     ) -> Result<Self, LoadError> {
         let started = Instant::now();
-        let config = ComputeConfig {
-            layers: Vec::new(),
-            ..compute.clone()
-        };
+        let config = served_config(compute);
         let (cycle, heights, pending) = read_for_serving(path, ingest, &config)?;
         let id = path
             .file_name()
@@ -154,10 +151,7 @@ impl LoadedCycle {
         cycle: Cycle,
         compute: &ComputeConfig,
     ) -> Result<Self, ComputeError> {
-        let config = ComputeConfig {
-            layers: Vec::new(),
-            ..compute.clone()
-        };
+        let config = served_config(compute);
         let method = heights_method(&cycle, &config)?;
         let (members, times, ..) = cycle.temperature.dim();
         let pending = PendingSteps::for_cycle(&cycle, &config);
@@ -226,6 +220,15 @@ impl LoadedCycle {
     pub fn valid_time_unix_s(&self, time_index: usize) -> Option<i64> {
         let lead = *self.cycle.lead_times_s.get(time_index)?;
         self.reference_time_unix_s()?.checked_add(lead)
+    }
+}
+
+/// The settings a cycle is served with: those given, without thickness layers (thickness
+/// is answered per query from the heights and the rebuilt columns).
+fn served_config(compute: &ComputeConfig) -> ComputeConfig {
+    ComputeConfig {
+        layers: Vec::new(),
+        ..compute.clone()
     }
 }
 
@@ -1592,12 +1595,9 @@ fn fill_area(
     // (no stride, no seam) are read as slices of the stored rows; others are gathered first.
     let run = contiguous_run(&sel.cols);
     let ncols = sel.cols.len();
-    // The evaluator waited for the step's heights, so they are stored.
-    let Some((z_step, below_step)) = ev.stored else {
-        return Err(QueryError::HeightsUnavailable {
-            detail: format!("cycle '{}': the heights of the step are not stored", lc.id),
-        });
-    };
+    // In by now: the evaluator waited for them.
+    let step = lc.step_heights(q.member, plan.time)?;
+    let (z_step, below_step) = (&step.geopotential_height, &step.below_ground);
     let mut gathered = RowGather::default();
     let mut column_plans = false;
     for (qi, field) in fields.iter_mut().enumerate() {

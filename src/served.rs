@@ -11,8 +11,6 @@ use std::sync::{Condvar, Mutex, OnceLock};
 
 use ndarray::{s, Array3, Array5};
 
-use crate::model::Heights;
-
 /// The heights of one (member, time) step.
 #[derive(Clone, Debug, PartialEq)]
 pub struct StepHeights {
@@ -57,18 +55,6 @@ impl ServedHeights {
             set_lock: Mutex::new(()),
             set_signal: Condvar::new(),
         }
-    }
-
-    /// Every step of the batch output `heights` (its thickness layers are not kept).
-    pub fn from_heights(heights: &Heights) -> Self {
-        let (members, times, ..) = heights.geopotential_height.dim();
-        let all = Self::pending(members, times, heights.method.clone());
-        for m in 0..members {
-            for t in 0..times {
-                all.set(m, t, step_of(heights, m, t));
-            }
-        }
-        all
     }
 
     /// The method sentence.
@@ -136,11 +122,6 @@ impl ServedHeights {
         self.set_signal.notify_all();
     }
 
-    /// Whether every step has been computed (or has failed).
-    pub fn is_complete(&self) -> bool {
-        self.steps.iter().all(|c| c.get().is_some())
-    }
-
     /// Number of steps whose heights are in.
     pub fn ready_steps(&self) -> usize {
         self.steps
@@ -198,20 +179,6 @@ impl ServedHeights {
     }
 }
 
-/// Step (`member`, `time`) of batch output.
-fn step_of(heights: &Heights, member: usize, time: usize) -> StepHeights {
-    StepHeights {
-        geopotential_height: heights
-            .geopotential_height
-            .slice(s![member, time, .., .., ..])
-            .to_owned(),
-        below_ground: heights
-            .below_ground
-            .slice(s![member, time, .., .., ..])
-            .to_owned(),
-    }
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -238,11 +205,11 @@ mod tests {
             h.set(0, 1, step(1.0));
             assert_eq!(waiter.join().unwrap(), Ok(step(1.0)));
         });
-        assert!(!h.is_complete());
+        assert!(!h.pending_steps().is_empty());
         assert_eq!(h.ready_steps(), 2);
         h.fail_pending("stopped");
         assert_eq!(h.ready_steps(), 2);
-        assert!(h.is_complete());
+        assert!(h.pending_steps().is_empty());
         assert_eq!(
             h.ready(1, 2),
             Some(&step(12.0)),
@@ -263,15 +230,17 @@ mod tests {
         z.iter_mut().enumerate().for_each(|(i, v)| *v = i as f32);
         let mut b = Array5::<u8>::zeros(z.dim());
         b[[1, 0, 2, 1, 1]] = 1;
-        let heights = Heights {
-            geopotential_height: z.clone(),
-            below_ground: b.clone(),
-            thickness: Vec::new(),
-            constants: crate::physics::Constants::default(),
-            method: "m".into(),
-        };
-        let served = ServedHeights::from_heights(&heights);
-        assert!(served.is_complete());
+        let served = ServedHeights::pending(2, 2, "m".into());
+        for m in 0..2 {
+            for t in 0..2 {
+                let step = StepHeights {
+                    geopotential_height: z.slice(s![m, t, .., .., ..]).to_owned(),
+                    below_ground: b.slice(s![m, t, .., .., ..]).to_owned(),
+                };
+                served.set(m, t, step);
+            }
+        }
+        assert!(served.pending_steps().is_empty());
         assert_eq!(served.method(), "m");
         assert_eq!(served.ready(1, 0).unwrap().below_ground[[2, 1, 1]], 1);
         assert_eq!(served.to_arrays().unwrap(), (z, b));
