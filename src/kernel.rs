@@ -36,7 +36,8 @@
 //! `tests/kernel.rs` checks them against each other column by column.
 
 use ndarray::{
-    s, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2, Axis,
+    s, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2,
+    ArrayViewMut3, Axis,
 };
 use rayon::prelude::*;
 
@@ -623,6 +624,18 @@ impl<'a> StepFields<'a> {
     }
 }
 
+/// The outputs of one (member, time) step, or of a band of its latitude rows, wherever they
+/// are held: what [`IsobaricKernel::run_into`] writes.
+#[derive(Debug)]
+pub struct StepOutputs<'a> {
+    /// Geopotential height on every level, `[level, lat, lon]` bottom-up; `NaN` where masked.
+    pub geopotential_height: ArrayViewMut3<'a, f32>,
+    /// 1 where the level lies below the ground, else 0, `[level, lat, lon]`.
+    pub below_ground: ArrayViewMut3<'a, u8>,
+    /// Per layer, in the kernel's order: thickness and its below-ground flag, `[lat, lon]`.
+    pub thickness: Vec<(ArrayViewMut2<'a, f32>, ArrayViewMut2<'a, u8>)>,
+}
+
 /// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
 fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
     match v.to_slice() {
@@ -861,8 +874,22 @@ impl IsobaricKernel {
         for m in 0..members {
             for t in 0..times {
                 let views = StepFields::of(cycle, surface, (m, t));
-                let step_heights = heights.as_mut().map(|(z, b)| (&mut **z, &mut **b));
-                self.step_into(&views, (m, t), n_levels, step_heights, thickness);
+                let step_heights = heights.as_mut().map(|(z, b)| {
+                    (
+                        z.slice_mut(s![m, t, .., .., ..]),
+                        b.slice_mut(s![m, t, .., .., ..]),
+                    )
+                });
+                let step_thickness = thickness
+                    .iter_mut()
+                    .map(|th| {
+                        (
+                            th.values.slice_mut(s![m, t, .., ..]),
+                            th.below_ground.slice_mut(s![m, t, .., ..]),
+                        )
+                    })
+                    .collect();
+                self.step_into(&views, n_levels, step_heights, step_thickness);
                 done += 1;
                 progress(done);
             }
@@ -908,7 +935,52 @@ impl IsobaricKernel {
         (member, time): (usize, usize),
         out: &mut KernelOutput,
     ) -> Result<(), NotApplicable> {
-        let (members, times, levels, rows, cols) = out.geopotential_height.dim();
+        let (members, times, ..) = out.geopotential_height.dim();
+        let in_range = |dim: &[usize]| member < dim[0] && time < dim[1];
+        let all_in_range = in_range(out.below_ground.shape())
+            && out
+                .thickness
+                .iter()
+                .all(|th| in_range(th.values.shape()) && in_range(th.below_ground.shape()));
+        if member >= members || time >= times || !all_in_range {
+            return Err(NotApplicable::StepIndex {
+                member,
+                time,
+                members,
+                times,
+            });
+        }
+        let (m, t) = (member, time);
+        let outputs = StepOutputs {
+            geopotential_height: out.geopotential_height.slice_mut(s![m, t, .., .., ..]),
+            below_ground: out.below_ground.slice_mut(s![m, t, .., .., ..]),
+            thickness: out
+                .thickness
+                .iter_mut()
+                .map(|th| {
+                    (
+                        th.values.slice_mut(s![m, t, .., ..]),
+                        th.below_ground.slice_mut(s![m, t, .., ..]),
+                    )
+                })
+                .collect(),
+        };
+        self.run_into(step, outputs)
+    }
+
+    /// One step of [`IsobaricKernel::run`] over the rows `step` holds (a whole step, or a
+    /// band of latitude rows of one: every column is computed on its own), into `out`, shaped
+    /// as the fields: the same values `run` stores for those rows.
+    ///
+    /// Refuses (before writing anything) fields or outputs whose shapes do not match each
+    /// other or the levels and layers of the kernel, or a missing humidity where the kernel
+    /// was prepared with one.
+    pub fn run_into(
+        &self,
+        step: StepFields<'_>,
+        out: StepOutputs<'_>,
+    ) -> Result<(), NotApplicable> {
+        let (rows, cols) = step.ps.dim();
         let shape = |field: &'static str, found: &[usize], expected: Vec<usize>| {
             if found == expected.as_slice() {
                 Ok(())
@@ -920,57 +992,41 @@ impl IsobaricKernel {
                 })
             }
         };
-        if member >= members || time >= times {
-            return Err(NotApplicable::StepIndex {
-                member,
-                time,
-                members,
-                times,
-            });
-        }
         let n = self.levels.len();
-        shape("geopotential_height", &[levels], vec![n])?;
+        let field3 = vec![n, rows, cols];
         shape(
-            "below_ground",
-            out.below_ground.shape(),
-            vec![members, times, n, rows, cols],
+            "geopotential_height",
+            out.geopotential_height.shape(),
+            field3.clone(),
         )?;
-        shape("air_temperature", step.t.shape(), vec![n, rows, cols])?;
+        shape("below_ground", out.below_ground.shape(), field3.clone())?;
+        shape("air_temperature", step.t.shape(), field3.clone())?;
         match step.q {
-            Some(q) => shape("humidity", q.shape(), vec![n, rows, cols])?,
+            Some(q) => shape("humidity", q.shape(), field3)?,
             None if self.moisture.iter().any(|m| *m != Moisture::Dry) => {
-                shape("humidity", &[], vec![n, rows, cols])?
+                shape("humidity", &[], field3)?
             }
             None => {}
         }
-        shape("surface_air_pressure", step.ps.shape(), vec![rows, cols])?;
         shape("surface_height", step.zs.shape(), vec![rows, cols])?;
         shape("thickness", &[out.thickness.len()], vec![self.layers.len()])?;
-        for th in &out.thickness {
-            shape(
-                "thickness",
-                th.values.shape(),
-                vec![members, times, rows, cols],
-            )?;
-            shape(
-                "thickness",
-                th.below_ground.shape(),
-                vec![members, times, rows, cols],
-            )?;
+        for (values, below) in &out.thickness {
+            shape("thickness", values.shape(), vec![rows, cols])?;
+            shape("thickness", below.shape(), vec![rows, cols])?;
         }
-        let heights = Some((&mut out.geopotential_height, &mut out.below_ground));
-        self.step_into(&step, (member, time), levels, heights, &mut out.thickness);
+        let heights = Some((out.geopotential_height, out.below_ground));
+        self.step_into(&step, n, heights, out.thickness);
         Ok(())
     }
 
-    /// One step, rows in parallel (shapes already checked).
+    /// One step, rows in parallel (shapes already checked): heights and flags into
+    /// `heights` when given, `[level, lat, lon]`, and each layer into its pair of `thickness`.
     fn step_into(
         &self,
         views: &StepFields<'_>,
-        (m, t): (usize, usize),
         n_levels: usize,
-        heights: Option<(&mut Array5<f32>, &mut Array5<u8>)>,
-        thickness: &mut [LayerThickness],
+        heights: Option<(ArrayViewMut3<'_, f32>, ArrayViewMut3<'_, u8>)>,
+        thickness: Vec<(ArrayViewMut2<'_, f32>, ArrayViewMut2<'_, u8>)>,
     ) {
         let (rows, cols) = views.ps.dim();
         let nl = self.layers.len();
@@ -983,26 +1039,16 @@ impl IsobaricKernel {
             })
             .collect();
         if let Some((height, below)) = heights {
-            let z_rows = height
-                .slice_mut(s![m, t, .., .., ..])
-                .into_axis_iter_mut(Axis(1));
-            let b_rows = below
-                .slice_mut(s![m, t, .., .., ..])
-                .into_axis_iter_mut(Axis(1));
+            let z_rows = height.into_axis_iter_mut(Axis(1));
+            let b_rows = below.into_axis_iter_mut(Axis(1));
             for (out, (z, b)) in outs.iter_mut().zip(z_rows.zip(b_rows)) {
                 out.z = Some(z);
                 out.below = Some(b);
             }
         }
-        for th in thickness.iter_mut() {
-            let th_rows = th
-                .values
-                .slice_mut(s![m, t, .., ..])
-                .into_axis_iter_mut(Axis(0));
-            let tb_rows = th
-                .below_ground
-                .slice_mut(s![m, t, .., ..])
-                .into_axis_iter_mut(Axis(0));
+        for (values, below) in thickness {
+            let th_rows = values.into_axis_iter_mut(Axis(0));
+            let tb_rows = below.into_axis_iter_mut(Axis(0));
             for (out, (a, b)) in outs.iter_mut().zip(th_rows.zip(tb_rows)) {
                 out.thick.push(a);
                 out.thick_below.push(b);
