@@ -820,29 +820,106 @@ impl<'f> StepwiseField<'f> {
             out,
         )?;
         if let Some(i) = bad {
-            let req = FieldRequest {
-                file,
-                var: &self.var,
-                axes: self.axes,
-                reverse_levels: self.reverse_levels,
-                to_si: self.to_si,
-                check: self.check,
-            };
             // File order is canonical order here, steps first.
             let step = member * self.shape[1] + time;
             let value = out.get(i).copied().unwrap_or(f32::NAN);
-            return Err(implausible(
-                &req,
-                &self.file_shape,
-                value,
-                step * out.len() + i,
-            ));
+            return Err(self.implausible_at(file, value, step * out.len() + i));
         }
         if self.reverse_levels {
             let [_, _, z, y, x] = self.shape;
             reverse_axis_in_place(out, 1, z, y * x);
         }
         Ok(())
+    }
+
+    /// Whether [`StepwiseField::read_rows`] reads a band of rows on its own: the variable is
+    /// stored contiguously with latitude and longitude dimensions. Otherwise (chunked, maybe
+    /// compressed, storage) a band would cost the decompression of whole chunks again and
+    /// again, and only whole steps should be read.
+    pub(crate) fn reads_bands(&self, file: &str) -> Result<bool, IngestError> {
+        let contiguous = self
+            .var
+            .chunking()
+            .map_err(|e| read_error(file, &self.var, e))?
+            .is_none();
+        Ok(contiguous && self.axes[3].is_some() && self.axes[4].is_some())
+    }
+
+    /// Reads and decodes latitude rows `rows` of step (`member`, `time`) into `out`,
+    /// `[level, row, lon]` bottom-up, SI units: the same values [`StepwiseField::read_step`]
+    /// puts at those rows, bit for bit. `out` has exactly the band's length. Bands narrower
+    /// than a step only where [`StepwiseField::reads_bands`].
+    pub(crate) fn read_rows(
+        &self,
+        file: &str,
+        (member, time): (usize, usize),
+        rows: std::ops::Range<usize>,
+        out: &mut [f32],
+    ) -> Result<(), IngestError> {
+        let [_, times, z, y, x] = self.shape;
+        if rows == (0..y) {
+            return self.read_step(file, member, time, out);
+        }
+        let n = rows.len();
+        if rows.end > y || out.len() != z * n * x || !self.reads_bands(file)? {
+            return Err(IngestError::Read {
+                file: file.to_string(),
+                variable: self.var.name(),
+                detail: format!(
+                    "cannot read rows {}..{} of {y} into {} values",
+                    rows.start,
+                    rows.end,
+                    out.len()
+                ),
+            });
+        }
+        // A few levels per call, about `BAND_VALUES` values: each part is decoded while the
+        // read has just brought it into the cache, and the library's own work per call is
+        // paid a few times a band rather than once per level.
+        let plane = n * x;
+        let per = (BAND_VALUES / plane.max(1)).clamp(1, z.max(1));
+        let limits = self.check.as_ref().map(Limits::of);
+        for (g, part) in out.chunks_mut((per * plane).max(1)).enumerate() {
+            let k0 = g * per;
+            let mut extents: Vec<Extent> = Vec::with_capacity(5);
+            for (axis, i) in [(self.axes[0], member), (self.axes[1], time)] {
+                if axis.is_some() {
+                    extents.push(Extent::from(i..i + 1));
+                }
+            }
+            if self.axes[2].is_some() {
+                extents.push(Extent::from(k0..k0 + part.len() / plane.max(1)));
+            }
+            extents.push(Extent::from(rows.clone()));
+            extents.push(Extent::from(0..x));
+            self.var
+                .get_values_into::<f32, _>(part, extents)
+                .map_err(|e| read_error(file, &self.var, e))?;
+            if let Some(i) = self.decoder.decode_narrow_in_place(part, limits) {
+                let value = part.get(i).copied().unwrap_or(f32::NAN);
+                let (k, within) = (k0 + i / plane.max(1), i % plane.max(1));
+                let step = member * times + time;
+                let at = ((step * z + k) * y + rows.start + within / x) * x + within % x;
+                return Err(self.implausible_at(file, value, at));
+            }
+        }
+        if self.reverse_levels {
+            reverse_axis_in_place(out, 1, z, plane);
+        }
+        Ok(())
+    }
+
+    /// The error for the implausible `value` at flat index `i` of the variable (file order).
+    fn implausible_at(&self, file: &str, value: f32, i: usize) -> IngestError {
+        let req = FieldRequest {
+            file,
+            var: &self.var,
+            axes: self.axes,
+            reverse_levels: self.reverse_levels,
+            to_si: self.to_si,
+            check: self.check,
+        };
+        implausible(&req, &self.file_shape, value, i)
     }
 }
 

@@ -420,6 +420,125 @@ where
     Ok((cycle, outcome.result))
 }
 
+/// Temperature and humidity of a cycle read a band of latitude rows of one (member, time) step
+/// at a time, for [`read_cycle_in_bands`]: exactly the values [`read_cycle`] puts at those
+/// rows, bit for bit.
+pub struct BandReader<'p, 'f> {
+    fields: Stepwise<'p, 'f>,
+    /// `[member, time, level, lat, lon]` of the cycle.
+    dim: (usize, usize, usize, usize, usize),
+    /// Whether a band narrower than a step can be read (see [`BandReader::reads_bands`]).
+    bands: bool,
+    /// Whether temperature, humidity have shown a valid value yet.
+    valid: [bool; 2],
+    session: &'p std::sync::MutexGuard<'static, ()>,
+}
+
+impl BandReader<'_, '_> {
+    /// The cycle's `[member, time, level, lat, lon]`.
+    pub fn dim(&self) -> (usize, usize, usize, usize, usize) {
+        self.dim
+    }
+
+    /// Whether bands of fewer rows than a step are read on their own. Otherwise (a variable
+    /// stored in chunks, maybe compressed) every band must be a whole step: reading a chunk
+    /// band by band would decompress it again for every band.
+    pub fn reads_bands(&self) -> bool {
+        self.bands
+    }
+
+    /// The NetCDF session lock this read holds, for opening another file in the same session.
+    pub fn session(&self) -> &std::sync::MutexGuard<'static, ()> {
+        self.session
+    }
+
+    /// Reads rows `rows` of step (`member`, `time`): temperature into `t` and, for a cycle
+    /// with humidity, the humidity into `q`, each `[level, row, lon]` bottom-up, SI units,
+    /// exactly a band long. The checks of [`read_cycle`] apply (a bad value names the file,
+    /// the variable and the index).
+    pub fn read(
+        &mut self,
+        step: (usize, usize),
+        rows: std::ops::Range<usize>,
+        t: &mut [f32],
+        q: Option<&mut [f32]>,
+    ) -> Result<(), IngestError> {
+        let file = self.fields.file;
+        if let Some(plan) = self.fields.temperature {
+            plan.read_rows(file, step, rows.clone(), t)?;
+            self.valid[0] = self.valid[0] || t.iter().any(|x| !x.is_nan());
+        }
+        if let (Some(plan), Some(q)) = (self.fields.humidity, q) {
+            plan.read_rows(file, step, rows, q)?;
+            self.valid[1] = self.valid[1] || q.iter().any(|x| !x.is_nan());
+        }
+        Ok(())
+    }
+
+    /// After every band has been read: the check [`read_cycle`] makes on temperature and
+    /// humidity, at least one valid value each.
+    pub fn finish(&self) -> Result<(), IngestError> {
+        let planned = [self.fields.temperature, self.fields.humidity];
+        for (plan, valid) in planned.iter().zip(self.valid) {
+            if let (Some(plan), false) = (plan, valid) {
+                return Err(IngestError::NoValidData {
+                    file: self.fields.file.to_string(),
+                    variable: plan.name(),
+                });
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Reads everything of the cycle in `path` but the values of temperature and humidity
+/// (coordinates, surface fields, file heights) and lets `work` read those a band of latitude
+/// rows at a time ([`BandReader`]), holding the NetCDF session for as long as `work` runs.
+///
+/// `work` sees the cycle with its final shapes and metadata, temperature and humidity left
+/// zero (untouched memory). Returns `None`, without calling `work`, where the file's layout
+/// needs whole-variable reads (packed as wider types, dimensions out of order, humidity on
+/// its own axis or broadcast): read it with [`read_cycle`] then.
+///
+/// # Errors
+/// As [`read_cycle`] for everything read before `work` starts; `work` gets the errors of its
+/// own reads.
+pub fn read_cycle_in_bands<R>(
+    path: &Path,
+    config: &IngestConfig,
+    work: impl FnOnce(&Cycle, &mut BandReader<'_, '_>) -> R,
+) -> Result<Option<R>, IngestError> {
+    let label = checked_label(path)?;
+    let session = crate::netcdf_session::lock();
+    let file = open_quietly(path, &label)?;
+    let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
+    let cycle = reader.read(path)?;
+    let planned = reader.take_stepwise();
+    let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
+    let fields = Stepwise {
+        file: &label,
+        temperature: plan_of(reader::Bulk::Temperature),
+        humidity: plan_of(reader::Bulk::Humidity),
+    };
+    let complete =
+        fields.temperature.is_some() && (cycle.humidity.is_none() || fields.humidity.is_some());
+    if !complete {
+        return Ok(None);
+    }
+    let mut bands = true;
+    for plan in [fields.temperature, fields.humidity].into_iter().flatten() {
+        bands = bands && plan.reads_bands(&label)?;
+    }
+    let mut band_reader = BandReader {
+        fields,
+        dim: cycle.temperature.dim(),
+        bands,
+        valid: [false; 2],
+        session: &session,
+    };
+    Ok(Some(work(&cycle, &mut band_reader)))
+}
+
 /// What the reading scope of [`read_cycle_overlapped`] hands back.
 struct Overlap<R> {
     /// The worker's result, when it ran.
