@@ -11,10 +11,11 @@
 
 use std::path::{Path, PathBuf};
 
-use ndarray::{s, Array4, Array5, ArrayView2};
+use ndarray::{s, Array4, Array5, ArrayView2, ArrayView3};
 use rayon::prelude::*;
 
 use crate::model::{Cycle, Heights, Layer, Vertical};
+use crate::physics::Constants;
 
 /// `_FillValue` of every float variable: the netCDF default fill for `float` (`NC_FILL_FLOAT`
 /// in netcdf.h), so that readers which ignore the attribute still see a recognisable value.
@@ -145,10 +146,210 @@ pub fn write_heights(
     path: &Path,
     options: &OutputOptions,
 ) -> Result<(), OutputError> {
-    let plan = Plan::new(cycle, heights, path, options)?;
+    let layers: Vec<Layer> = heights.thickness.iter().map(|th| th.layer).collect();
+    let plan = Plan::new(cycle, &layers, path, options)?;
+    plan.check_heights(heights)?;
     let partial = PartialFile::new(path)?;
-    write_file(&plan, cycle, heights, options, partial.path())?;
+    let session = crate::netcdf_session::lock();
+    let about = HeightsAbout {
+        method: &heights.method,
+        constants: &heights.constants,
+        layers: &layers,
+    };
+    let mut file = create_defined(&plan, cycle, &about, options, partial.path(), &session)?;
+    write_data(&mut file, &plan, cycle, heights)?;
+    file.close()
+        .map_err(plan.nc_error(format!("closing '{}'", partial.path().display())))?;
+    drop(session);
     partial.commit()
+}
+
+/// An output file being written band by band: everything defined (as [`write_heights`]
+/// defines it) when it is created, then the values of each band of latitude rows of each
+/// (member, time) step ([`HeightsWriter::put_rows`]), then closed and renamed into place
+/// ([`HeightsWriter::commit`]). Dropped uncommitted, the partial file is removed.
+pub struct HeightsWriter {
+    plan: Plan,
+    /// Declared before `partial`, so that the file is closed before the partial file is
+    /// removed on drop.
+    file: Option<netcdf::FileMut>,
+    partial: PartialFile,
+    reverse: bool,
+}
+
+impl HeightsWriter {
+    /// Creates the partial file beside `path` and defines everything in it for `cycle`; the
+    /// caller holds the NetCDF session lock (`session`) until the writer is committed or
+    /// dropped.
+    pub fn create(
+        cycle: &Cycle,
+        about: &HeightsAbout<'_>,
+        path: &Path,
+        options: &OutputOptions,
+        session: &std::sync::MutexGuard<'static, ()>,
+    ) -> Result<Self, OutputError> {
+        let plan = Plan::new(cycle, about.layers, path, options)?;
+        let partial = PartialFile::new(path)?;
+        let file = create_defined(&plan, cycle, about, options, partial.path(), session)?;
+        Ok(Self {
+            plan,
+            file: Some(file),
+            partial,
+            reverse: cycle.levels_top_down_in_file,
+        })
+    }
+
+    /// Whether levels go into the file top-down (as the input had them): what
+    /// [`FileRows::fill`] needs to know.
+    pub fn levels_reversed(&self) -> bool {
+        self.reverse
+    }
+
+    /// Writes `band`, rows `rows` of member `m` and time step `t`, into every data variable.
+    pub fn put_rows(
+        &mut self,
+        (m, t): (usize, usize),
+        rows: std::ops::Range<usize>,
+        band: &FileRows,
+    ) -> Result<(), OutputError> {
+        let plan = &self.plan;
+        let n = rows.len();
+        let plane = n * plan.cols;
+        let lengths = |b: &FileRows| {
+            let mut l = vec![b.heights.len(), b.flags.len()];
+            l.extend(b.thickness.iter().flat_map(|(v, f)| [v.len(), f.len()]));
+            l
+        };
+        let mut expected = vec![plan.levels * plane; 2];
+        expected.extend(std::iter::repeat_n(plane, 2 * plan.thickness_names.len()));
+        let found = lengths(band);
+        if m >= plan.members || t >= plan.times || rows.end > plan.rows || found != expected {
+            return Err(OutputError::Shape {
+                path: plan.path.clone(),
+                what: format!(
+                    "the values of rows {}..{} of step ({m}, {t}) (heights, flags, then each layer's)",
+                    rows.start, rows.end
+                ),
+                expected,
+                found,
+            });
+        }
+        let file = self.file.as_mut().ok_or_else(|| OutputError::Io {
+            path: plan.path.clone(),
+            context: "writing after the file was closed".into(),
+            source: std::io::Error::other("closed"),
+        })?;
+        let extents = |levels: Option<usize>| {
+            let mut e: Vec<netcdf::Extent> = Vec::with_capacity(5);
+            if plan.members > 1 {
+                e.push((m..m + 1).into());
+            }
+            e.push((t..t + 1).into());
+            if let Some(levels) = levels {
+                e.push((0..levels).into());
+            }
+            e.push(rows.clone().into());
+            e.push((..).into());
+            e
+        };
+        let name = "geopotential_height";
+        data_variable(file, plan, name)?
+            .put_values(&band.heights, extents(Some(plan.levels)))
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        let name = "below_ground";
+        data_variable(file, plan, name)?
+            .put_values(&band.flags, extents(Some(plan.levels)))
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        for ((values, flags), name) in band.thickness.iter().zip(&plan.thickness_names) {
+            data_variable(file, plan, name)?
+                .put_values(values, extents(None))
+                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+            let flag_name = format!("{name}_below_ground");
+            data_variable(file, plan, &flag_name)?
+                .put_values(flags, extents(None))
+                .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
+        }
+        Ok(())
+    }
+
+    /// Closes the file and renames it into place. Every row of every step must have been
+    /// written: the variables have no fill pass (see [`write_heights`]).
+    pub fn commit(mut self) -> Result<(), OutputError> {
+        if let Some(file) = self.file.take() {
+            file.close().map_err(
+                self.plan
+                    .nc_error(format!("closing '{}'", self.partial.path().display())),
+            )?;
+        }
+        self.partial.commit()
+    }
+}
+
+/// One band of latitude rows of one step as the file holds it: levels in the file's order,
+/// non-finite heights as the fill value, flags as bytes; filled (on any thread) by
+/// [`FileRows::fill`] and written by [`HeightsWriter::put_rows`]. The buffers are reused from
+/// band to band.
+#[derive(Debug, Default)]
+pub struct FileRows {
+    heights: Vec<f32>,
+    flags: Vec<i8>,
+    thickness: Vec<(Vec<f32>, Vec<i8>)>,
+}
+
+impl FileRows {
+    /// Converts the heights and flags `z`, `below` (`[level, row, lon]`, bottom-up) and the
+    /// layers' `thickness` (`[row, lon]` each) into this band; levels are reversed when
+    /// `reverse` ([`HeightsWriter::levels_reversed`]).
+    pub fn fill(
+        &mut self,
+        reverse: bool,
+        z: ArrayView3<'_, f32>,
+        below: ArrayView3<'_, u8>,
+        thickness: &[(ArrayView2<'_, f32>, ArrayView2<'_, u8>)],
+    ) {
+        let (levels, rows, cols) = z.dim();
+        let plane = rows * cols;
+        fill_levels(&mut self.heights, z, reverse, to_file_value);
+        fill_levels(&mut self.flags, below, reverse, to_file_flag);
+        self.thickness
+            .resize_with(thickness.len(), Default::default);
+        for ((values, flags), (v, f)) in self.thickness.iter_mut().zip(thickness) {
+            set_len(values, plane);
+            set_len(flags, plane);
+            copy_plane(*v, values, to_file_value);
+            copy_plane(*f, flags, to_file_flag);
+        }
+        debug_assert_eq!(self.heights.len(), levels * plane);
+    }
+}
+
+/// Makes `buf` `len` long; a buffer that must grow is allocated afresh as a large field
+/// ([`crate::buffers::zeroed_field`]), since every value is written after.
+fn set_len<T: Copy + Default>(buf: &mut Vec<T>, len: usize) {
+    if buf.capacity() < len {
+        *buf = crate::buffers::zeroed_field(len);
+    } else {
+        buf.resize(len, T::default());
+    }
+}
+
+/// `out` becomes the levels of `field` (`[level, row, lon]`) in file order, converted.
+fn fill_levels<S: Copy, D: Copy + Default>(
+    out: &mut Vec<D>,
+    field: ArrayView3<'_, S>,
+    reverse: bool,
+    convert: impl Fn(S) -> D + Copy,
+) {
+    let (levels, rows, cols) = field.dim();
+    let plane = rows * cols;
+    set_len(out, levels * plane);
+    if plane == 0 {
+        return;
+    }
+    for (k_file, o) in out.chunks_mut(plane).enumerate() {
+        let k = if reverse { levels - 1 - k_file } else { k_file };
+        copy_plane(field.index_axis(ndarray::Axis(0), k), o, convert);
+    }
 }
 
 /// The variable name of a layer's thickness: `thickness_<bottom>_<top>` in hPa, with `p`
@@ -175,7 +376,7 @@ struct Plan {
 impl Plan {
     fn new(
         cycle: &Cycle,
-        heights: &Heights,
+        layers: &[Layer],
         path: &Path,
         options: &OutputOptions,
     ) -> Result<Self, OutputError> {
@@ -215,32 +416,16 @@ impl Plan {
                 &[b_half.len()],
             )?;
         }
-        let shape5 = vec![members, times, levels, rows, cols];
-        let shape4 = vec![members, times, rows, cols];
-        check_shape(
-            path,
-            "geopotential_height",
-            &shape5,
-            heights.geopotential_height.shape(),
-        )?;
-        check_shape(path, "below_ground", &shape5, heights.below_ground.shape())?;
-        let mut thickness_names: Vec<String> = Vec::with_capacity(heights.thickness.len());
-        for layer in &heights.thickness {
-            let name = thickness_variable_name(&layer.layer);
+        let mut thickness_names: Vec<String> = Vec::with_capacity(layers.len());
+        for layer in layers {
+            let name = thickness_variable_name(layer);
             if thickness_names.contains(&name) {
                 return Err(OutputError::DuplicateLayer {
                     path: path_buf,
-                    label: layer.layer.label_hpa(),
+                    label: layer.label_hpa(),
                     variable: name,
                 });
             }
-            check_shape(path, &name, &shape4, layer.values.shape())?;
-            check_shape(
-                path,
-                &format!("{name}_below_ground"),
-                &shape4,
-                layer.below_ground.shape(),
-            )?;
             thickness_names.push(name);
         }
         let time_units = match &cycle.reference_time {
@@ -263,6 +448,30 @@ impl Plan {
             time_units,
             thickness_names,
         })
+    }
+
+    /// Checks that the arrays of `heights` have the shapes of the cycle the plan was made for.
+    fn check_heights(&self, heights: &Heights) -> Result<(), OutputError> {
+        let path = &self.path;
+        let shape5 = [self.members, self.times, self.levels, self.rows, self.cols];
+        let shape4 = [self.members, self.times, self.rows, self.cols];
+        check_shape(
+            path,
+            "geopotential_height",
+            &shape5,
+            heights.geopotential_height.shape(),
+        )?;
+        check_shape(path, "below_ground", &shape5, heights.below_ground.shape())?;
+        for (layer, name) in heights.thickness.iter().zip(&self.thickness_names) {
+            check_shape(path, name, &shape4, layer.values.shape())?;
+            check_shape(
+                path,
+                &format!("{name}_below_ground"),
+                &shape4,
+                layer.below_ground.shape(),
+            )?;
+        }
+        Ok(())
     }
 
     /// Dimension names of a 3-D field, outermost first.
@@ -440,29 +649,33 @@ impl Drop for PartialFile {
     }
 }
 
-/// Reused conversion buffers, sized for the largest variable.
-#[derive(Default)]
-struct Buffers {
-    floats: Vec<f32>,
-    flags: Vec<i8>,
+/// What the file says of how the heights were made, known before any is computed.
+pub struct HeightsAbout<'a> {
+    /// The method, one sentence (the global `method` attribute).
+    pub method: &'a str,
+    /// The constants computed with.
+    pub constants: &'a Constants,
+    /// The layers, in the order of the thickness variables.
+    pub layers: &'a [Layer],
 }
 
-fn write_file(
+/// Creates `partial` and defines everything in it: global attributes, dimensions and
+/// coordinates (with their values), the data variables with their attributes and storage,
+/// no data yet. The caller holds the NetCDF session (`_session`).
+fn create_defined(
     plan: &Plan,
     cycle: &Cycle,
-    heights: &Heights,
+    about: &HeightsAbout<'_>,
     options: &OutputOptions,
     partial: &Path,
-) -> Result<(), OutputError> {
-    let _session = crate::netcdf_session::lock();
+    _session: &std::sync::MutexGuard<'static, ()>,
+) -> Result<netcdf::FileMut, OutputError> {
     let mut file = netcdf::create_with(partial, netcdf::Options::NETCDF4)
         .map_err(plan.nc_error(format!("creating '{}'", partial.display())))?;
 
-    write_global_attributes(&mut file, plan, cycle, heights, options)?;
+    write_global_attributes(&mut file, plan, cycle, about, options)?;
     write_coordinates(&mut file, plan, cycle)?;
     let level_dim = level_dimension_name(&cycle.vertical);
-    let reverse = cycle.levels_top_down_in_file;
-    let mut buffers = Buffers::default();
 
     // Geopotential height and its flag.
     let dims5 = plan.dims5(level_dim);
@@ -484,19 +697,10 @@ fn write_file(
             &format!(
                 "geopotential metres of g0 = {} m s-2; heights of levels below the ground are \
                  extrapolated (see below_ground)",
-                heights.constants.standard_gravity
+                about.constants.standard_gravity
             ),
         )?;
         put_coordinates_attribute(&mut var, plan, name)?;
-        put_5d(
-            &mut var,
-            &heights.geopotential_height,
-            reverse,
-            WRITE_GROUP_BYTES,
-            &mut buffers.floats,
-            to_file_value,
-        )
-        .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
     }
     {
         let name = "below_ground";
@@ -521,22 +725,13 @@ fn write_file(
              (common practice, as in sea-level pressure reduction); mask these points where \
              only physical heights are wanted",
         )?;
-        put_5d(
-            &mut var,
-            &heights.below_ground,
-            reverse,
-            WRITE_GROUP_BYTES,
-            &mut buffers.flags,
-            to_file_flag,
-        )
-        .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
     }
 
     // One thickness variable and flag per layer.
     let dims4 = plan.dims4();
-    for (layer, name) in heights.thickness.iter().zip(&plan.thickness_names) {
+    for (layer, name) in about.layers.iter().zip(&plan.thickness_names) {
         let flag_name = format!("{name}_below_ground");
-        let label = layer.layer.label_hpa();
+        let label = layer.label_hpa();
         {
             let mut var = file
                 .add_variable::<f32>(name, &dims4)
@@ -562,21 +757,12 @@ fn write_file(
                 plan,
                 name,
                 "layer_bottom_pressure",
-                layer.layer.bottom_pa,
+                layer.bottom_pa,
             )?;
-            put_attr(
-                &mut var,
-                plan,
-                name,
-                "layer_top_pressure",
-                layer.layer.top_pa,
-            )?;
+            put_attr(&mut var, plan, name, "layer_top_pressure", layer.top_pa)?;
             put_text(&mut var, plan, name, "layer_pressure_units", "Pa")?;
             put_text(&mut var, plan, name, "ancillary_variables", &flag_name)?;
             put_coordinates_attribute(&mut var, plan, name)?;
-            copy_4d(&layer.values, &mut buffers.floats, to_file_value);
-            var.put_values(&buffers.floats, ..)
-                .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
         }
         {
             let mut var = file
@@ -601,14 +787,68 @@ fn write_file(
                      (common practice)"
                 ),
             )?;
-            copy_4d(&layer.below_ground, &mut buffers.flags, to_file_flag);
-            var.put_values(&buffers.flags, ..)
-                .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
         }
     }
+    Ok(file)
+}
 
-    file.close()
-        .map_err(plan.nc_error(format!("closing '{}'", partial.display())))
+/// A data variable of the file, defined by [`create_defined`].
+fn data_variable<'f>(
+    file: &'f mut netcdf::FileMut,
+    plan: &Plan,
+    name: &str,
+) -> Result<netcdf::VariableMut<'f>, OutputError> {
+    let missing = || OutputError::Netcdf {
+        path: plan.path.clone(),
+        context: format!("writing variable '{name}'"),
+        source: netcdf::Error::NotFound(name.to_string()),
+    };
+    file.variable_mut(name).ok_or_else(missing)
+}
+
+/// Writes every value of `heights` into the variables [`create_defined`] made: each 3-D field
+/// a few planes at a time, each 2-D field in one call.
+fn write_data(
+    file: &mut netcdf::FileMut,
+    plan: &Plan,
+    cycle: &Cycle,
+    heights: &Heights,
+) -> Result<(), OutputError> {
+    let reverse = cycle.levels_top_down_in_file;
+    let mut floats: Vec<f32> = Vec::new();
+    let mut flags: Vec<i8> = Vec::new();
+    let name = "geopotential_height";
+    put_5d(
+        &mut data_variable(file, plan, name)?,
+        &heights.geopotential_height,
+        reverse,
+        WRITE_GROUP_BYTES,
+        &mut floats,
+        to_file_value,
+    )
+    .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    let name = "below_ground";
+    put_5d(
+        &mut data_variable(file, plan, name)?,
+        &heights.below_ground,
+        reverse,
+        WRITE_GROUP_BYTES,
+        &mut flags,
+        to_file_flag,
+    )
+    .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+    for (layer, name) in heights.thickness.iter().zip(&plan.thickness_names) {
+        copy_4d(&layer.values, &mut floats, to_file_value);
+        data_variable(file, plan, name)?
+            .put_values(&floats, ..)
+            .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
+        let flag_name = format!("{name}_below_ground");
+        copy_4d(&layer.below_ground, &mut flags, to_file_flag);
+        data_variable(file, plan, &flag_name)?
+            .put_values(&flags, ..)
+            .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
+    }
+    Ok(())
 }
 
 fn level_dimension_name(vertical: &Vertical) -> &'static str {
@@ -622,7 +862,7 @@ fn write_global_attributes(
     file: &mut netcdf::FileMut,
     plan: &Plan,
     cycle: &Cycle,
-    heights: &Heights,
+    about: &HeightsAbout<'_>,
     options: &OutputOptions,
 ) -> Result<(), OutputError> {
     let mut references = String::from(
@@ -643,7 +883,7 @@ fn write_global_attributes(
         ),
         ("history", options.history.clone()),
         ("source", cycle.source.display().to_string()),
-        ("method", heights.method.clone()),
+        ("method", about.method.to_string()),
         ("references", references),
     ];
     for (name, value) in texts {
@@ -651,12 +891,9 @@ fn write_global_attributes(
             .map_err(plan.nc_error(format!("writing global attribute '{name}'")))?;
     }
     let numbers = [
-        (
-            "dry_air_gas_constant",
-            heights.constants.dry_air_gas_constant,
-        ),
-        ("standard_gravity", heights.constants.standard_gravity),
-        ("molar_mass_ratio", heights.constants.molar_mass_ratio),
+        ("dry_air_gas_constant", about.constants.dry_air_gas_constant),
+        ("standard_gravity", about.constants.standard_gravity),
+        ("molar_mass_ratio", about.constants.molar_mass_ratio),
     ];
     for (name, value) in numbers {
         file.add_attribute(name, value)
