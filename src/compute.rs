@@ -118,6 +118,17 @@ pub fn compute_heights(
     }
 }
 
+/// The row kernel for `cycle` and the method sentence its heights carry, when the kernel
+/// takes the cycle (as [`compute_heights`] decides); `None` otherwise.
+pub(crate) fn kernel_for(
+    cycle: &Cycle,
+    config: &ComputeConfig,
+) -> Option<(IsobaricKernel, String)> {
+    let kernel = IsobaricKernel::new(cycle, &config.layers).ok()?;
+    let reference = StepColumns::new(cycle, config, 0, 0).ok()?.reference;
+    Some((kernel, method_sentence(cycle, reference)))
+}
+
 /// Output bytes faulted in per piece of idle work in [`read_and_compute`]: a huge page.
 const TOUCH_BYTES: usize = 2 << 20;
 
@@ -557,7 +568,7 @@ fn compute_while_reading(
 /// computed. The last step, with nothing left to read, runs on the global pool (a one-step
 /// cycle never builds this one). `None` (the global pool is used) where the pool cannot be
 /// built.
-fn background_pool() -> Option<rayon::ThreadPool> {
+pub(crate) fn background_pool() -> Option<rayon::ThreadPool> {
     rayon::ThreadPoolBuilder::new()
         .num_threads(rayon::current_num_threads())
         .thread_name(|i| format!("hypsogrid-load-{i}"))
@@ -592,7 +603,7 @@ fn kernel_heights(cycle: &Cycle, out: KernelOutput, reference: Reference) -> Hei
     }
 }
 
-fn check_layers(config: &ComputeConfig) -> Result<(), ComputeError> {
+pub(crate) fn check_layers(config: &ComputeConfig) -> Result<(), ComputeError> {
     for layer in &config.layers {
         let ordered =
             layer.bottom_pa.partial_cmp(&layer.top_pa) == Some(std::cmp::Ordering::Greater);

@@ -6,6 +6,7 @@
 //! [`output::write_heights`] (back to CF NetCDF). DEVELOPERS.md has the architecture.
 #![warn(missing_docs, rust_2018_idioms, unreachable_pub)]
 
+pub mod batch;
 mod buffers;
 pub mod compute;
 pub mod demo;

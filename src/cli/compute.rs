@@ -6,8 +6,8 @@ use std::time::{Duration, Instant};
 use anyhow::Result;
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 
-use hypsogrid::compute::{read_and_compute, LoadError};
-use hypsogrid::output::{write_heights, OutputOptions};
+use hypsogrid::batch::compute_file;
+use hypsogrid::output::OutputOptions;
 
 use super::ComputeArgs;
 
@@ -64,29 +64,28 @@ pub(super) fn run(args: ComputeArgs) -> Result<()> {
     let mut progress = Progress::new(1);
     progress.phase("reading");
     let show = std::sync::Mutex::new(&mut progress);
-    // Each step is computed as soon as it has been read (`read_and_compute`).
-    let (cycle, heights) = read_and_compute(&args.input, &ingest, &config, &|done, total| {
-        if let Ok(mut p) = show.lock() {
-            p.bar.set_length(total.max(1) as u64);
-            p.phase("computing");
-            p.set(done as u64);
-        }
-    })
-    .map_err(|e| match e {
-        LoadError::Ingest(e) => anyhow::Error::from(e),
-        LoadError::Compute(e) => {
-            anyhow::Error::from(e).context(format!("computing '{}'", args.input.display()))
-        }
-    })?;
-    for note in &cycle.notes {
-        tracing::info!("{}: {note}", args.input.display());
-    }
-    progress.phase("writing");
     let options = OutputOptions {
         history: history_line(),
         deflate_level: args.deflate,
     };
-    write_heights(&cycle, &heights, &args.output, &options)?;
+    // Read, computed and written band by band where the cycle allows (`compute_file`).
+    let report = compute_file(
+        &args.input,
+        &args.output,
+        &ingest,
+        &config,
+        &options,
+        &|done, total| {
+            if let Ok(mut p) = show.lock() {
+                p.bar.set_length(total.max(1) as u64);
+                p.phase("computing");
+                p.set(done as u64);
+            }
+        },
+    )?;
+    for note in &report.notes {
+        tracing::info!("{}: {note}", args.input.display());
+    }
     progress.finish();
     Ok(())
 }

@@ -1,0 +1,396 @@
+//! The batch: one cycle file in, heights and thicknesses out ([`compute_file`]).
+//!
+//! Where the row kernel takes the cycle and the file holds temperature and humidity step by
+//! step (the common case), the cycle is never held whole: each (member, time) step is read,
+//! computed and written a band of latitude rows at a time, every column on its own as
+//! always. One thread reads and writes (the NetCDF library is serialised) while the kernel
+//! computes the band before on the other cores, and a few band buffers go round, so the
+//! process touches a few tens of megabytes of memory instead of the whole cycle and its
+//! heights (fresh memory, whose first touch cost about a third of the whole batch on these
+//! virtual machines). The file written is the one [`read_and_compute`] and
+//! [`write_heights`] give, value for value (`tests/batch.rs`). Everything else goes through
+//! those two.
+
+use std::ops::Range;
+use std::path::Path;
+use std::sync::mpsc;
+
+use ndarray::{s, ArrayView3, ArrayViewMut2, ArrayViewMut3};
+
+use crate::buffers::zeroed_field;
+use crate::compute::{
+    background_pool, check_layers, kernel_for, read_and_compute, ComputeConfig, ComputeError,
+};
+use crate::ingest::{read_cycle_in_bands, BandReader, IngestConfig, IngestError};
+use crate::kernel::{IsobaricKernel, NotApplicable, StepFields, StepOutputs};
+use crate::model::{Cycle, Surface};
+use crate::output::{
+    write_heights, FileRows, HeightsAbout, HeightsWriter, OutputError, OutputOptions,
+};
+
+/// Bytes of one field's band (temperature, humidity, heights: `[level, row, lon]` `f32`):
+/// about 4 MiB, 45 rows of a 0.5° grid on 37 levels. In a comparison of band sizes on the
+/// 0.5° cycle (reads and writes alone, one run each), 24, 45 and 91 rows took 42, 40 and
+/// 39 ms against 52 ms for whole steps; smaller bands (8 rows) paid the library's cost per
+/// call (96 ms).
+const BAND_BYTES: usize = 4 << 20;
+
+/// Band buffers going round: one being read, one computed, one written.
+const BUFFERS: usize = 3;
+
+/// Why a batch run failed; every message names the file.
+#[derive(Debug, thiserror::Error)]
+pub enum BatchError {
+    /// The input could not be read as a cycle.
+    #[error("{0}")]
+    Ingest(#[from] IngestError),
+    /// The heights could not be computed.
+    #[error("computing '{file}': {source}")]
+    Compute {
+        /// The input file.
+        file: String,
+        /// What went wrong.
+        #[source]
+        source: ComputeError,
+    },
+    /// The output could not be written.
+    #[error("{0}")]
+    Output(#[from] OutputError),
+    /// A band could not be computed (the kernel refused it, or its thread stopped).
+    #[error("computing '{file}': {detail}")]
+    Band {
+        /// The input file.
+        file: String,
+        /// What went wrong.
+        detail: String,
+    },
+}
+
+/// What a batch run did.
+#[derive(Clone, Debug)]
+pub struct BatchReport {
+    /// Notes the reader made on the input (assumed units, levels without humidity, ...).
+    pub notes: Vec<String>,
+    /// (member, time) steps written.
+    pub steps: usize,
+    /// Latitude rows per band where the cycle went through band by band; `None` where it was
+    /// read whole, computed and written.
+    pub band_rows: Option<usize>,
+}
+
+/// Reads the cycle in `input`, computes heights on every level and the thickness of every
+/// layer of `config`, and writes them to `output` (atomically: see [`write_heights`]).
+/// `progress` is called after each (member, time) step with the number done and the total.
+///
+/// The output is the same, value for value, as [`read_and_compute`] followed by
+/// [`write_heights`]; see the module documentation for how it is made.
+///
+/// # Errors
+/// The input cannot be read as a cycle (a bad value in any band names the file, variable
+/// and index), the layers are inverted, or the output cannot be written. Nothing is left at
+/// `output` on error.
+pub fn compute_file(
+    input: &Path,
+    output: &Path,
+    ingest: &IngestConfig,
+    config: &ComputeConfig,
+    options: &OutputOptions,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<BatchReport, BatchError> {
+    compute_file_in_bands(input, output, ingest, config, options, None, progress)
+}
+
+/// [`compute_file`] with bands of `band_rows` latitude rows (at least one; `None`: about
+/// [`BAND_BYTES`] a field), for tests and measurements. Where the cycle must go through whole
+/// steps (chunked input, compressed output) or whole (see the module documentation), it
+/// does, whatever `band_rows` says; the report says what was done.
+pub fn compute_file_in_bands(
+    input: &Path,
+    output: &Path,
+    ingest: &IngestConfig,
+    config: &ComputeConfig,
+    options: &OutputOptions,
+    band_rows: Option<usize>,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<BatchReport, BatchError> {
+    let compute_error = |source| BatchError::Compute {
+        file: input.display().to_string(),
+        source,
+    };
+    check_layers(config).map_err(compute_error)?;
+    let streamed = read_cycle_in_bands(input, ingest, |shell, bands| {
+        let (kernel, method) = kernel_for(shell, config)?;
+        let surface = shell.surface.as_ref()?;
+        let job = BandJob {
+            shell,
+            surface,
+            kernel: &kernel,
+            method: &method,
+            config,
+            band_rows,
+        };
+        Some(job.run(bands, output, options, progress))
+    })?;
+    if let Some(Some(report)) = streamed {
+        return report;
+    }
+    let (cycle, heights) =
+        read_and_compute(input, ingest, config, progress).map_err(|e| match e {
+            crate::compute::LoadError::Ingest(e) => BatchError::Ingest(e),
+            crate::compute::LoadError::Compute(e) => compute_error(e),
+        })?;
+    write_heights(&cycle, &heights, output, options)?;
+    let (members, times, ..) = cycle.temperature.dim();
+    Ok(BatchReport {
+        notes: cycle.notes,
+        steps: members * times,
+        band_rows: None,
+    })
+}
+
+/// Rows per band for a grid of `levels` levels and `cols` longitudes: about [`BAND_BYTES`] of
+/// `f32` per field, at least one row, at most `rows`.
+fn rows_per_band(levels: usize, rows: usize, cols: usize) -> usize {
+    (BAND_BYTES / (4 * levels * cols).max(1)).clamp(1, rows.max(1))
+}
+
+/// One cycle going through band by band.
+struct BandJob<'a> {
+    shell: &'a Cycle,
+    surface: &'a Surface,
+    kernel: &'a IsobaricKernel,
+    method: &'a str,
+    config: &'a ComputeConfig,
+    /// Rows per band asked for; `None`: [`rows_per_band`].
+    band_rows: Option<usize>,
+}
+
+/// A band's place: step (member, time) and latitude rows.
+#[derive(Clone, Debug)]
+struct Place {
+    step: (usize, usize),
+    rows: Range<usize>,
+}
+
+/// The buffers of one band, sized for the widest band: the inputs as read, the kernel's
+/// outputs, and those as the file holds them.
+struct Band {
+    place: Place,
+    t: Vec<f32>,
+    q: Option<Vec<f32>>,
+    z: Vec<f32>,
+    below: Vec<u8>,
+    thickness: Vec<(Vec<f32>, Vec<u8>)>,
+    file: FileRows,
+}
+
+impl Band {
+    fn new(values: usize, plane: usize, humidity: bool, layers: usize) -> Self {
+        Self {
+            place: Place {
+                step: (0, 0),
+                rows: 0..0,
+            },
+            t: zeroed_field(values),
+            q: humidity.then(|| zeroed_field(values)),
+            z: zeroed_field(values),
+            below: zeroed_field(values),
+            thickness: (0..layers)
+                .map(|_| (vec![0.0; plane], vec![0; plane]))
+                .collect(),
+            file: FileRows::default(),
+        }
+    }
+}
+
+impl BandJob<'_> {
+    /// Reads, computes and writes every band of every step, then commits the output.
+    fn run(
+        &self,
+        bands: &mut BandReader<'_, '_>,
+        output: &Path,
+        options: &OutputOptions,
+        progress: &(dyn Fn(usize, usize) + Sync),
+    ) -> Result<BatchReport, BatchError> {
+        let (members, times, levels, rows, cols) = bands.dim();
+        // Compressed output is chunked by whole latitude-longitude planes, which a band
+        // would leave half-written in the library's chunk cache: whole steps then, as for
+        // chunked input.
+        let band_rows = if bands.reads_bands() && options.deflate_level.is_none() {
+            match self.band_rows {
+                Some(n) => n.clamp(1, rows.max(1)),
+                None => rows_per_band(levels, rows, cols),
+            }
+        } else {
+            rows.max(1)
+        };
+        let about = HeightsAbout {
+            method: self.method,
+            constants: &self.shell.constants,
+            layers: &self.config.layers,
+        };
+        let mut writer =
+            HeightsWriter::create(self.shell, &about, output, options, bands.session())?;
+        let reverse = writer.levels_reversed();
+        let places: Vec<Place> = (0..members)
+            .flat_map(|m| (0..times).map(move |t| (m, t)))
+            .flat_map(|step| {
+                (0..rows).step_by(band_rows).map(move |r| Place {
+                    step,
+                    rows: r..(r + band_rows).min(rows),
+                })
+            })
+            .collect();
+        let total = members * times;
+        let plane = band_rows * cols;
+        let humidity = self.shell.humidity.is_some();
+        let layers = self.config.layers.len();
+        let mut steps_done = 0;
+        std::thread::scope(|scope| -> Result<(), BatchError> {
+            let (work_tx, work_rx) = mpsc::channel::<Band>();
+            let (done_tx, done_rx) = mpsc::channel::<Result<Band, NotApplicable>>();
+            // The reading and writing thread is the critical path: the kernel takes what it
+            // leaves, on threads of lower priority (see `background_pool`).
+            let pool = background_pool();
+            scope.spawn(move || {
+                for mut band in work_rx {
+                    let mut run = || self.compute(&mut band, (levels, cols), reverse);
+                    let done = match &pool {
+                        Some(pool) => pool.install(run),
+                        None => run(),
+                    }
+                    .map(|()| band);
+                    if done_tx.send(done).is_err() {
+                        break;
+                    }
+                }
+            });
+            let mut free: Vec<Band> = Vec::with_capacity(BUFFERS);
+            let mut made = 0;
+            let mut in_flight = 0usize;
+            let mut write = |done: Result<Band, NotApplicable>,
+                             free: &mut Vec<Band>|
+             -> Result<(), BatchError> {
+                let band = done.map_err(|e| BatchError::Band {
+                    file: self.shell.source.display().to_string(),
+                    detail: e.to_string(),
+                })?;
+                writer.put_rows(band.place.step, band.place.rows.clone(), &band.file)?;
+                if band.place.rows.end == rows {
+                    steps_done += 1;
+                    progress(steps_done, total);
+                }
+                free.push(band);
+                Ok(())
+            };
+            for place in places {
+                let mut band = match free.pop() {
+                    Some(band) => band,
+                    None if made < BUFFERS => {
+                        made += 1;
+                        Band::new(levels * plane, plane, humidity, layers)
+                    }
+                    None => {
+                        let done = done_rx.recv().map_err(|_| worker_gone(self.shell))?;
+                        in_flight -= 1;
+                        write(done, &mut free)?;
+                        free.pop().ok_or_else(|| worker_gone(self.shell))?
+                    }
+                };
+                let len = levels * place.rows.len() * cols;
+                let q = band.q.as_mut().map(|q| &mut q[..len]);
+                bands.read(place.step, place.rows.clone(), &mut band.t[..len], q)?;
+                band.place = place;
+                work_tx.send(band).map_err(|_| worker_gone(self.shell))?;
+                in_flight += 1;
+                while let Ok(done) = done_rx.try_recv() {
+                    in_flight -= 1;
+                    write(done, &mut free)?;
+                }
+            }
+            drop(work_tx);
+            while in_flight > 0 {
+                let done = done_rx.recv().map_err(|_| worker_gone(self.shell))?;
+                in_flight -= 1;
+                write(done, &mut free)?;
+            }
+            Ok(())
+        })?;
+        bands.finish()?;
+        writer.commit()?;
+        Ok(BatchReport {
+            notes: self.shell.notes.clone(),
+            steps: total,
+            band_rows: Some(band_rows),
+        })
+    }
+
+    /// The kernel on one band, then the band as the file holds it.
+    fn compute(
+        &self,
+        band: &mut Band,
+        (levels, cols): (usize, usize),
+        reverse: bool,
+    ) -> Result<(), NotApplicable> {
+        let Place { step: (m, t), rows } = band.place.clone();
+        let n = rows.len();
+        let len = levels * n * cols;
+        let shape3 = (levels, n, cols);
+        fn view(shape: (usize, usize, usize), data: &[f32]) -> Option<ArrayView3<'_, f32>> {
+            let len = shape.0 * shape.1 * shape.2;
+            ArrayView3::from_shape(shape, data.get(..len)?).ok()
+        }
+        let bad_shape = || NotApplicable::Shape {
+            field: "band",
+            found: vec![band.t.len()],
+            expected: vec![len],
+        };
+        let fields = StepFields {
+            t: view(shape3, &band.t).ok_or_else(bad_shape)?,
+            q: match &band.q {
+                Some(q) => Some(view(shape3, q).ok_or_else(bad_shape)?),
+                None => None,
+            },
+            ps: self.surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
+            zs: self.surface.height_m.slice(s![m, t, rows, ..]),
+        };
+        let plane = n * cols;
+        let outputs = StepOutputs {
+            geopotential_height: ArrayViewMut3::from_shape(shape3, &mut band.z[..len])
+                .map_err(|_| bad_shape())?,
+            below_ground: ArrayViewMut3::from_shape(shape3, &mut band.below[..len])
+                .map_err(|_| bad_shape())?,
+            thickness: band
+                .thickness
+                .iter_mut()
+                .filter_map(|(v, f)| {
+                    let v = ArrayViewMut2::from_shape((n, cols), &mut v[..plane]).ok()?;
+                    let f = ArrayViewMut2::from_shape((n, cols), &mut f[..plane]).ok()?;
+                    Some((v, f))
+                })
+                .collect(),
+        };
+        self.kernel.run_into(fields, outputs)?;
+        let z = ArrayView3::from_shape(shape3, &band.z[..len]).map_err(|_| bad_shape())?;
+        let below = ArrayView3::from_shape(shape3, &band.below[..len]).map_err(|_| bad_shape())?;
+        let thickness: Vec<_> = band
+            .thickness
+            .iter()
+            .filter_map(|(v, f)| {
+                let v = ndarray::ArrayView2::from_shape((n, cols), &v[..plane]).ok()?;
+                let f = ndarray::ArrayView2::from_shape((n, cols), &f[..plane]).ok()?;
+                Some((v, f))
+            })
+            .collect();
+        band.file.fill(reverse, z, below, &thickness);
+        Ok(())
+    }
+}
+
+/// The error when the computing thread has stopped (it panicked: the panic follows).
+fn worker_gone(shell: &Cycle) -> BatchError {
+    BatchError::Band {
+        file: shell.source.display().to_string(),
+        detail: "the computing thread stopped".into(),
+    }
+}
