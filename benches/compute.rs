@@ -12,7 +12,8 @@ use std::time::Duration;
 
 use criterion::{criterion_group, criterion_main, Criterion};
 
-use hypsogrid::compute::{compute_heights, ComputeConfig};
+use hypsogrid::batch::compute_file;
+use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig};
 use hypsogrid::demo::{write_synthetic_global, SyntheticGlobal};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::model::Layer;
@@ -148,6 +149,33 @@ fn parts(c: &mut Criterion) {
         b.iter(|| {
             LoadedCycle::load(&plain, &IngestConfig::default(), &ComputeConfig::default())
                 .expect("loading")
+        })
+    });
+    // The batch in-process, file to file: as `hypsogrid compute` runs it (read, computed and
+    // written a band of rows at a time), and the whole cycle read, then computed, then
+    // written, the way it went before the bands (and still goes for cycles the bands do not
+    // take). Same output, value for value (`tests/batch.rs`).
+    let banded = bench_dir().join("global_0p5deg_heights_banded.nc");
+    let options = OutputOptions::default();
+    group.bench_function("batch_in_bands", |b| {
+        b.iter(|| {
+            compute_file(
+                &plain,
+                &banded,
+                &IngestConfig::default(),
+                &config,
+                &options,
+                &|_, _| {},
+            )
+            .expect("batch")
+        })
+    });
+    group.bench_function("batch_whole_cycle", |b| {
+        b.iter(|| {
+            let (cycle, heights) =
+                read_and_compute(&plain, &IngestConfig::default(), &config, &|_, _| {})
+                    .expect("reading and computing");
+            write_heights(&cycle, &heights, &out, &options).expect("writing")
         })
     });
     group.finish();
