@@ -3,8 +3,9 @@
 //! Where the row kernel takes the cycle and the file holds temperature and humidity step by
 //! step (the common case), the cycle is never held whole: each (member, time) step is read,
 //! computed and written a band of latitude rows at a time, every column on its own as
-//! always. One thread reads and writes (the NetCDF library is serialised) while the kernel
-//! computes the band before on the other cores, and a few band buffers go round, so the
+//! always. One thread reads and writes (the NetCDF library is serialised) while the band
+//! before is decoded (fill values, scaling, plausibility) and computed on the other cores,
+//! at a lower priority, and a few band buffers go round, so the
 //! process touches a few tens of megabytes of memory instead of the whole cycle and its
 //! heights (fresh memory, whose first touch cost about a third of the whole batch on these
 //! virtual machines). The file written is the one [`read_and_compute`] and
@@ -21,7 +22,9 @@ use crate::buffers::zeroed_field;
 use crate::compute::{
     background_pool, check_layers, kernel_for, read_and_compute, ComputeConfig, ComputeError,
 };
-use crate::ingest::{read_cycle_in_bands, BandReader, IngestConfig, IngestError};
+use crate::ingest::{
+    read_cycle_in_bands, BadValue, BandDecode, BandReader, IngestConfig, IngestError,
+};
 use crate::kernel::{IsobaricKernel, NotApplicable, StepFields, StepOutputs};
 use crate::model::{Cycle, Surface};
 use crate::output::{
@@ -176,6 +179,8 @@ struct Place {
 /// outputs, and those as the file holds them.
 struct Band {
     place: Place,
+    /// Whether the temperature and the humidity of the band hold a valid value.
+    valid: [bool; 2],
     t: Vec<f32>,
     q: Option<Vec<f32>>,
     z: Vec<f32>,
@@ -191,6 +196,7 @@ impl Band {
                 step: (0, 0),
                 rows: 0..0,
             },
+            valid: [false; 2],
             t: zeroed_field(values),
             q: humidity.then(|| zeroed_field(values)),
             z: zeroed_field(values),
@@ -246,15 +252,17 @@ impl BandJob<'_> {
         let humidity = self.shell.humidity.is_some();
         let layers = self.config.layers.len();
         let mut steps_done = 0;
+        let mut valid = [false; 2];
         std::thread::scope(|scope| -> Result<(), BatchError> {
             let (work_tx, work_rx) = mpsc::channel::<Band>();
-            let (done_tx, done_rx) = mpsc::channel::<Result<Band, NotApplicable>>();
+            let (done_tx, done_rx) = mpsc::channel::<Result<Band, Failure>>();
+            let decode = bands.decoding();
             // The reading and writing thread is the critical path: the kernel takes what it
             // leaves, on threads of lower priority (see `background_pool`).
             let pool = background_pool();
             scope.spawn(move || {
                 for mut band in work_rx {
-                    let mut run = || self.compute(&mut band, (levels, cols), reverse);
+                    let mut run = || self.compute(&mut band, &decode, (levels, cols), reverse);
                     let done = match &pool {
                         Some(pool) => pool.install(run),
                         None => run(),
@@ -268,13 +276,18 @@ impl BandJob<'_> {
             let mut free: Vec<Band> = Vec::with_capacity(BUFFERS);
             let mut made = 0;
             let mut in_flight = 0usize;
-            let mut write = |done: Result<Band, NotApplicable>,
-                             free: &mut Vec<Band>|
+            let mut write = |done: Result<Band, Failure>,
+                             free: &mut Vec<Band>,
+                             bands: &BandReader<'_, '_>|
              -> Result<(), BatchError> {
-                let band = done.map_err(|e| BatchError::Band {
-                    file: self.shell.source.display().to_string(),
-                    detail: e.to_string(),
+                let band = done.map_err(|failure| match failure {
+                    Failure::BadValue(bad) => BatchError::Ingest(bands.bad_value(&bad)),
+                    Failure::Kernel(e) => BatchError::Band {
+                        file: self.shell.source.display().to_string(),
+                        detail: e.to_string(),
+                    },
                 })?;
+                valid = [valid[0] || band.valid[0], valid[1] || band.valid[1]];
                 writer.put_rows(band.place.step, band.place.rows.clone(), &band.file)?;
                 if band.place.rows.end == rows {
                     steps_done += 1;
@@ -293,30 +306,30 @@ impl BandJob<'_> {
                     None => {
                         let done = done_rx.recv().map_err(|_| worker_gone(self.shell))?;
                         in_flight -= 1;
-                        write(done, &mut free)?;
+                        write(done, &mut free, bands)?;
                         free.pop().ok_or_else(|| worker_gone(self.shell))?
                     }
                 };
                 let len = levels * place.rows.len() * cols;
                 let q = band.q.as_mut().map(|q| &mut q[..len]);
-                bands.read(place.step, place.rows.clone(), &mut band.t[..len], q)?;
+                bands.read_raw(place.step, place.rows.clone(), &mut band.t[..len], q)?;
                 band.place = place;
                 work_tx.send(band).map_err(|_| worker_gone(self.shell))?;
                 in_flight += 1;
                 while let Ok(done) = done_rx.try_recv() {
                     in_flight -= 1;
-                    write(done, &mut free)?;
+                    write(done, &mut free, bands)?;
                 }
             }
             drop(work_tx);
             while in_flight > 0 {
                 let done = done_rx.recv().map_err(|_| worker_gone(self.shell))?;
                 in_flight -= 1;
-                write(done, &mut free)?;
+                write(done, &mut free, bands)?;
             }
             Ok(())
         })?;
-        bands.finish()?;
+        bands.finish(valid)?;
         writer.commit()?;
         Ok(BatchReport {
             notes: self.shell.notes.clone(),
@@ -325,16 +338,21 @@ impl BandJob<'_> {
         })
     }
 
-    /// The kernel on one band, then the band as the file holds it.
+    /// The band's values decoded, the kernel on them, then the band as the file holds it.
     fn compute(
         &self,
         band: &mut Band,
+        decode: &BandDecode,
         (levels, cols): (usize, usize),
         reverse: bool,
-    ) -> Result<(), NotApplicable> {
+    ) -> Result<(), Failure> {
         let Place { step: (m, t), rows } = band.place.clone();
         let n = rows.len();
         let len = levels * n * cols;
+        let q = band.q.as_mut().map(|q| &mut q[..len]);
+        band.valid = decode
+            .decode((m, t), rows.clone(), &mut band.t[..len], q)
+            .map_err(Failure::BadValue)?;
         let shape3 = (levels, n, cols);
         fn view(shape: (usize, usize, usize), data: &[f32]) -> Option<ArrayView3<'_, f32>> {
             let len = shape.0 * shape.1 * shape.2;
@@ -384,6 +402,20 @@ impl BandJob<'_> {
             .collect();
         band.file.fill(reverse, z, below, &thickness);
         Ok(())
+    }
+}
+
+/// Why the computing thread gave a band back unfinished.
+enum Failure {
+    /// A value of the band is implausible.
+    BadValue(BadValue),
+    /// The kernel refused the band (not reached: its shapes are made to fit).
+    Kernel(NotApplicable),
+}
+
+impl From<NotApplicable> for Failure {
+    fn from(e: NotApplicable) -> Self {
+        Failure::Kernel(e)
     }
 }
 

@@ -832,10 +832,10 @@ impl<'f> StepwiseField<'f> {
         Ok(())
     }
 
-    /// Whether [`StepwiseField::read_rows`] reads a band of rows on its own: the variable is
-    /// stored contiguously with latitude and longitude dimensions. Otherwise (chunked, maybe
-    /// compressed, storage) a band would cost the decompression of whole chunks again and
-    /// again, and only whole steps should be read.
+    /// Whether [`StepwiseField::read_rows_raw`] reads a band narrower than a step: the
+    /// variable is stored contiguously with latitude and longitude dimensions. Otherwise
+    /// (chunked, maybe compressed, storage) a band would cost the decompression of whole
+    /// chunks again and again, and only whole steps should be read.
     pub(crate) fn reads_bands(&self, file: &str) -> Result<bool, IngestError> {
         let contiguous = self
             .var
@@ -845,23 +845,20 @@ impl<'f> StepwiseField<'f> {
         Ok(contiguous && self.axes[3].is_some() && self.axes[4].is_some())
     }
 
-    /// Reads and decodes latitude rows `rows` of step (`member`, `time`) into `out`,
-    /// `[level, row, lon]` bottom-up, SI units: the same values [`StepwiseField::read_step`]
-    /// puts at those rows, bit for bit. `out` has exactly the band's length. Bands narrower
-    /// than a step only where [`StepwiseField::reads_bands`].
-    pub(crate) fn read_rows(
+    /// Reads latitude rows `rows` of step (`member`, `time`) into `out`, `[level, row, lon]`
+    /// in the file's level order, as stored: [`StepwiseField::band_decoding`] makes them the
+    /// values [`StepwiseField::read_step`] gives, on any thread. `out` has exactly the band's
+    /// length. Bands narrower than a step only where [`StepwiseField::reads_bands`].
+    pub(crate) fn read_rows_raw(
         &self,
         file: &str,
         (member, time): (usize, usize),
         rows: std::ops::Range<usize>,
         out: &mut [f32],
     ) -> Result<(), IngestError> {
-        let [_, times, z, y, x] = self.shape;
-        if rows == (0..y) {
-            return self.read_step(file, member, time, out);
-        }
-        let n = rows.len();
-        if rows.end > y || out.len() != z * n * x || !self.reads_bands(file)? {
+        let [_, _, z, y, x] = self.shape;
+        let whole = rows == (0..y);
+        if rows.end > y || out.len() != z * rows.len() * x || !(whole || self.reads_bands(file)?) {
             return Err(IngestError::Read {
                 file: file.to_string(),
                 variable: self.var.name(),
@@ -873,40 +870,52 @@ impl<'f> StepwiseField<'f> {
                 ),
             });
         }
-        // A few levels per call, about `BAND_VALUES` values: each part is decoded while the
-        // read has just brought it into the cache, and the library's own work per call is
-        // paid a few times a band rather than once per level.
-        let plane = n * x;
-        let per = (BAND_VALUES / plane.max(1)).clamp(1, z.max(1));
-        let limits = self.check.as_ref().map(Limits::of);
-        for (g, part) in out.chunks_mut((per * plane).max(1)).enumerate() {
-            let k0 = g * per;
-            let mut extents: Vec<Extent> = Vec::with_capacity(5);
-            for (axis, i) in [(self.axes[0], member), (self.axes[1], time)] {
-                if axis.is_some() {
-                    extents.push(Extent::from(i..i + 1));
-                }
-            }
-            if self.axes[2].is_some() {
-                extents.push(Extent::from(k0..k0 + part.len() / plane.max(1)));
-            }
-            extents.push(Extent::from(rows.clone()));
-            extents.push(Extent::from(0..x));
-            self.var
-                .get_values_into::<f32, _>(part, extents)
-                .map_err(|e| read_error(file, &self.var, e))?;
-            if let Some(i) = self.decoder.decode_narrow_in_place(part, limits) {
-                let value = part.get(i).copied().unwrap_or(f32::NAN);
-                let (k, within) = (k0 + i / plane.max(1), i % plane.max(1));
-                let step = member * times + time;
-                let at = ((step * z + k) * y + rows.start + within / x) * x + within % x;
-                return Err(self.implausible_at(file, value, at));
+        let mut extents: Vec<Extent> = Vec::with_capacity(5);
+        for (axis, i) in [(self.axes[0], member), (self.axes[1], time)] {
+            if axis.is_some() {
+                extents.push(Extent::from(i..i + 1));
             }
         }
-        if self.reverse_levels {
-            reverse_axis_in_place(out, 1, z, plane);
+        for (axis, range) in [
+            (self.axes[2], 0..z),
+            (self.axes[3], rows),
+            (self.axes[4], 0..x),
+        ] {
+            if axis.is_some() {
+                extents.push(Extent::from(range));
+            }
         }
-        Ok(())
+        self.var
+            .get_values_into::<f32, _>(out, extents)
+            .map_err(|e| read_error(file, &self.var, e))
+    }
+
+    /// What makes a band read by [`StepwiseField::read_rows_raw`] SI values, bottom-up.
+    pub(crate) fn band_decoding(&self) -> BandDecoding {
+        BandDecoding {
+            decoder: self.decoder.clone(),
+            limits: self.check.as_ref().map(Limits::of),
+            reverse_levels: self.reverse_levels,
+            levels: self.shape[2],
+        }
+    }
+
+    /// The error for the implausible `value` found by [`BandDecoding::decode`] at index `i`
+    /// of the band of rows `rows` of step (`member`, `time`).
+    pub(crate) fn implausible_in_band(
+        &self,
+        file: &str,
+        (member, time): (usize, usize),
+        rows: std::ops::Range<usize>,
+        i: usize,
+        value: f32,
+    ) -> IngestError {
+        let [_, times, z, y, x] = self.shape;
+        let plane = (rows.len() * x).max(1);
+        let (k, within) = (i / plane, i % plane);
+        let step = member * times + time;
+        let at = ((step * z + k) * y + rows.start + within / x.max(1)) * x + within % x.max(1);
+        self.implausible_at(file, value, at)
     }
 
     /// The error for the implausible `value` at flat index `i` of the variable (file order).
@@ -920,6 +929,31 @@ impl<'f> StepwiseField<'f> {
             check: self.check,
         };
         implausible(&req, &self.file_shape, value, i)
+    }
+}
+
+/// How the raw values of a band of one stepwise field become SI values, bottom-up: plain
+/// data, so that the decoding runs on whichever thread takes the band.
+#[derive(Clone, Debug)]
+pub(crate) struct BandDecoding {
+    decoder: Decoder,
+    limits: Option<Limits>,
+    reverse_levels: bool,
+    levels: usize,
+}
+
+impl BandDecoding {
+    /// Decodes `band` (`[level, row, lon]` as read) in place, with the same decoding pass,
+    /// plausibility test and level reversal as a whole-variable read. On an implausible value
+    /// returns its index in the band as read, before any reversal.
+    pub(crate) fn decode(&self, band: &mut [f32]) -> Result<(), usize> {
+        if let Some(i) = self.decoder.decode_narrow_in_place(band, self.limits) {
+            return Err(i);
+        }
+        if self.reverse_levels && self.levels > 0 {
+            reverse_axis_in_place(band, 1, self.levels, band.len() / self.levels);
+        }
+        Ok(())
     }
 }
 

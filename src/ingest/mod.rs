@@ -429,8 +429,6 @@ pub struct BandReader<'p, 'f> {
     dim: (usize, usize, usize, usize, usize),
     /// Whether a band narrower than a step can be read (see [`BandReader::reads_bands`]).
     bands: bool,
-    /// Whether temperature, humidity have shown a valid value yet.
-    valid: [bool; 2],
     session: &'p std::sync::MutexGuard<'static, ()>,
 }
 
@@ -452,11 +450,10 @@ impl BandReader<'_, '_> {
         self.session
     }
 
-    /// Reads rows `rows` of step (`member`, `time`): temperature into `t` and, for a cycle
-    /// with humidity, the humidity into `q`, each `[level, row, lon]` bottom-up, SI units,
-    /// exactly a band long. The checks of [`read_cycle`] apply (a bad value names the file,
-    /// the variable and the index).
-    pub fn read(
+    /// Reads rows `rows` of step (`member`, `time`) as stored: temperature into `t` and, for
+    /// a cycle with humidity, the humidity into `q`, each `[level, row, lon]`, exactly a
+    /// band long. [`BandReader::decoding`] makes them what [`read_cycle`] puts at those rows.
+    pub fn read_raw(
         &mut self,
         step: (usize, usize),
         rows: std::ops::Range<usize>,
@@ -465,21 +462,50 @@ impl BandReader<'_, '_> {
     ) -> Result<(), IngestError> {
         let file = self.fields.file;
         if let Some(plan) = self.fields.temperature {
-            plan.read_rows(file, step, rows.clone(), t)?;
-            self.valid[0] = self.valid[0] || t.iter().any(|x| !x.is_nan());
+            plan.read_rows_raw(file, step, rows.clone(), t)?;
         }
         if let (Some(plan), Some(q)) = (self.fields.humidity, q) {
-            plan.read_rows(file, step, rows, q)?;
-            self.valid[1] = self.valid[1] || q.iter().any(|x| !x.is_nan());
+            plan.read_rows_raw(file, step, rows, q)?;
         }
         Ok(())
     }
 
-    /// After every band has been read: the check [`read_cycle`] makes on temperature and
-    /// humidity, at least one valid value each.
-    pub fn finish(&self) -> Result<(), IngestError> {
+    /// The decoding of the bands [`BandReader::read_raw`] reads, to run on any thread.
+    pub fn decoding(&self) -> BandDecode {
+        BandDecode {
+            t: self.fields.temperature.map(|p| p.band_decoding()),
+            q: self.fields.humidity.map(|p| p.band_decoding()),
+        }
+    }
+
+    /// The error [`read_cycle`] gives for the bad value that [`BandDecode::decode`] found.
+    pub fn bad_value(&self, bad: &BadValue) -> IngestError {
+        let plan = if bad.humidity {
+            self.fields.humidity
+        } else {
+            self.fields.temperature
+        };
+        match plan {
+            Some(plan) => plan.implausible_in_band(
+                self.fields.file,
+                bad.step,
+                bad.rows.clone(),
+                bad.index,
+                bad.value,
+            ),
+            None => IngestError::Damaged {
+                file: self.fields.file.to_string(),
+                detail: "a bad value in a field that is not read".into(),
+            },
+        }
+    }
+
+    /// After every band has been decoded: the check [`read_cycle`] makes on temperature and
+    /// humidity, at least one valid value each. `valid` is what the bands' decoding found,
+    /// merged ([`BandDecode::decode`]).
+    pub fn finish(&self, valid: [bool; 2]) -> Result<(), IngestError> {
         let planned = [self.fields.temperature, self.fields.humidity];
-        for (plan, valid) in planned.iter().zip(self.valid) {
+        for (plan, valid) in planned.iter().zip(valid) {
             if let (Some(plan), false) = (plan, valid) {
                 return Err(IngestError::NoValidData {
                     file: self.fields.file.to_string(),
@@ -488,6 +514,53 @@ impl BandReader<'_, '_> {
             }
         }
         Ok(())
+    }
+}
+
+/// How raw bands of temperature and humidity become SI values, bottom-up
+/// ([`BandReader::decoding`]): plain data, sent to the thread that computes the band.
+#[derive(Clone, Debug)]
+pub struct BandDecode {
+    t: Option<field::BandDecoding>,
+    q: Option<field::BandDecoding>,
+}
+
+/// A value [`BandDecode::decode`] found implausible; [`BandReader::bad_value`] makes it the
+/// error that names file, variable and index.
+#[derive(Clone, Debug)]
+pub struct BadValue {
+    humidity: bool,
+    step: (usize, usize),
+    rows: std::ops::Range<usize>,
+    index: usize,
+    value: f32,
+}
+
+impl BandDecode {
+    /// Decodes the band of rows `rows` of `step` that [`BandReader::read_raw`] read into `t`
+    /// and `q`, in place. Returns whether each (temperature, humidity) holds a valid value.
+    pub fn decode(
+        &self,
+        step: (usize, usize),
+        rows: std::ops::Range<usize>,
+        t: &mut [f32],
+        q: Option<&mut [f32]>,
+    ) -> Result<[bool; 2], BadValue> {
+        let mut valid = [false; 2];
+        let fields = [(false, &self.t, Some(t)), (true, &self.q, q)];
+        for (humidity, decoding, values) in fields {
+            if let (Some(decoding), Some(values)) = (decoding, values) {
+                decoding.decode(values).map_err(|index| BadValue {
+                    humidity,
+                    step,
+                    rows: rows.clone(),
+                    index,
+                    value: values.get(index).copied().unwrap_or(f32::NAN),
+                })?;
+                valid[usize::from(humidity)] = values.iter().any(|x| !x.is_nan());
+            }
+        }
+        Ok(valid)
     }
 }
 
@@ -533,7 +606,6 @@ pub fn read_cycle_in_bands<R>(
         fields,
         dim: cycle.temperature.dim(),
         bands,
-        valid: [false; 2],
         session: &session,
     };
     Ok(Some(work(&cycle, &mut band_reader)))
