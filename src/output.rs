@@ -11,7 +11,7 @@
 
 use std::path::{Path, PathBuf};
 
-use ndarray::{s, Array4, Array5, ArrayView2, ArrayView3};
+use ndarray::{s, Array4, Array5, ArrayView2};
 use rayon::prelude::*;
 
 use crate::model::{Cycle, Heights, Layer, Vertical};
@@ -200,7 +200,7 @@ impl HeightsWriter {
     }
 
     /// Whether levels go into the file top-down (as the input had them): what
-    /// [`FileRows::fill`] needs to know.
+    /// [`FileRows::to_file_form`] needs to know.
     pub fn levels_reversed(&self) -> bool {
         self.reverse
     }
@@ -215,23 +215,32 @@ impl HeightsWriter {
         let plan = &self.plan;
         let n = rows.len();
         let plane = n * plan.cols;
-        let lengths = |b: &FileRows| {
-            let mut l = vec![b.heights.len(), b.flags.len()];
-            l.extend(b.thickness.iter().flat_map(|(v, f)| [v.len(), f.len()]));
-            l
-        };
-        let mut expected = vec![plan.levels * plane; 2];
-        expected.extend(std::iter::repeat_n(plane, 2 * plan.thickness_names.len()));
-        let found = lengths(band);
-        if m >= plan.members || t >= plan.times || rows.end > plan.rows || found != expected {
+        let len = plan.levels * plane;
+        let expected = (plan.levels, n, plan.cols);
+        let fits = band.ready
+            && band.dim == expected
+            && band.heights.len() >= len
+            && band.flags.len() >= len
+            && band.thickness.len() == plan.thickness_names.len()
+            && band
+                .thickness
+                .iter()
+                .all(|(v, f)| v.len() >= plane && f.len() >= plane);
+        if m >= plan.members || t >= plan.times || rows.end > plan.rows || !fits {
             return Err(OutputError::Shape {
                 path: plan.path.clone(),
                 what: format!(
-                    "the values of rows {}..{} of step ({m}, {t}) (heights, flags, then each layer's)",
-                    rows.start, rows.end
+                    "the band of rows {}..{} of step ({m}, {t}){}",
+                    rows.start,
+                    rows.end,
+                    if band.ready {
+                        ""
+                    } else {
+                        " (not in the file's form)"
+                    }
                 ),
-                expected,
-                found,
+                expected: vec![expected.0, expected.1, expected.2],
+                found: vec![band.dim.0, band.dim.1, band.dim.2],
             });
         }
         let file = self.file.as_mut().ok_or_else(|| OutputError::Io {
@@ -254,19 +263,19 @@ impl HeightsWriter {
         };
         let name = "geopotential_height";
         data_variable(file, plan, name)?
-            .put_values(&band.heights, extents(Some(plan.levels)))
+            .put_values(&band.heights[..len], extents(Some(plan.levels)))
             .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
         let name = "below_ground";
         data_variable(file, plan, name)?
-            .put_values(&band.flags, extents(Some(plan.levels)))
+            .put_values(flag_bytes(&band.flags[..len]), extents(Some(plan.levels)))
             .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
         for ((values, flags), name) in band.thickness.iter().zip(&plan.thickness_names) {
             data_variable(file, plan, name)?
-                .put_values(values, extents(None))
+                .put_values(&values[..plane], extents(None))
                 .map_err(plan.nc_error(format!("writing variable '{name}'")))?;
             let flag_name = format!("{name}_below_ground");
             data_variable(file, plan, &flag_name)?
-                .put_values(flags, extents(None))
+                .put_values(flag_bytes(&flags[..plane]), extents(None))
                 .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
         }
         Ok(())
@@ -285,71 +294,102 @@ impl HeightsWriter {
     }
 }
 
-/// One band of latitude rows of one step as the file holds it: levels in the file's order,
-/// non-finite heights as the fill value, flags as bytes; filled (on any thread) by
-/// [`FileRows::fill`] and written by [`HeightsWriter::put_rows`]. The buffers are reused from
-/// band to band.
+/// One band of latitude rows of one step, written by [`HeightsWriter::put_rows`]: the
+/// buffers the band's heights, flags and layers are computed into
+/// ([`FileRows::fields_mut`], `[level, row, lon]` bottom-up and `[row, lon]`), then turned in
+/// place into what the file holds ([`FileRows::to_file_form`], on any thread): levels in the
+/// file's order, non-finite values as the fill value. No copy is made, and the buffers are
+/// reused from band to band.
 #[derive(Debug, Default)]
 pub struct FileRows {
     heights: Vec<f32>,
-    flags: Vec<i8>,
-    thickness: Vec<(Vec<f32>, Vec<i8>)>,
+    flags: Vec<u8>,
+    thickness: Vec<(Vec<f32>, Vec<u8>)>,
+    /// `[level, row, lon]` of the band held.
+    dim: (usize, usize, usize),
+    /// Whether the values are in the file's form.
+    ready: bool,
+}
+
+/// The buffers of one band, as [`FileRows::fields_mut`] lends them.
+#[derive(Debug)]
+pub struct BandFields<'a> {
+    /// Heights, `[level, row, lon]` bottom-up.
+    pub heights: &'a mut [f32],
+    /// Below-ground flags (0 or 1), `[level, row, lon]` bottom-up.
+    pub flags: &'a mut [u8],
+    /// Per layer, thickness and flag, `[row, lon]`.
+    pub thickness: Vec<(&'a mut [f32], &'a mut [u8])>,
 }
 
 impl FileRows {
-    /// Converts the heights and flags `z`, `below` (`[level, row, lon]`, bottom-up) and the
-    /// layers' `thickness` (`[row, lon]` each) into this band; levels are reversed when
-    /// `reverse` ([`HeightsWriter::levels_reversed`]).
-    pub fn fill(
-        &mut self,
-        reverse: bool,
-        z: ArrayView3<'_, f32>,
-        below: ArrayView3<'_, u8>,
-        thickness: &[(ArrayView2<'_, f32>, ArrayView2<'_, u8>)],
-    ) {
-        let (levels, rows, cols) = z.dim();
+    /// Buffers for bands of up to `rows` rows of `levels` levels and `cols` longitudes, and
+    /// `layers` layers, allocated as large fields ([`crate::buffers::zeroed_field`]).
+    pub fn new((levels, rows, cols): (usize, usize, usize), layers: usize) -> Self {
         let plane = rows * cols;
-        fill_levels(&mut self.heights, z, reverse, to_file_value);
-        fill_levels(&mut self.flags, below, reverse, to_file_flag);
-        self.thickness
-            .resize_with(thickness.len(), Default::default);
-        for ((values, flags), (v, f)) in self.thickness.iter_mut().zip(thickness) {
-            set_len(values, plane);
-            set_len(flags, plane);
-            copy_plane(*v, values, to_file_value);
-            copy_plane(*f, flags, to_file_flag);
+        Self {
+            heights: crate::buffers::zeroed_field(levels * plane),
+            flags: crate::buffers::zeroed_field(levels * plane),
+            thickness: (0..layers)
+                .map(|_| (vec![0.0; plane], vec![0; plane]))
+                .collect(),
+            dim: (0, 0, 0),
+            ready: false,
         }
-        debug_assert_eq!(self.heights.len(), levels * plane);
+    }
+
+    /// The buffers for a band of `dim` (`[level, row, lon]`) to be computed into; `None`
+    /// when the band is larger than the buffers.
+    pub fn fields_mut(&mut self, dim: (usize, usize, usize)) -> Option<BandFields<'_>> {
+        let (levels, rows, cols) = dim;
+        let plane = rows * cols;
+        self.ready = false;
+        self.dim = dim;
+        Some(BandFields {
+            heights: self.heights.get_mut(..levels * plane)?,
+            flags: self.flags.get_mut(..levels * plane)?,
+            thickness: self
+                .thickness
+                .iter_mut()
+                .map(|(v, f)| Some((v.get_mut(..plane)?, f.get_mut(..plane)?)))
+                .collect::<Option<_>>()?,
+        })
+    }
+
+    /// Turns the band computed into [`FileRows::fields_mut`] into the file's form, in
+    /// place: non-finite values become the fill value, flags 0 or 1, and levels go top-down
+    /// when `reverse` ([`HeightsWriter::levels_reversed`]).
+    pub fn to_file_form(&mut self, reverse: bool) {
+        let (levels, rows, cols) = self.dim;
+        let plane = rows * cols;
+        let len = levels * plane;
+        let (Some(heights), Some(flags)) = (self.heights.get_mut(..len), self.flags.get_mut(..len))
+        else {
+            return;
+        };
+        heights.iter_mut().for_each(|v| *v = to_file_value(*v));
+        flags.iter_mut().for_each(|v| *v = u8::from(*v != 0));
+        for (v, f) in &mut self.thickness {
+            v.iter_mut()
+                .take(plane)
+                .for_each(|x| *x = to_file_value(*x));
+            f.iter_mut()
+                .take(plane)
+                .for_each(|x| *x = u8::from(*x != 0));
+        }
+        if reverse {
+            crate::ingest::reverse_levels_in_place(heights, levels, plane);
+            crate::ingest::reverse_levels_in_place(flags, levels, plane);
+        }
+        self.ready = true;
     }
 }
 
-/// Makes `buf` `len` long; a buffer that must grow is allocated afresh as a large field
-/// ([`crate::buffers::zeroed_field`]), since every value is written after.
-fn set_len<T: Copy + Default>(buf: &mut Vec<T>, len: usize) {
-    if buf.capacity() < len {
-        *buf = crate::buffers::zeroed_field(len);
-    } else {
-        buf.resize(len, T::default());
-    }
-}
-
-/// `out` becomes the levels of `field` (`[level, row, lon]`) in file order, converted.
-fn fill_levels<S: Copy, D: Copy + Default>(
-    out: &mut Vec<D>,
-    field: ArrayView3<'_, S>,
-    reverse: bool,
-    convert: impl Fn(S) -> D + Copy,
-) {
-    let (levels, rows, cols) = field.dim();
-    let plane = rows * cols;
-    set_len(out, levels * plane);
-    if plane == 0 {
-        return;
-    }
-    for (k_file, o) in out.chunks_mut(plane).enumerate() {
-        let k = if reverse { levels - 1 - k_file } else { k_file };
-        copy_plane(field.index_axis(ndarray::Axis(0), k), o, convert);
-    }
+/// Flags (0 or 1) as the bytes of the file's `byte` variables, the same values.
+fn flag_bytes(flags: &[u8]) -> &[i8] {
+    // SAFETY: `u8` and `i8` have the same size and alignment and every bit pattern is valid
+    // in both; the slice is only read, for as long as `flags` is borrowed.
+    unsafe { std::slice::from_raw_parts(flags.as_ptr().cast::<i8>(), flags.len()) }
 }
 
 /// The variable name of a layer's thickness: `thickness_<bottom>_<top>` in hPa, with `p`

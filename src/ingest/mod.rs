@@ -420,6 +420,12 @@ where
     Ok((cycle, outcome.result))
 }
 
+/// Reverses the order of the `levels` planes of `plane` values each in `data` (`[level, ...]`),
+/// in place.
+pub fn reverse_levels_in_place<T>(data: &mut [T], levels: usize, plane: usize) {
+    field::reverse_axis_in_place(data, 1, levels, plane);
+}
+
 /// Temperature and humidity of a cycle read a band of latitude rows of one (member, time) step
 /// at a time, for [`read_cycle_in_bands`]: exactly the values [`read_cycle`] puts at those
 /// rows, bit for bit.
