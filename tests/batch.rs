@@ -18,8 +18,10 @@ use std::path::{Path, PathBuf};
 use std::sync::Mutex;
 
 use common::fixtures::{
-    hybrid_variants, isobaric_variants, FileHeights, FixtureSpec, HumidityEncoding, SurfaceSpec,
+    hybrid_variants, isobaric_variants, two_layer_config, FileHeights, FixtureSpec,
+    HumidityEncoding, SurfaceSpec,
 };
+use common::hdf5::quiet_hdf5_on_this_thread;
 use hypsogrid::batch::{compute_file, compute_file_in_bands, BatchError, BatchReport};
 use hypsogrid::compute::{read_and_compute, ComputeConfig, ComputeError};
 use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
@@ -35,22 +37,9 @@ const FIXTURE_ROWS: usize = 4;
 /// fixture grid, so the last band is shorter), and the batch's own choice.
 const BAND_ROWS: [Option<usize>; 3] = [Some(1), Some(3), None];
 
-/// Layers on and between the fixture's levels (1000 925 850 700 500 300 200 100 hPa); the
-/// 1000 hPa bottom lies below the ground over the fixture's higher terrain.
+/// The fixture's two layers (see [`two_layer_config`]).
 fn config() -> ComputeConfig {
-    ComputeConfig {
-        layers: vec![
-            Layer {
-                bottom_pa: 100_000.0,
-                top_pa: 50_000.0,
-            },
-            Layer {
-                bottom_pa: 96_250.0,
-                top_pa: 41_000.0,
-            },
-        ],
-        ..ComputeConfig::default()
-    }
+    two_layer_config()
 }
 
 /// The same `history` on both sides (it records the command line).
@@ -105,26 +94,6 @@ fn batch(
 }
 
 // ----- comparing two files -----
-
-extern "C" {
-    /// HDF5's `H5Eset_auto2` (linked through the `netcdf` crate's HDF5): with a null handler,
-    /// turns off HDF5's automatic printing of expected attribute misses on the calling
-    /// thread, as the ingest module does on its reading threads.
-    fn H5Eset_auto2(
-        estack: i64,
-        func: Option<unsafe extern "C" fn(i64, *mut std::ffi::c_void) -> i32>,
-        data: *mut std::ffi::c_void,
-    ) -> i32;
-}
-
-/// Keeps this test thread's stderr free of HDF5's traces of expected attribute misses.
-fn quiet_hdf5_on_this_thread() {
-    // SAFETY: H5E_DEFAULT (0) and a null handler only change this thread's error-printing
-    // setting; no pointer is read.
-    unsafe {
-        H5Eset_auto2(0, None, std::ptr::null_mut());
-    }
-}
 
 /// Opens a file for reading, quietly; the caller holds the NetCDF session lock.
 fn open(path: &Path) -> netcdf::Result<netcdf::File> {

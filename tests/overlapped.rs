@@ -13,27 +13,17 @@ use std::path::{Path, PathBuf};
 
 use ndarray::s;
 
-use common::fixtures::{hybrid_variants, isobaric_variants, FixtureSpec, HumidityEncoding};
+use common::fixtures::{
+    hybrid_variants, isobaric_variants, two_layer_config, FixtureSpec, HumidityEncoding,
+};
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig, LoadError};
 use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
-use hypsogrid::model::{Cycle, Heights, Layer};
+use hypsogrid::model::{Cycle, Heights};
 use hypsogrid::query::LoadedCycle;
 
-/// Layers on and between the fixture's levels (1000 925 850 700 500 300 200 100 hPa).
+/// The fixture's two layers (see [`two_layer_config`]).
 fn config() -> ComputeConfig {
-    ComputeConfig {
-        layers: vec![
-            Layer {
-                bottom_pa: 100_000.0,
-                top_pa: 50_000.0,
-            },
-            Layer {
-                bottom_pa: 96_250.0,
-                top_pa: 41_000.0,
-            },
-        ],
-        ..ComputeConfig::default()
-    }
+    two_layer_config()
 }
 
 /// Bitwise equality of two float arrays (NaN equal to NaN), naming what differs.

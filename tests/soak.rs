@@ -20,6 +20,9 @@
 //! About 45 s by default; `HYPSOGRID_SOAK_SECONDS=600 cargo test --release --test soak --
 //! --nocapture` runs longer by hand (docs/OPERATIONS.md).
 
+#[path = "common/hdf5.rs"]
+mod quiet;
+
 use std::collections::{BTreeMap, HashMap};
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
@@ -36,6 +39,7 @@ use hypsogrid::pb::height_service_client::HeightServiceClient;
 use hypsogrid::service::{serve_on, ServiceConfig};
 use hypsogrid::store::{CycleStore, StoreConfig};
 use hypsogrid::watch::{watch, WatchConfig};
+use quiet::quiet_hdf5_on_this_thread;
 use tokio_stream::StreamExt;
 use tonic::transport::Channel;
 use tonic::Code;
@@ -71,26 +75,6 @@ fn vm_rss_bytes() -> Option<u64> {
     let line = status.lines().find(|l| l.starts_with("VmRSS:"))?;
     let kb: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
     Some(kb * 1024)
-}
-
-extern "C" {
-    /// HDF5's `H5Eset_auto2` (linked through the `netcdf` crate's HDF5): with a null handler,
-    /// turns off HDF5's automatic printing of expected attribute misses on the calling
-    /// thread, as the ingest module does on its reading threads.
-    fn H5Eset_auto2(
-        estack: i64,
-        func: Option<unsafe extern "C" fn(i64, *mut std::ffi::c_void) -> i32>,
-        data: *mut std::ffi::c_void,
-    ) -> i32;
-}
-
-/// Keeps the writer thread's log quiet (see [`H5Eset_auto2`]).
-fn quiet_hdf5_on_this_thread() {
-    // SAFETY: H5E_DEFAULT (0) and a null handler only change this thread's error-printing
-    // setting; no pointer is read.
-    unsafe {
-        H5Eset_auto2(0, None, std::ptr::null_mut());
-    }
 }
 
 /// Cycle ids written so far, with their reference times (Unix seconds).

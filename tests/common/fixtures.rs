@@ -24,6 +24,9 @@ use std::path::{Path, PathBuf};
 
 use netcdf::{AttributeValue, Options};
 
+use hypsogrid::compute::ComputeConfig;
+use hypsogrid::model::Layer;
+
 /// Standard gravity g0, m s⁻² (WMO definition of the geopotential metre).
 pub const G0: f64 = 9.80665;
 /// ε = M_w / M_d (GUIDE §2).
@@ -278,6 +281,25 @@ impl Default for FixtureSpec {
             chunks_across_steps: false,
             faults: Faults::default(),
         }
+    }
+}
+
+/// A computation with two layers, one bounded by levels of the fixture (1000-500 hPa), one
+/// by pressures between them (962.5-410 hPa); the 1000 hPa bottom lies below the ground over
+/// the fixture's higher terrain.
+pub fn two_layer_config() -> ComputeConfig {
+    ComputeConfig {
+        layers: vec![
+            Layer {
+                bottom_pa: 100_000.0,
+                top_pa: 50_000.0,
+            },
+            Layer {
+                bottom_pa: 96_250.0,
+                top_pa: 41_000.0,
+            },
+        ],
+        ..ComputeConfig::default()
     }
 }
 

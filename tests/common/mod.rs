@@ -1,7 +1,9 @@
 //! Helpers shared by the integration tests.
 //!
 //! - [`fixtures`]: synthetic CF NetCDF files with one knob per encoding variant.
+//! - [`hdf5`]: HDF5's error printing off on a test thread.
 //! - [`serve_child`]: `hypsogrid serve` as a child process on a loopback port.
 
 pub mod fixtures;
+pub mod hdf5;
 pub mod serve_child;
