@@ -175,6 +175,8 @@ pub struct HeightsWriter {
     file: Option<netcdf::FileMut>,
     partial: PartialFile,
     reverse: bool,
+    /// Rows written so far of each (member, time) step, member-major.
+    written: Vec<usize>,
 }
 
 impl HeightsWriter {
@@ -191,11 +193,13 @@ impl HeightsWriter {
         let plan = Plan::new(cycle, about.layers, path, options)?;
         let partial = PartialFile::new(path)?;
         let file = create_defined(&plan, cycle, about, options, partial.path(), session)?;
+        let steps = plan.members * plan.times;
         Ok(Self {
             plan,
             file: Some(file),
             partial,
             reverse: cycle.levels_top_down_in_file,
+            written: vec![0; steps],
         })
     }
 
@@ -278,12 +282,35 @@ impl HeightsWriter {
                 .put_values(flag_bytes(&flags[..plane]), extents(None))
                 .map_err(plan.nc_error(format!("writing variable '{flag_name}'")))?;
         }
+        if let Some(w) = self.written.get_mut(m * plan.times + t) {
+            *w += n;
+        }
         Ok(())
     }
 
     /// Closes the file and renames it into place. Every row of every step must have been
-    /// written: the variables have no fill pass (see [`write_heights`]).
+    /// written, once: the variables have no fill pass (see [`write_heights`]), so a row left
+    /// out would read as whatever the file held. A step whose count of rows written is not
+    /// the grid's is refused, and nothing is renamed into place.
     pub fn commit(mut self) -> Result<(), OutputError> {
+        let plan = &self.plan;
+        if let Some((i, &n)) = self
+            .written
+            .iter()
+            .enumerate()
+            .find(|(_, &n)| n != plan.rows)
+        {
+            return Err(OutputError::Shape {
+                path: plan.path.clone(),
+                what: format!(
+                    "the rows written of step ({}, {})",
+                    i / plan.times.max(1),
+                    i % plan.times.max(1)
+                ),
+                expected: vec![plan.rows],
+                found: vec![n],
+            });
+        }
         if let Some(file) = self.file.take() {
             file.close().map_err(
                 self.plan

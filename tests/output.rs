@@ -12,7 +12,10 @@ use std::path::{Path, PathBuf};
 use ndarray::{Array4, Array5};
 
 use hypsogrid::model::{Cycle, Grid, Heights, Layer, LayerThickness, Vertical};
-use hypsogrid::output::{write_heights, OutputError, OutputOptions, FLOAT_FILL_VALUE};
+use hypsogrid::output::{
+    write_heights, FileRows, HeightsAbout, HeightsWriter, OutputError, OutputOptions,
+    FLOAT_FILL_VALUE,
+};
 use hypsogrid::physics::Constants;
 
 /// U.S. Standard Atmosphere 1976 geopotential heights, m, bottom-up: 1000, 850, 500 hPa
@@ -632,5 +635,105 @@ fn fill_attribute(v: &netcdf::Variable<'_>) -> f32 {
     match v.attribute_value("_FillValue") {
         Some(Ok(netcdf::AttributeValue::Float(x))) => x,
         other => panic!("_FillValue of '{}': {other:?}", v.name()),
+    }
+}
+
+/// The writer the batch uses takes the file band by band: bands that leave a row of a step
+/// unwritten, or a band not turned into the file's form, are refused, and nothing is renamed
+/// into place (the variables have no fill pass, so a missing row would read as whatever the
+/// file held). A complete set of bands writes the same values as `write_heights`.
+#[test]
+fn the_band_writer_refuses_missing_rows_and_writes_what_write_heights_writes() {
+    let dir = tempfile::tempdir().unwrap();
+    let cycle = cycle(MEMBERS, Some("2030-01-15T00:00:00Z"));
+    let heights = heights(MEMBERS);
+    let layers = layers();
+    let about = HeightsAbout {
+        method: &heights.method,
+        constants: &heights.constants,
+        layers: &layers,
+    };
+    // One band per row, from the in-memory heights.
+    let band = |m: usize, t: usize, r: usize| {
+        let mut rows = FileRows::new((3, 1, COLS), layers.len());
+        let fields = rows.fields_mut((3, 1, COLS)).expect("a band that fits");
+        for k in 0..3 {
+            for c in 0..COLS {
+                fields.heights[k * COLS + c] = heights.geopotential_height[[m, t, k, r, c]];
+                fields.flags[k * COLS + c] = heights.below_ground[[m, t, k, r, c]];
+            }
+        }
+        for (i, (v, f)) in fields.thickness.into_iter().enumerate() {
+            for c in 0..COLS {
+                v[c] = heights.thickness[i].values[[m, t, r, c]];
+                f[c] = heights.thickness[i].below_ground[[m, t, r, c]];
+            }
+        }
+        rows
+    };
+    let write_bands = |path: &Path, skip: Option<(usize, usize, usize)>| {
+        let session = hypsogrid::netcdf_session::lock();
+        let mut writer =
+            HeightsWriter::create(&cycle, &about, path, &options("x"), &session).unwrap();
+        for m in 0..MEMBERS {
+            for t in 0..TIMES {
+                for r in 0..ROWS {
+                    if skip == Some((m, t, r)) {
+                        continue;
+                    }
+                    let mut rows = band(m, t, r);
+                    rows.to_file_form(writer.levels_reversed());
+                    writer.put_rows((m, t), r..r + 1, &rows).unwrap();
+                }
+            }
+        }
+        writer.commit()
+    };
+
+    let missing = dir.path().join("missing.nc");
+    let err = write_bands(&missing, Some((1, 1, 0))).unwrap_err();
+    assert!(
+        err.to_string().contains("step (1, 1)") && err.to_string().contains("missing.nc"),
+        "{err}"
+    );
+    assert!(entries(dir.path()).is_empty(), "{:?}", entries(dir.path()));
+
+    {
+        let session = hypsogrid::netcdf_session::lock();
+        let path = dir.path().join("raw.nc");
+        let mut writer =
+            HeightsWriter::create(&cycle, &about, &path, &options("x"), &session).unwrap();
+        let err = writer.put_rows((0, 0), 0..1, &band(0, 0, 0)).unwrap_err();
+        assert!(err.to_string().contains("not in the file's form"), "{err}");
+    }
+    assert!(entries(dir.path()).is_empty(), "{:?}", entries(dir.path()));
+
+    let banded = dir.path().join("banded.nc");
+    write_bands(&banded, None).unwrap();
+    let whole = dir.path().join("whole.nc");
+    write_heights(&cycle, &heights, &whole, &options("x")).unwrap();
+    let _session = hypsogrid::netcdf_session::lock();
+    let (a, b) = (
+        netcdf::open(&banded).unwrap(),
+        netcdf::open(&whole).unwrap(),
+    );
+    for name in [
+        "geopotential_height",
+        "thickness_1000_500",
+        "thickness_850_512p5",
+    ] {
+        let read = |f: &netcdf::File| -> Vec<u32> {
+            let v = f.variable(name).unwrap();
+            v.get_values::<f32, _>(..)
+                .unwrap()
+                .iter()
+                .map(|x| x.to_bits())
+                .collect()
+        };
+        assert_eq!(read(&a), read(&b), "{name}");
+    }
+    for name in ["below_ground", "thickness_1000_500_below_ground"] {
+        let read = |f: &netcdf::File| f.variable(name).unwrap().get_values::<i8, _>(..).unwrap();
+        assert_eq!(read(&a), read(&b), "{name}");
     }
 }
