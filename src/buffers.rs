@@ -35,7 +35,7 @@ pub(crate) fn zeroed_field_array<T: Clone + Default>(
 /// at their first real write; returns the index reached (at most `buf.len()`).
 ///
 /// For a fresh zeroed buffer that nothing has written yet (the values stay zero), touched
-/// in time that would otherwise be idle: see [`crate::compute::read_and_compute`].
+/// in time that would otherwise be idle: see [`crate::compute::read_for_serving`].
 pub(crate) fn touch_pages<T: Copy + Default>(buf: &mut [T], from: usize, bytes: usize) -> usize {
     const PAGE: usize = 4096;
     let size = std::mem::size_of::<T>().max(1);

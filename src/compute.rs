@@ -129,7 +129,7 @@ pub(crate) fn kernel_for(
     Some((kernel, method_sentence(cycle, reference)))
 }
 
-/// Output bytes faulted in per piece of idle work in [`read_and_compute`]: a huge page.
+/// Output bytes faulted in per piece of idle work in [`read_for_serving`]: a huge page.
 const TOUCH_BYTES: usize = 2 << 20;
 
 /// Why a cycle could not be read and computed; both messages name the file.
@@ -143,15 +143,12 @@ pub enum LoadError {
     Compute(#[from] ComputeError),
 }
 
-/// Reads the cycle in `path` and computes it as [`compute_heights`] does, the kernel
-/// working on each (member, time) step as soon as that step has been read
-/// ([`read_cycle_overlapped`]), so that on a cycle of many lead times or members most of
-/// the computing hides behind the reading. The answers are those of [`read_cycle`]
-/// followed by [`compute_heights`], bit for bit.
+/// Reads the whole cycle in `path` ([`read_cycle`]) and then computes it
+/// ([`compute_heights`]). `progress` is called once per finished (member, time) step with
+/// the number finished and the total.
 ///
-/// Cycles the row kernel does not take, and files whose layout needs whole-variable
-/// reads, are read first and computed after, as before. `progress` is called once per
-/// finished (member, time) step with the number finished and the total.
+/// The batch goes band by band instead wherever it can ([`crate::batch::compute_file`]);
+/// this is its way for the other cycles, and the reference the bands are tested against.
 ///
 /// [`read_cycle`]: crate::ingest::read_cycle
 pub fn read_and_compute(
@@ -161,50 +158,22 @@ pub fn read_and_compute(
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<(Cycle, Heights), LoadError> {
     check_layers(config)?;
-    let prepare = |cycle: &Cycle| {
-        let kernel = IsobaricKernel::new(cycle, &config.layers).ok()?;
-        let reference = StepColumns::new(cycle, config, 0, 0).ok()?.reference;
-        let out = WholeCycle {
-            out: kernel.outputs(cycle.temperature.dim()),
-            at: (0, 0),
-        };
-        Some((kernel, reference, out))
-    };
-    let work = |(kernel, reference, mut out): (IsobaricKernel, Reference, WholeCycle),
-                shell: &Cycle,
-                steps: crate::ingest::StepFeed<'_>| {
-        let (members, times, ..) = out.out.geopotential_height.dim();
-        let done = compute_while_reading(
-            &kernel,
-            shell,
-            steps,
-            &mut out,
-            (members, times),
-            false,
-            progress,
-        )?;
-        Some((reference, out.out, done))
-    };
-    let (cycle, computed) = read_cycle_overlapped(path, ingest, prepare, work)?;
+    let cycle = crate::ingest::read_cycle(path, ingest)?;
     let (members, times, ..) = cycle.temperature.dim();
     let total = members * times;
-    let heights = match computed.flatten() {
-        // Every step went through the kernel.
-        Some((reference, out, done)) if done == total => kernel_heights(&cycle, out, reference),
-        _ => compute_heights(&cycle, config, &|done| progress(done, total))?,
-    };
+    let heights = compute_heights(&cycle, config, &|done| progress(done, total))?;
     Ok((cycle, heights))
 }
 
-/// Reads the cycle in `path` for serving: as [`read_and_compute`], the kernel works on each
-/// step while later ones are read, but the last step is left to compute (as are all steps of
+/// Reads the cycle in `path` for serving: the kernel works on each step while later ones
+/// are read ([`read_cycle_overlapped`]), but the last step is left to compute (as are all steps of
 /// a cycle the kernel does not take), so that the cycle can be served the moment its file
 /// has been read. [`PendingSteps::finish`] computes the rest.
 ///
 /// The heights are those of [`compute_heights`], step for step, bit for bit.
 ///
 /// # Errors
-/// As [`read_and_compute`]: the file cannot be read as a cycle, or the cycle cannot be
+/// The file cannot be read as a cycle ([`crate::ingest::read_cycle`]), or the cycle cannot be
 /// computed with `config` (checked here, before anything is served).
 pub fn read_for_serving(
     path: &Path,
@@ -233,15 +202,7 @@ pub fn read_for_serving(
     let work = |(kernel, mut out, steps_shape): (IsobaricKernel, EachStep, (usize, usize)),
                 shell: &Cycle,
                 steps: crate::ingest::StepFeed<'_>| {
-        compute_while_reading(
-            &kernel,
-            shell,
-            steps,
-            &mut out,
-            steps_shape,
-            true,
-            &|_, _| {},
-        );
+        compute_while_reading(&kernel, shell, steps, &mut out, steps_shape);
         (kernel, out)
     };
     let (cycle, overlapped) = read_cycle_overlapped(path, ingest, prepare, work)?;
@@ -397,53 +358,6 @@ fn columns_step(
     })
 }
 
-/// Where the kernel writes the steps it computes while a cycle is still being read.
-trait StepSink {
-    /// Faults in about [`TOUCH_BYTES`] of output pages not yet touched, of step `next` or a
-    /// later one; false when none are left.
-    fn touch_ahead(&mut self, next: usize) -> bool;
-    /// Runs `kernel` on step number `index` of the file, (`m`, `t`).
-    fn run(
-        &mut self,
-        kernel: &IsobaricKernel,
-        fields: StepFields<'_>,
-        index: usize,
-        mt: (usize, usize),
-    ) -> Result<(), crate::kernel::NotApplicable>;
-}
-
-/// The outputs of a whole cycle, as the batch writes them.
-struct WholeCycle {
-    out: KernelOutput,
-    /// How far the heights and the flags have been faulted in.
-    at: (usize, usize),
-}
-
-impl StepSink for WholeCycle {
-    fn touch_ahead(&mut self, next: usize) -> bool {
-        let (_, _, levels, rows, cols) = self.out.geopotential_height.dim();
-        let start = next * levels * rows * cols;
-        let (z, b) = (
-            &mut self.out.geopotential_height,
-            &mut self.out.below_ground,
-        );
-        match (z.as_slice_mut(), b.as_slice_mut()) {
-            (Some(z), Some(b)) => touch_next(z, b, start, &mut self.at),
-            _ => false,
-        }
-    }
-
-    fn run(
-        &mut self,
-        kernel: &IsobaricKernel,
-        fields: StepFields<'_>,
-        _index: usize,
-        mt: (usize, usize),
-    ) -> Result<(), crate::kernel::NotApplicable> {
-        kernel.run_step(fields, mt, &mut self.out)
-    }
-}
-
 /// One output per step, as a served cycle holds them.
 struct EachStep {
     /// Buffers of the steps not yet computed.
@@ -454,7 +368,9 @@ struct EachStep {
     at: (usize, usize, usize),
 }
 
-impl StepSink for EachStep {
+impl EachStep {
+    /// Faults in about [`TOUCH_BYTES`] of output pages not yet touched, of step `next` or a
+    /// later one; false when none are left.
     fn touch_ahead(&mut self, next: usize) -> bool {
         if self.at.0 < next {
             self.at = (next, 0, 0);
@@ -464,7 +380,7 @@ impl StepSink for EachStep {
                 let (z, b) = (&mut out.geopotential_height, &mut out.below_ground);
                 let mut at = (self.at.1, self.at.2);
                 let more = match (z.as_slice_mut(), b.as_slice_mut()) {
-                    (Some(z), Some(b)) => touch_next(z, b, 0, &mut at),
+                    (Some(z), Some(b)) => touch_next(z, b, &mut at),
                     _ => false,
                 };
                 (self.at.1, self.at.2) = at;
@@ -478,12 +394,12 @@ impl StepSink for EachStep {
         false
     }
 
+    /// Runs `kernel` on step number `index` of the file.
     fn run(
         &mut self,
         kernel: &IsobaricKernel,
         fields: StepFields<'_>,
         index: usize,
-        _mt: (usize, usize),
     ) -> Result<(), crate::kernel::NotApplicable> {
         let buffer = self.outs.get_mut(index).and_then(Option::take);
         self.finished[index] = Some(run_one_step(kernel, fields, buffer)?);
@@ -492,10 +408,8 @@ impl StepSink for EachStep {
 }
 
 /// Faults in the next [`TOUCH_BYTES`] of `z` from `at.0`, or when `z` is done of `b` from
-/// `at.1`, neither before `start`; false when both are done.
-fn touch_next(z: &mut [f32], b: &mut [u8], start: usize, at: &mut (usize, usize)) -> bool {
-    at.0 = at.0.max(start);
-    at.1 = at.1.max(start);
+/// `at.1`; false when both are done.
+fn touch_next(z: &mut [f32], b: &mut [u8], at: &mut (usize, usize)) -> bool {
     if at.0 < z.len() {
         at.0 = touch_pages(z, at.0, TOUCH_BYTES);
     } else if at.1 < b.len() {
@@ -506,36 +420,32 @@ fn touch_next(z: &mut [f32], b: &mut [u8], start: usize, at: &mut (usize, usize)
     true
 }
 
-/// The kernel's side of an overlapped read: runs `kernel` on each step of `steps` as it
-/// arrives, into `sink`, faulting in output pages while no step is ready. Steps must come
-/// in file order (member-major); `leave_last` leaves the last step of the file to the
-/// caller. Returns the number of steps computed, `None` when the feed broke the order or
-/// the kernel refused a step (the caller then computes what is missing another way).
+/// The kernel's side of the serving read: runs `kernel` on each step of `steps` as it
+/// arrives, into `out`, faulting in output pages while no step is ready, and leaves the
+/// last step of the file to the caller. Steps must come in file order (member-major); the
+/// feed breaking the order, or the kernel refusing a step, stops the work (the steps not
+/// computed are computed another way after the read).
 fn compute_while_reading(
     kernel: &IsobaricKernel,
     shell: &Cycle,
     mut steps: crate::ingest::StepFeed<'_>,
-    sink: &mut (impl StepSink + Send),
+    out: &mut EachStep,
     (members, times): (usize, usize),
-    leave_last: bool,
-    progress: &(dyn Fn(usize, usize) + Sync),
-) -> Option<usize> {
-    let surface = shell.surface.as_ref()?;
+) {
+    let Some(surface) = shell.surface.as_ref() else {
+        return;
+    };
     let total = members * times;
     let pool = (total > 1).then(background_pool).flatten();
     let mut done = 0;
     // While no step is ready (above all while the first is read), fault in the output
     // pages of the steps not yet computed: work the kernel would otherwise do at its first
     // write, moved into idle time.
-    while let Some(step) = steps.next_or_idle(|| sink.touch_ahead(done)) {
+    while let Some(step) = steps.next_or_idle(|| out.touch_ahead(done)) {
         let (m, t) = (step.member, step.time);
-        if m * times + t != done {
-            return None;
-        }
         // Every step but the last is computed while later ones are still being read.
-        let reading = done + 1 < total;
-        if !reading && leave_last {
-            break;
+        if m * times + t != done || done + 1 >= total {
+            return;
         }
         let fields = StepFields {
             t: step.temperature,
@@ -543,15 +453,15 @@ fn compute_while_reading(
             ps: surface.pressure_pa.slice(s![m, t, .., ..]),
             zs: surface.height_m.slice(s![m, t, .., ..]),
         };
-        match pool.as_ref().filter(|_| reading) {
-            Some(pool) => pool.install(|| sink.run(kernel, fields, done, (m, t))),
-            None => sink.run(kernel, fields, done, (m, t)),
+        let computed = match pool.as_ref() {
+            Some(pool) => pool.install(|| out.run(kernel, fields, done)),
+            None => out.run(kernel, fields, done),
+        };
+        if computed.is_err() {
+            return;
         }
-        .ok()?;
         done += 1;
-        progress(done, total);
     }
-    Some(done)
 }
 
 /// Threads for the kernel while later steps of a cycle are still being read: as many as
@@ -559,7 +469,8 @@ fn compute_while_reading(
 /// reads.
 ///
 /// The file is read by one thread at a time (the NetCDF library is serialised), so the read
-/// is the critical path of [`read_and_compute`]; with the kernel's threads at the same
+/// is the critical path of [`read_for_serving`] (and the reading and writing thread that of
+/// the batch, [`crate::batch`]); with the kernel's threads at the same
 /// priority, the reading thread got about two thirds of a core on two cores. Lowered, they
 /// take what the reader leaves: in alternate runs of `benches/compute.rs` a four-step 0.5°
 /// cycle became servable in 1.19-1.34 times its read against 1.41-1.55 without (a second

@@ -1,6 +1,9 @@
-//! Reading and computing overlapped ([`read_and_compute`], [`read_cycle_overlapped`]) gives
-//! exactly what reading the whole cycle first and computing after gives, for every encoding
-//! of the fixture atmosphere, and the same errors for bad files.
+//! Reading and computing overlapped gives exactly what reading the whole cycle first and
+//! computing after gives, for every encoding of the fixture atmosphere, and the same errors
+//! for bad files: the feed of steps ([`read_cycle_overlapped`]) and the serving read that
+//! computes each step while later ones are read ([`LoadedCycle::read`], then its pending
+//! steps). The batch's own whole-cycle path ([`read_and_compute`], read then computed) is
+//! held to the same answers and errors.
 //!
 //! The reference here is the project's own two-pass path (`read_cycle` then
 //! `compute_heights`), itself checked against published values in `tests/compute.rs`,
@@ -117,7 +120,7 @@ fn write(dir: &Path, label: &str, spec: &FixtureSpec) -> PathBuf {
 }
 
 #[test]
-fn every_variant_reads_and_computes_overlapped_as_in_two_passes() {
+fn every_variant_reads_and_computes_as_in_two_passes() {
     let dir = tempfile::tempdir().expect("tempdir");
     let ingest = IngestConfig::default();
     let config = config();
@@ -343,8 +346,8 @@ fn a_bad_value_in_a_later_step_gives_the_whole_read_error() {
             Err(e @ IngestError::Implausible { .. }) => e.to_string(),
             Err(e) => panic!("unexpected error: {e}"),
         };
-        let overlapped = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
-        assert_eq!(overlapped, whole);
+        let batch = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
+        assert_eq!(batch, whole);
         // Nothing is served from such a file: its read for serving fails alike.
         let served = error_of(LoadedCycle::read(&path, &ingest, &config()));
         assert_eq!(served, whole);
@@ -375,14 +378,17 @@ fn a_temperature_with_no_valid_value_is_refused_by_name() {
         .map(|_| ())
         .unwrap_err()
         .to_string();
-    let overlapped = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
-    assert_eq!(overlapped, whole);
+    let batch = error_of(read_and_compute(&path, &ingest, &config(), &|_, _| {}));
+    assert_eq!(batch, whole);
+    let served = error_of(LoadedCycle::read(&path, &ingest, &config()));
+    assert_eq!(served, whole);
     assert!(whole.contains("'t'"), "{whole}");
 }
 
 /// Real model files (`../shared/data`, PROVENANCE.md beside each): GFS 1° isobaric
 /// (2010-10-26 12Z), GFS 2.5° global subset (2011-01-10 12Z + 120 h), WRF Katrina (hybrid
-/// levels, the column path). Overlapped or not, the same cycle and the same heights.
+/// levels, the column path). Read for serving (steps computed while later ones are read) or
+/// by the batch's whole-cycle path, the same cycle and the same heights as in two passes.
 #[test]
 fn real_model_files_read_and_compute_overlapped_as_in_two_passes() {
     let base = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/../shared/data"));
@@ -405,8 +411,10 @@ fn real_model_files_read_and_compute_overlapped_as_in_two_passes() {
                 .map(|_| ())
                 .unwrap_err()
                 .to_string();
-            let overlapped = error_of(read_and_compute(&path, &ingest, &config, &|_, _| {}));
-            assert_eq!(overlapped, whole, "{relative}");
+            let batch = error_of(read_and_compute(&path, &ingest, &config, &|_, _| {}));
+            assert_eq!(batch, whole, "{relative}");
+            let served = error_of(LoadedCycle::read(&path, &ingest, &config));
+            assert_eq!(served, whole, "{relative}");
             continue;
         };
         let heights = compute_heights(&cycle, &config, &|_| {}).expect(relative);
@@ -414,6 +422,18 @@ fn real_model_files_read_and_compute_overlapped_as_in_two_passes() {
             read_and_compute(&path, &ingest, &config, &|_, _| {}).expect(relative);
         same_cycle(relative, &cycle, &cycle2);
         same_heights(relative, &heights, &heights2);
+        // Served: heights on every level (no layers), step by step as the batch's.
+        let served = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).expect(relative);
+        let lc = LoadedCycle::read(&path, &ingest, &config).expect(relative);
+        same_cycle(relative, &cycle, &lc.cycle);
+        lc.finish_heights();
+        let (z, below) = lc.heights.to_arrays().expect(relative);
+        same_bits(
+            &format!("{relative}: served heights"),
+            &z,
+            &served.geopotential_height,
+        );
+        assert_eq!(below, served.below_ground, "{relative}: served flags");
         seen += 1;
     }
     println!("{seen} real files compared");
