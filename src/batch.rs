@@ -277,9 +277,9 @@ impl BandJob<'_> {
              -> Result<(), BatchError> {
                 let band = done.map_err(|failure| match failure {
                     Failure::BadValue(bad) => BatchError::Ingest(bands.bad_value(&bad)),
-                    Failure::Kernel(e) => BatchError::Band {
+                    Failure::Kernel(detail) => BatchError::Band {
                         file: self.shell.source.display().to_string(),
-                        detail: e.to_string(),
+                        detail,
                     },
                 })?;
                 valid = [valid[0] || band.valid[0], valid[1] || band.valid[1]];
@@ -349,43 +349,29 @@ impl BandJob<'_> {
             .decode((m, t), rows.clone(), &mut band.t[..len], q)
             .map_err(Failure::BadValue)?;
         let shape3 = (levels, n, cols);
-        fn view(shape: (usize, usize, usize), data: &[f32]) -> Option<ArrayView3<'_, f32>> {
-            let len = shape.0 * shape.1 * shape.2;
-            ArrayView3::from_shape(shape, data.get(..len)?).ok()
-        }
-        let bad_shape = || NotApplicable::Shape {
-            field: "band",
-            found: vec![band.t.len()],
-            expected: vec![len],
-        };
         let fields = StepFields {
-            t: view(shape3, &band.t).ok_or_else(bad_shape)?,
+            t: ArrayView3::from_shape(shape3, &band.t[..len])?,
             q: match &band.q {
-                Some(q) => Some(view(shape3, q).ok_or_else(bad_shape)?),
+                Some(q) => Some(ArrayView3::from_shape(shape3, &q[..len])?),
                 None => None,
             },
             ps: self.surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
             zs: self.surface.height_m.slice(s![m, t, rows, ..]),
         };
-        let bad_shape = || NotApplicable::Shape {
-            field: "band",
-            found: vec![len],
-            expected: vec![len],
-        };
-        let out = band.out.fields_mut(shape3).ok_or_else(bad_shape)?;
+        let out = band.out.fields_mut(shape3).ok_or_else(|| {
+            Failure::Kernel(format!("a band of {shape3:?} does not fit its buffers"))
+        })?;
+        let mut thickness = Vec::with_capacity(out.thickness.len());
+        for (v, f) in out.thickness {
+            thickness.push((
+                ArrayViewMut2::from_shape((n, cols), v)?,
+                ArrayViewMut2::from_shape((n, cols), f)?,
+            ));
+        }
         let outputs = StepOutputs {
-            geopotential_height: ArrayViewMut3::from_shape(shape3, out.heights)
-                .map_err(|_| bad_shape())?,
-            below_ground: ArrayViewMut3::from_shape(shape3, out.flags).map_err(|_| bad_shape())?,
-            thickness: out
-                .thickness
-                .into_iter()
-                .filter_map(|(v, f)| {
-                    let v = ArrayViewMut2::from_shape((n, cols), v).ok()?;
-                    let f = ArrayViewMut2::from_shape((n, cols), f).ok()?;
-                    Some((v, f))
-                })
-                .collect(),
+            geopotential_height: ArrayViewMut3::from_shape(shape3, out.heights)?,
+            below_ground: ArrayViewMut3::from_shape(shape3, out.flags)?,
+            thickness,
         };
         self.kernel.run_into(fields, outputs)?;
         band.out.to_file_form(reverse);
@@ -397,13 +383,20 @@ impl BandJob<'_> {
 enum Failure {
     /// A value of the band is implausible.
     BadValue(BadValue),
-    /// The kernel refused the band (not reached: its shapes are made to fit).
-    Kernel(NotApplicable),
+    /// The kernel refused the band, or its arrays did not take their shapes (not reached:
+    /// the buffers are made to fit).
+    Kernel(String),
 }
 
 impl From<NotApplicable> for Failure {
     fn from(e: NotApplicable) -> Self {
-        Failure::Kernel(e)
+        Failure::Kernel(e.to_string())
+    }
+}
+
+impl From<ndarray::ShapeError> for Failure {
+    fn from(e: ndarray::ShapeError) -> Self {
+        Failure::Kernel(e.to_string())
     }
 }
 

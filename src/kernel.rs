@@ -636,6 +636,22 @@ pub struct StepOutputs<'a> {
     pub thickness: Vec<(ArrayViewMut2<'a, f32>, ArrayViewMut2<'a, u8>)>,
 }
 
+/// Each layer's thickness and flag at member `m`, time step `t`, `[lat, lon]`.
+fn step_thickness(
+    thickness: &mut [LayerThickness],
+    (m, t): (usize, usize),
+) -> Vec<(ArrayViewMut2<'_, f32>, ArrayViewMut2<'_, u8>)> {
+    thickness
+        .iter_mut()
+        .map(|th| {
+            (
+                th.values.slice_mut(s![m, t, .., ..]),
+                th.below_ground.slice_mut(s![m, t, .., ..]),
+            )
+        })
+        .collect()
+}
+
 /// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
 fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
     match v.to_slice() {
@@ -880,16 +896,8 @@ impl IsobaricKernel {
                         b.slice_mut(s![m, t, .., .., ..]),
                     )
                 });
-                let step_thickness = thickness
-                    .iter_mut()
-                    .map(|th| {
-                        (
-                            th.values.slice_mut(s![m, t, .., ..]),
-                            th.below_ground.slice_mut(s![m, t, .., ..]),
-                        )
-                    })
-                    .collect();
-                self.step_into(&views, n_levels, step_heights, step_thickness);
+                let step_layers = step_thickness(thickness, (m, t));
+                self.step_into(&views, n_levels, step_heights, step_layers);
                 done += 1;
                 progress(done);
             }
@@ -954,16 +962,7 @@ impl IsobaricKernel {
         let outputs = StepOutputs {
             geopotential_height: out.geopotential_height.slice_mut(s![m, t, .., .., ..]),
             below_ground: out.below_ground.slice_mut(s![m, t, .., .., ..]),
-            thickness: out
-                .thickness
-                .iter_mut()
-                .map(|th| {
-                    (
-                        th.values.slice_mut(s![m, t, .., ..]),
-                        th.below_ground.slice_mut(s![m, t, .., ..]),
-                    )
-                })
-                .collect(),
+            thickness: step_thickness(&mut out.thickness, (m, t)),
         };
         self.run_into(step, outputs)
     }

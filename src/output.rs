@@ -172,7 +172,7 @@ pub struct HeightsWriter {
     plan: Plan,
     /// Declared before `partial`, so that the file is closed before the partial file is
     /// removed on drop.
-    file: Option<netcdf::FileMut>,
+    file: netcdf::FileMut,
     partial: PartialFile,
     reverse: bool,
     /// Rows written so far of each (member, time) step, member-major.
@@ -196,7 +196,7 @@ impl HeightsWriter {
         let steps = plan.members * plan.times;
         Ok(Self {
             plan,
-            file: Some(file),
+            file,
             partial,
             reverse: cycle.levels_top_down_in_file,
             written: vec![0; steps],
@@ -221,15 +221,10 @@ impl HeightsWriter {
         let plane = n * plan.cols;
         let len = plan.levels * plane;
         let expected = (plan.levels, n, plan.cols);
+        // A band in the file's form holds `dim` in every buffer (`FileRows::fields_mut`).
         let fits = band.ready
             && band.dim == expected
-            && band.heights.len() >= len
-            && band.flags.len() >= len
-            && band.thickness.len() == plan.thickness_names.len()
-            && band
-                .thickness
-                .iter()
-                .all(|(v, f)| v.len() >= plane && f.len() >= plane);
+            && band.thickness.len() == plan.thickness_names.len();
         if m >= plan.members || t >= plan.times || rows.end > plan.rows || !fits {
             return Err(OutputError::Shape {
                 path: plan.path.clone(),
@@ -247,11 +242,7 @@ impl HeightsWriter {
                 found: vec![band.dim.0, band.dim.1, band.dim.2],
             });
         }
-        let file = self.file.as_mut().ok_or_else(|| OutputError::Io {
-            path: plan.path.clone(),
-            context: "writing after the file was closed".into(),
-            source: std::io::Error::other("closed"),
-        })?;
+        let file = &mut self.file;
         let extents = |levels: Option<usize>| {
             let mut e: Vec<netcdf::Extent> = Vec::with_capacity(5);
             if plan.members > 1 {
@@ -292,14 +283,15 @@ impl HeightsWriter {
     /// written, once: the variables have no fill pass (see [`write_heights`]), so a row left
     /// out would read as whatever the file held. A step whose count of rows written is not
     /// the grid's is refused, and nothing is renamed into place.
-    pub fn commit(mut self) -> Result<(), OutputError> {
-        let plan = &self.plan;
-        if let Some((i, &n)) = self
-            .written
-            .iter()
-            .enumerate()
-            .find(|(_, &n)| n != plan.rows)
-        {
+    pub fn commit(self) -> Result<(), OutputError> {
+        let Self {
+            plan,
+            file,
+            partial,
+            written,
+            ..
+        } = self;
+        if let Some((i, &n)) = written.iter().enumerate().find(|(_, &n)| n != plan.rows) {
             return Err(OutputError::Shape {
                 path: plan.path.clone(),
                 what: format!(
@@ -311,13 +303,9 @@ impl HeightsWriter {
                 found: vec![n],
             });
         }
-        if let Some(file) = self.file.take() {
-            file.close().map_err(
-                self.plan
-                    .nc_error(format!("closing '{}'", self.partial.path().display())),
-            )?;
-        }
-        self.partial.commit()
+        file.close()
+            .map_err(plan.nc_error(format!("closing '{}'", partial.path().display())))?;
+        partial.commit()
     }
 }
 
@@ -371,15 +359,24 @@ impl FileRows {
         let (levels, rows, cols) = dim;
         let plane = rows * cols;
         self.ready = false;
+        let fits = self.heights.len() >= levels * plane
+            && self.flags.len() >= levels * plane
+            && self
+                .thickness
+                .iter()
+                .all(|(v, f)| v.len() >= plane && f.len() >= plane);
+        if !fits {
+            return None;
+        }
         self.dim = dim;
         Some(BandFields {
-            heights: self.heights.get_mut(..levels * plane)?,
-            flags: self.flags.get_mut(..levels * plane)?,
+            heights: &mut self.heights[..levels * plane],
+            flags: &mut self.flags[..levels * plane],
             thickness: self
                 .thickness
                 .iter_mut()
-                .map(|(v, f)| Some((v.get_mut(..plane)?, f.get_mut(..plane)?)))
-                .collect::<Option<_>>()?,
+                .map(|(v, f)| (&mut v[..plane], &mut f[..plane]))
+                .collect(),
         })
     }
 
@@ -390,19 +387,13 @@ impl FileRows {
         let (levels, rows, cols) = self.dim;
         let plane = rows * cols;
         let len = levels * plane;
-        let (Some(heights), Some(flags)) = (self.heights.get_mut(..len), self.flags.get_mut(..len))
-        else {
-            return;
-        };
+        // `fields_mut` made sure every buffer holds `dim`.
+        let (heights, flags) = (&mut self.heights[..len], &mut self.flags[..len]);
         heights.iter_mut().for_each(|v| *v = to_file_value(*v));
         flags.iter_mut().for_each(|v| *v = u8::from(*v != 0));
         for (v, f) in &mut self.thickness {
-            v.iter_mut()
-                .take(plane)
-                .for_each(|x| *x = to_file_value(*x));
-            f.iter_mut()
-                .take(plane)
-                .for_each(|x| *x = u8::from(*x != 0));
+            v[..plane].iter_mut().for_each(|x| *x = to_file_value(*x));
+            f[..plane].iter_mut().for_each(|x| *x = u8::from(*x != 0));
         }
         if reverse {
             crate::ingest::reverse_levels_in_place(heights, levels, plane);

@@ -848,7 +848,8 @@ impl<'f> StepwiseField<'f> {
     /// Reads latitude rows `rows` of step (`member`, `time`) into `out`, `[level, row, lon]`
     /// in the file's level order, as stored: [`StepwiseField::band_decoding`] makes them the
     /// values [`StepwiseField::read_step`] gives, on any thread. `out` has exactly the band's
-    /// length. Bands narrower than a step only where [`StepwiseField::reads_bands`].
+    /// length. Bands narrower than a step only where [`StepwiseField::reads_bands`] (the
+    /// caller asks once: it is a library call).
     pub(crate) fn read_rows_raw(
         &self,
         file: &str,
@@ -857,8 +858,7 @@ impl<'f> StepwiseField<'f> {
         out: &mut [f32],
     ) -> Result<(), IngestError> {
         let [_, _, z, y, x] = self.shape;
-        let whole = rows == (0..y);
-        if rows.end > y || out.len() != z * rows.len() * x || !(whole || self.reads_bands(file)?) {
+        if rows.end > y || out.len() != z * rows.len() * x {
             return Err(IngestError::Read {
                 file: file.to_string(),
                 variable: self.var.name(),

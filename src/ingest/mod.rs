@@ -363,15 +363,9 @@ where
         let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
         let mut cycle = reader.read(path)?;
         let planned = reader.take_stepwise();
-        let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
-        let fields = Stepwise {
-            file: label_ref,
-            temperature: plan_of(reader::Bulk::Temperature),
-            humidity: plan_of(reader::Bulk::Humidity),
-        };
+        let fields = Stepwise::of(label_ref, &planned);
         let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
-        let complete =
-            fields.temperature.is_some() && (cycle.humidity.is_none() || fields.humidity.is_some());
+        let complete = fields.complete(&cycle);
         let state = if complete { prepare(&cycle) } else { None };
         *t_ref = std::mem::take(&mut cycle.temperature);
         *q_ref = cycle
@@ -467,6 +461,20 @@ impl BandReader<'_, '_> {
         q: Option<&mut [f32]>,
     ) -> Result<(), IngestError> {
         let file = self.fields.file;
+        if !self.bands && rows != (0..self.dim.3) {
+            return Err(IngestError::Read {
+                file: file.to_string(),
+                variable: self
+                    .fields
+                    .temperature
+                    .map(|p| p.name())
+                    .unwrap_or_default(),
+                detail: format!(
+                    "rows {}..{}: stored in chunks, read in whole steps only",
+                    rows.start, rows.end
+                ),
+            });
+        }
         if let Some(plan) = self.fields.temperature {
             plan.read_rows_raw(file, step, rows.clone(), t)?;
         }
@@ -593,15 +601,8 @@ pub fn read_cycle_in_bands<R>(
     let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
     let cycle = reader.read(path)?;
     let planned = reader.take_stepwise();
-    let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
-    let fields = Stepwise {
-        file: &label,
-        temperature: plan_of(reader::Bulk::Temperature),
-        humidity: plan_of(reader::Bulk::Humidity),
-    };
-    let complete =
-        fields.temperature.is_some() && (cycle.humidity.is_none() || fields.humidity.is_some());
-    if !complete {
+    let fields = Stepwise::of(&label, &planned);
+    if !fields.complete(&cycle) {
         return Ok(None);
     }
     let mut bands = true;
@@ -656,6 +657,23 @@ struct Stepwise<'p, 'f> {
     file: &'p str,
     temperature: Option<&'p field::StepwiseField<'f>>,
     humidity: Option<&'p field::StepwiseField<'f>>,
+}
+
+impl<'p, 'f> Stepwise<'p, 'f> {
+    /// The temperature and humidity among the fields `planned` for stepwise reading.
+    fn of(file: &'p str, planned: &'p [(reader::Bulk, field::StepwiseField<'f>)]) -> Self {
+        let plan_of = |want: reader::Bulk| planned.iter().find(|(b, _)| *b == want).map(|(_, f)| f);
+        Self {
+            file,
+            temperature: plan_of(reader::Bulk::Temperature),
+            humidity: plan_of(reader::Bulk::Humidity),
+        }
+    }
+
+    /// Whether every large field of `cycle` can be read step by step.
+    fn complete(&self, cycle: &Cycle) -> bool {
+        self.temperature.is_some() && (cycle.humidity.is_none() || self.humidity.is_some())
+    }
 }
 
 impl Stepwise<'_, '_> {
