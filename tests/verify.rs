@@ -340,20 +340,11 @@ fn gfs_2p5deg_consistency_per_level_and_region() {
         }
         // The same points unweighted, as the project measured them (rms 0.7-1.7 m).
         let k = lc_level(&lc, hpa);
-        let ours = lc
-            .heights
-            .ready(0, 0)
-            .unwrap()
-            .geopotential_height
-            .slice(s![k, .., ..]);
+        let step = lc.heights.ready(0, 0).unwrap();
+        let ours = step.geopotential_height.slice(s![k, .., ..]);
         let theirs = lc.cycle.file_heights.as_ref().expect("file heights");
         let theirs = theirs.slice(s![0, 0, k, .., ..]);
-        let below = lc
-            .heights
-            .ready(0, 0)
-            .unwrap()
-            .below_ground
-            .slice(s![k, .., ..]);
+        let below = step.below_ground.slice(s![k, .., ..]);
         let (mut f, mut t) = (Vec::new(), Vec::new());
         for ((&a, &b), &g) in ours.iter().zip(theirs.iter()).zip(below.iter()) {
             if g == 0 {
