@@ -5,6 +5,11 @@
 //! Run with `cargo bench --bench compute`. The synthetic file is generated once into
 //! `target/bench-data/`. The peak resident memory of the child processes is printed at the
 //! end (getrusage, RUSAGE_CHILDREN), with the bytes of input fields and output for scale.
+//!
+//! `cargo test --benches` (no `--bench` argument: criterion's test mode, CI's smoke run)
+//! runs every bench once on a 2° grid of the same layout instead, so that the smoke run
+//! writes a few megabytes rather than the 0.5° files' 600 MB. `cargo bench -- --test` keeps
+//! the 0.5° grid (`compare.sh` uses it to write its input).
 
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -20,13 +25,36 @@ use hypsogrid::model::Layer;
 use hypsogrid::output::{write_heights, OutputOptions};
 use hypsogrid::query::LoadedCycle;
 
-const ROWS: usize = 361;
-const COLS: usize = 720;
 const LEVELS: usize = 37;
 
+/// The grid the benches run on: 0.5° when run by `cargo bench`, 2° in the smoke run.
+struct Grid {
+    rows: usize,
+    cols: usize,
+    /// Where the synthetic files and outputs go, under `target/`.
+    dir: &'static str,
+}
+
+fn grid() -> Grid {
+    // `cargo bench` passes `--bench`; `cargo test --benches` does not.
+    if std::env::args().any(|a| a == "--bench") {
+        Grid {
+            rows: 361,
+            cols: 720,
+            dir: "target/bench-data",
+        }
+    } else {
+        Grid {
+            rows: 91,
+            cols: 180,
+            dir: "target/bench-data/smoke",
+        }
+    }
+}
+
 fn bench_dir() -> PathBuf {
-    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("target/bench-data");
-    std::fs::create_dir_all(&dir).expect("creating target/bench-data");
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join(grid().dir);
+    std::fs::create_dir_all(&dir).expect("creating the bench data folder");
     dir
 }
 
@@ -37,14 +65,23 @@ fn input(name: &str, deflate_level: Option<i32>) -> PathBuf {
 fn input_with_steps(name: &str, deflate_level: Option<i32>, times: usize) -> PathBuf {
     let path = bench_dir().join(name);
     if !path.exists() {
+        let grid = grid();
         let spec = SyntheticGlobal {
-            rows: ROWS,
-            cols: COLS,
+            rows: grid.rows,
+            cols: grid.cols,
             levels: LEVELS,
             times,
             deflate_level,
         };
-        write_synthetic_global(&path, &spec).expect("writing the synthetic global cycle");
+        // Written aside and renamed once complete: a write that fails (a full disk, say)
+        // leaves no partial file for the next run to take as the input.
+        let partial = path.with_extension("nc.partial");
+        fresh(&partial);
+        if let Err(e) = write_synthetic_global(&partial, &spec) {
+            fresh(&partial);
+            panic!("writing the synthetic global cycle {}: {e}", path.display());
+        }
+        std::fs::rename(&partial, &path).expect("renaming the synthetic cycle into place");
     }
     path
 }
@@ -114,7 +151,9 @@ fn whole_process(c: &mut Criterion) {
         });
     }
     group.finish();
-    let field_bytes = (ROWS * COLS * LEVELS * 4) as f64;
+    fresh(&out);
+    let grid = grid();
+    let field_bytes = (grid.rows * grid.cols * LEVELS * 4) as f64;
     eprintln!(
         "peak resident memory of a compute process: {:.0} MB (input T and q: {:.0} MB, output heights: {:.0} MB)",
         peak_child_rss_bytes() as f64 / 1e6,
@@ -205,6 +244,9 @@ fn parts(c: &mut Criterion) {
         )
     });
     group.finish();
+    // The outputs are not read again: no need to keep them on disk.
+    fresh(&banded);
+    fresh(&out);
 }
 
 /// Time steps of the multi-step cycle.
