@@ -85,6 +85,8 @@ pub struct BatchReport {
 /// Reads the cycle in `input`, computes heights on every level and the thickness of every
 /// layer of `config`, and writes them to `output` (atomically: see [`write_heights`]).
 /// `progress` is called after each (member, time) step with the number done and the total.
+/// It is called while this function holds the NetCDF session ([`crate::netcdf_session`]):
+/// it must not open a NetCDF file itself (it would wait for itself).
 ///
 /// The output is the same, value for value, as [`read_and_compute`] followed by
 /// [`write_heights`]; see the module documentation for how it is made.

@@ -22,7 +22,7 @@
 //! | `hypsogrid_newest_cycle_reference_age_seconds` | gauge | |
 //! | `hypsogrid_newest_cycle_load_age_seconds` | gauge | |
 //! | `hypsogrid_cycle_memory_bytes` | gauge | |
-//! | `hypsogrid_cycle_steps_without_heights` | gauge | |
+//! | `hypsogrid_cycle_steps_without_heights` | gauge | `state` (`computing`, `failed`) |
 //! | `hypsogrid_failed_files` | gauge | |
 //! | `hypsogrid_cycle_load_failures_total` | counter | |
 //! | `hypsogrid_cycle_evictions_total` | counter | |
@@ -387,18 +387,23 @@ impl Recorder {
             "Bytes held by the fields and heights of the cycles being served (what the memory budget counts).",
             Some(snapshot.bytes() as f64),
         );
-        gauge(
+        family(
             &mut out,
             "hypsogrid_cycle_steps_without_heights",
-            "(member, time) steps of the cycles being served whose heights are not stored: computing (for tens of milliseconds after a cycle is listed), or failed if this stays above 0.",
-            Some(
-                snapshot
-                    .cycles
-                    .iter()
-                    .map(|c| c.heights.steps() - c.heights.ready_steps())
-                    .sum::<usize>() as f64,
-            ),
+            "gauge",
+            "(member, time) steps of the cycles being served whose heights are not stored, by state: computing (for tens of milliseconds after a cycle is listed) or failed (never to be stored: queries on them fail; see the log).",
         );
+        let (failed, computing) = snapshot.cycles.iter().fold((0, 0), |(f, c), cycle| {
+            let failed = cycle.heights.failed_steps();
+            let without = cycle.heights.steps() - cycle.heights.ready_steps();
+            (f + failed, c + without - failed)
+        });
+        for (state, n) in [("computing", computing), ("failed", failed)] {
+            let _ = writeln!(
+                out,
+                "hypsogrid_cycle_steps_without_heights{{state=\"{state}\"}} {n}"
+            );
+        }
         gauge(
             &mut out,
             "hypsogrid_failed_files",

@@ -130,6 +130,14 @@ impl ServedHeights {
             .count()
     }
 
+    /// Number of steps whose heights will never be in: their computation failed or stopped.
+    pub fn failed_steps(&self) -> usize {
+        self.steps
+            .iter()
+            .filter(|c| matches!(c.get(), Some(Err(_))))
+            .count()
+    }
+
     /// The (member, time) steps still pending, in file order.
     pub fn pending_steps(&self) -> Vec<(usize, usize)> {
         let times = self.times.max(1);

@@ -273,6 +273,11 @@ impl Page {
         .unwrap_or_else(|| panic!("no latency count for {method}"))
     }
 
+    fn steps_without_heights(&self, state: &str) -> f64 {
+        self.value("hypsogrid_cycle_steps_without_heights", &[("state", state)])
+            .unwrap_or_else(|| panic!("no steps without heights in state {state}"))
+    }
+
     fn scalar(&self, name: &str) -> f64 {
         self.value(name, &[])
             .unwrap_or_else(|| panic!("no sample {name}"))
@@ -416,11 +421,13 @@ async fn the_metrics_page_counts_calls_store_changes_and_is_well_formed() {
     assert_eq!(before.scalar("hypsogrid_cycles_loaded"), 1.0);
     assert_eq!(before.scalar("hypsogrid_cycle_load_failures_total"), 1.0);
     assert_eq!(before.scalar("hypsogrid_failed_files"), 1.0);
-    assert_eq!(
-        before.scalar("hypsogrid_cycle_steps_without_heights"),
-        0.0,
-        "the watcher computed every step"
-    );
+    for state in ["computing", "failed"] {
+        assert_eq!(
+            before.steps_without_heights(state),
+            0.0,
+            "the watcher computed every step ({state})"
+        );
+    }
     assert_eq!(before.scalar("hypsogrid_cycle_evictions_total"), 0.0);
     assert_eq!(
         before.scalar("hypsogrid_cycle_memory_bytes"),
@@ -702,18 +709,21 @@ async fn serve_metrics_listen_serves_the_page_of_the_running_server() {
     assert_eq!(status.code(), Some(0));
 }
 
-/// A cycle listed before its heights are in counts its pending steps, until they are in.
+/// A cycle listed before its heights are in counts its pending steps as computing, until
+/// they are in; steps whose computation failed count as failed, apart.
 #[test]
 fn steps_without_heights_are_counted_until_they_are_computed() {
     let dir = tempfile::tempdir().unwrap();
     let path = write_demo_cycle(dir.path()).unwrap();
-    let read = LoadedCycle::read(&path, &IngestConfig::default(), &ComputeConfig::default())
-        .expect("demo");
-    let steps = read.heights.steps();
-    let pending = read.heights.pending_steps().len();
+    let read = |path: &std::path::Path| {
+        LoadedCycle::read(path, &IngestConfig::default(), &ComputeConfig::default()).expect("demo")
+    };
+    let first = read(&path);
+    let steps = first.heights.steps();
+    let pending = first.heights.pending_steps().len();
     assert!(pending >= 1 && pending <= steps);
     let store = CycleStore::new(StoreConfig::default());
-    let served = store.insert(read);
+    let served = store.insert(first);
     let recorder = Recorder::new();
     let page =
         |store: &CycleStore| parse_page(&recorder.render(&store.snapshot(), SystemTime::now()));
@@ -722,13 +732,26 @@ fn steps_without_heights_are_counted_until_they_are_computed() {
         before.types["hypsogrid_cycle_steps_without_heights"],
         "gauge"
     );
-    assert_eq!(
-        before.scalar("hypsogrid_cycle_steps_without_heights"),
-        pending as f64
-    );
+    assert_eq!(before.steps_without_heights("computing"), pending as f64);
+    assert_eq!(before.steps_without_heights("failed"), 0.0);
     served.finish_heights();
+    let after = page(&store);
+    assert_eq!(after.steps_without_heights("computing"), 0.0);
+    assert_eq!(after.steps_without_heights("failed"), 0.0);
+
+    // A second cycle (the same file under another name) whose pending steps fail: they
+    // leave "computing" for "failed", and the first cycle's steps count in neither.
+    let second_path = dir.path().join("second.nc");
+    std::fs::copy(&path, &second_path).unwrap();
+    let second = read(&second_path);
+    let second_pending = second.heights.pending_steps().len();
+    assert!(second_pending >= 1);
+    second.heights.fail_pending("an injected failure");
+    store.insert(second);
+    let failed = page(&store);
+    assert_eq!(failed.steps_without_heights("computing"), 0.0);
     assert_eq!(
-        page(&store).scalar("hypsogrid_cycle_steps_without_heights"),
-        0.0
+        failed.steps_without_heights("failed"),
+        second_pending as f64
     );
 }
