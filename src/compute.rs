@@ -436,7 +436,9 @@ fn compute_while_reading(
         return;
     };
     let total = members * times;
-    let pool = (total > 1).then(background_pool).flatten();
+    let pool = (total > 1)
+        .then(|| background_pool(rayon::current_num_threads()))
+        .flatten();
     let mut done = 0;
     // While no step is ready (above all while the first is read), fault in the output
     // pages of the steps not yet computed: work the kernel would otherwise do at its first
@@ -464,9 +466,10 @@ fn compute_while_reading(
     }
 }
 
-/// Threads for the kernel while later steps of a cycle are still being read: as many as
-/// rayon's own, each at a lower scheduling priority (nice +10 on Linux) than the thread that
-/// reads.
+/// `threads` threads (at least one) for the kernel while later steps of a cycle are still
+/// being read, each at a lower scheduling priority (nice +10 on Linux) than the thread that
+/// reads: as many as rayon's own for the serving read, one fewer for the batch (see
+/// [`crate::batch::compute_file`]).
 ///
 /// The file is read by one thread at a time (the NetCDF library is serialised), so the read
 /// is the critical path of [`read_for_serving`] (and the reading and writing thread that of
@@ -479,9 +482,9 @@ fn compute_while_reading(
 /// computed. The last step, with nothing left to read, runs on the global pool (a one-step
 /// cycle never builds this one). `None` (the global pool is used) where the pool cannot be
 /// built.
-pub(crate) fn background_pool() -> Option<rayon::ThreadPool> {
+pub(crate) fn background_pool(threads: usize) -> Option<rayon::ThreadPool> {
     rayon::ThreadPoolBuilder::new()
-        .num_threads(rayon::current_num_threads())
+        .num_threads(threads.max(1))
         .thread_name(|i| format!("hypsogrid-load-{i}"))
         .start_handler(|_| lower_this_threads_priority())
         .build()
