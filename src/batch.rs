@@ -77,8 +77,9 @@ pub struct BatchReport {
     pub notes: Vec<String>,
     /// (member, time) steps written.
     pub steps: usize,
-    /// Latitude rows per band where the cycle went through band by band; `None` where it was
-    /// read whole, computed and written.
+    /// Latitude rows of the widest band where the cycle went through band by band (the
+    /// bands of a step are as even as can be; asked for a number of rows, every band but the
+    /// last has that many); `None` where it was read whole, computed and written.
     pub band_rows: Option<usize>,
 }
 
@@ -160,6 +161,25 @@ fn rows_per_band(levels: usize, rows: usize, cols: usize) -> usize {
     (BAND_BYTES / (4 * levels * cols).max(1)).clamp(1, rows.max(1))
 }
 
+/// Rows enough that a level's rows of `f32` (one write per level and variable) are more than
+/// the 64 KiB that the HDF5 library would otherwise read back and write again through its
+/// sieve buffer (bands of [`rows_per_band`] are, up to 64 levels).
+fn rows_past_sieve(cols: usize) -> usize {
+    (64 << 10) / (4 * cols).max(1) + 1
+}
+
+/// `rows` rows in bands of about `band_rows` rows each and at least `least` (all of them if
+/// fewer), as even as can be: a short last band would fall below the size that keeps a
+/// level's rows past the HDF5 sieve buffer (361 rows in bands of 39 left 10 rows, read back
+/// and written again level by level).
+fn even_bands(rows: usize, band_rows: usize, least: usize) -> Vec<Range<usize>> {
+    let about = (rows + band_rows.max(1) / 2) / band_rows.max(1);
+    let count = about.min(rows / least.max(1)).max(1);
+    (0..count)
+        .map(|i| i * rows / count..(i + 1) * rows / count)
+        .collect()
+}
+
 /// One cycle going through band by band.
 struct BandJob<'a> {
     shell: &'a Cycle,
@@ -220,14 +240,22 @@ impl BandJob<'_> {
         // Compressed output is chunked by whole latitude-longitude planes, which a band
         // would leave half-written in the library's chunk cache: whole steps then, as for
         // chunked input.
-        let band_rows = if bands.reads_bands() && options.deflate_level.is_none() {
+        let bounds: Vec<Range<usize>> = if bands.reads_bands() && options.deflate_level.is_none() {
             match self.band_rows {
-                Some(n) => n.clamp(1, rows.max(1)),
-                None => rows_per_band(levels, rows, cols),
+                Some(n) => {
+                    let n = n.clamp(1, rows.max(1));
+                    (0..rows).step_by(n).map(|r| r..(r + n).min(rows)).collect()
+                }
+                None => even_bands(
+                    rows,
+                    rows_per_band(levels, rows, cols),
+                    rows_past_sieve(cols),
+                ),
             }
         } else {
-            rows.max(1)
+            std::iter::once(0..rows).collect()
         };
+        let band_rows = bounds.iter().map(Range::len).max().unwrap_or(0).max(1);
         let about = HeightsAbout {
             method: self.method,
             constants: &self.shell.constants,
@@ -239,9 +267,9 @@ impl BandJob<'_> {
         let places: Vec<Place> = (0..members)
             .flat_map(|m| (0..times).map(move |t| (m, t)))
             .flat_map(|step| {
-                (0..rows).step_by(band_rows).map(move |r| Place {
+                bounds.iter().map(move |rows| Place {
                     step,
-                    rows: r..(r + band_rows).min(rows),
+                    rows: rows.clone(),
                 })
             })
             .collect();
@@ -421,5 +449,42 @@ fn worker_gone(shell: &Cycle) -> BatchError {
     BatchError::Band {
         file: shell.source.display().to_string(),
         detail: "the computing thread stopped".into(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Bands cover every row once, in order, and none is shorter than `least` where the
+    /// grid has that many rows.
+    #[test]
+    fn even_bands_cover_the_rows_with_none_short() {
+        for rows in [1, 2, 10, 91, 181, 361, 721, 1000] {
+            for band_rows in [1, 7, 39, 40, 93, 500, 2000] {
+                for least in [1, 23, 46, 65] {
+                    let bands = even_bands(rows, band_rows, least);
+                    let mut next = 0;
+                    for band in &bands {
+                        assert_eq!(band.start, next, "{rows} {band_rows} {least}");
+                        assert!(!band.is_empty());
+                        if rows >= least {
+                            assert!(band.len() >= least, "{rows} {band_rows} {least}: {band:?}");
+                        }
+                        next = band.end;
+                    }
+                    assert_eq!(next, rows);
+                    let (short, long) = bands.iter().fold((usize::MAX, 0), |(s, l), b| {
+                        (s.min(b.len()), l.max(b.len()))
+                    });
+                    assert!(long - short <= 1, "{rows} {band_rows} {least}: uneven");
+                }
+            }
+        }
+        // The 0.5° grid: 361 rows, bands of about 39 (4 MiB a field on 37 levels), runs past
+        // 64 KiB from 23 rows: nine bands of 40 or 41 rows, no short last band.
+        let half_degree = even_bands(361, rows_per_band(37, 361, 720), rows_past_sieve(720));
+        assert_eq!(half_degree.len(), 9);
+        assert!(half_degree.iter().all(|b| (40..=41).contains(&b.len())));
     }
 }

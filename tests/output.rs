@@ -737,3 +737,131 @@ fn the_band_writer_refuses_missing_rows_and_writes_what_write_heights_writes() {
         assert_eq!(read(&a), read(&b), "{name}");
     }
 }
+
+/// Flags go to the file in runs of rows longer than the 64 KiB the HDF5 library would
+/// otherwise read back and write again (its sieve buffer): the band writer keeps them until
+/// then. On a grid wide enough for that to happen within a step (1,100 longitudes: 60 rows
+/// make a run), bands in order and bands in reverse, every flag and value lands where
+/// `write_heights` puts it.
+#[test]
+fn the_band_writer_keeps_flags_for_longer_runs_and_loses_none() {
+    const WIDE: usize = 1_100;
+    const TALL: usize = 150;
+    const BAND: usize = 10;
+    let dir = tempfile::tempdir().unwrap();
+    let mut cycle = cycle(1, Some("2030-01-15T00:00:00Z"));
+    cycle.grid = Grid {
+        latitudes: (0..TALL).map(|r| 60.0 - 0.25 * r as f64).collect(),
+        longitudes: (0..WIDE).map(|c| 0.25 * c as f64).collect(),
+    };
+    cycle.temperature = Array5::zeros((1, TIMES, 3, TALL, WIDE));
+    let layers = layers();
+    // A flag pattern that changes with every index, so that a run put in the wrong place
+    // or a run lost shows.
+    let flag = |t: usize, k: usize, r: usize, c: usize| u8::from((r * 7 + c * 3 + k + t) % 5 == 0);
+    let heights = Heights {
+        geopotential_height: Array5::from_shape_fn((1, TIMES, 3, TALL, WIDE), |(_, t, k, r, c)| {
+            USSA_HEIGHTS[k] + 0.01 * t as f32 + 0.001 * (r % 10) as f32 + 0.0001 * (c % 10) as f32
+        }),
+        below_ground: Array5::from_shape_fn((1, TIMES, 3, TALL, WIDE), |(_, t, k, r, c)| {
+            flag(t, k, r, c)
+        }),
+        thickness: layers
+            .iter()
+            .enumerate()
+            .map(|(i, &layer)| LayerThickness {
+                layer,
+                values: Array4::from_shape_fn((1, TIMES, TALL, WIDE), |(_, t, r, c)| {
+                    5000.0 + (i + t) as f32 + 0.001 * (r % 10) as f32 + 0.0001 * (c % 10) as f32
+                }),
+                below_ground: Array4::from_shape_fn((1, TIMES, TALL, WIDE), |(_, t, r, c)| {
+                    flag(t, 3 + i, r, c)
+                }),
+            })
+            .collect(),
+        constants: Constants::default(),
+        method: "hypsometric equation".into(),
+    };
+    let about = HeightsAbout {
+        method: &heights.method,
+        constants: &heights.constants,
+        layers: &layers,
+    };
+    let band = |t: usize, r0: usize| {
+        let mut rows = FileRows::new((3, BAND, WIDE), layers.len());
+        let fields = rows.fields_mut((3, BAND, WIDE)).expect("a band that fits");
+        for k in 0..3 {
+            for r in 0..BAND {
+                for c in 0..WIDE {
+                    let i = (k * BAND + r) * WIDE + c;
+                    fields.heights[i] = heights.geopotential_height[[0, t, k, r0 + r, c]];
+                    fields.flags[i] = heights.below_ground[[0, t, k, r0 + r, c]];
+                }
+            }
+        }
+        for (i, (v, f)) in fields.thickness.into_iter().enumerate() {
+            for r in 0..BAND {
+                for c in 0..WIDE {
+                    v[r * WIDE + c] = heights.thickness[i].values[[0, t, r0 + r, c]];
+                    f[r * WIDE + c] = heights.thickness[i].below_ground[[0, t, r0 + r, c]];
+                }
+            }
+        }
+        rows
+    };
+    let banded = dir.path().join("banded.nc");
+    {
+        let session = hypsogrid::netcdf_session::lock();
+        let mut writer =
+            HeightsWriter::create(&cycle, &about, &banded, &options("x"), &session).unwrap();
+        let starts: Vec<usize> = (0..TALL).step_by(BAND).collect();
+        // Step 0 in order (runs of 60 rows go at 60 and the last 90 at the end), then step 1
+        // in reverse (no band continues the one before).
+        let order = starts
+            .iter()
+            .map(|&r0| (0, r0))
+            .chain(starts.iter().rev().map(|&r0| (1, r0)));
+        for (t, r0) in order {
+            let mut rows = band(t, r0);
+            rows.to_file_form(writer.levels_reversed());
+            writer.put_rows((0, t), r0..r0 + BAND, &rows).unwrap();
+        }
+        writer.commit().unwrap();
+    }
+    let whole = dir.path().join("whole.nc");
+    write_heights(&cycle, &heights, &whole, &options("x")).unwrap();
+    let _session = hypsogrid::netcdf_session::lock();
+    let (a, b) = (
+        netcdf::open(&banded).unwrap(),
+        netcdf::open(&whole).unwrap(),
+    );
+    for name in [
+        "geopotential_height",
+        "thickness_1000_500",
+        "thickness_850_512p5",
+    ] {
+        let read = |f: &netcdf::File| -> Vec<u32> {
+            let v = f.variable(name).unwrap();
+            v.get_values::<f32, _>(..)
+                .unwrap()
+                .iter()
+                .map(|x| x.to_bits())
+                .collect()
+        };
+        assert_eq!(read(&a), read(&b), "{name}");
+    }
+    for name in [
+        "below_ground",
+        "thickness_1000_500_below_ground",
+        "thickness_850_512p5_below_ground",
+    ] {
+        let read = |f: &netcdf::File| f.variable(name).unwrap().get_values::<i8, _>(..).unwrap();
+        let (x, y) = (read(&a), read(&b));
+        assert_eq!(x.len(), y.len(), "{name}");
+        assert!(y.contains(&1) && y.contains(&0), "{name}");
+        assert!(
+            x == y,
+            "{name}: the banded flags differ from write_heights'"
+        );
+    }
+}
