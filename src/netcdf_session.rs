@@ -7,9 +7,27 @@
 //! code path that opens or creates a file therefore holds this lock for the whole life of the
 //! file handle: take the guard *before* opening, so that it is dropped after the file.
 
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Mutex, MutexGuard};
 
 static SESSION: Mutex<()> = Mutex::new(());
+
+/// Set once the process is stopping: see [`stop_reads`].
+static STOPPING: AtomicBool = AtomicBool::new(false);
+
+/// Asks every read of a cycle's fields in progress to stop before its next (member, time)
+/// step, and every later read to stop before its first, with
+/// [`crate::ingest::IngestError::Stopped`]. For a process that is stopping: a server that
+/// waits, before it exits, for the read holding this session (see `hypsogrid serve`) then
+/// waits for one step of a file rather than all of it. It cannot be undone.
+pub fn stop_reads() {
+    STOPPING.store(true, Ordering::Release);
+}
+
+/// Whether [`stop_reads`] was called.
+pub fn reads_stopped() -> bool {
+    STOPPING.load(Ordering::Acquire)
+}
 
 /// Waits for, and holds, the process-wide NetCDF session lock.
 ///

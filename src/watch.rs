@@ -330,6 +330,11 @@ async fn load_one(
             tracked.status = Status::Loaded;
             report.loaded.push(path.to_path_buf());
         }
+        Err(error) if crate::netcdf_session::reads_stopped() => {
+            // The process is stopping: the file is not at fault, and is read at the next start.
+            tracing::info!(file = %path.display(), %error, "cycle file not loaded: stopping");
+            report.waiting.push(path.to_path_buf());
+        }
         Err(error) => {
             tracing::warn!(file = %path.display(), %error, "cycle file failed to load");
             store.record_failure(path, error.clone());

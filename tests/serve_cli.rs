@@ -624,3 +624,64 @@ fn the_offices_guidance_settings_are_what_guidance_answers_start_from() {
         }
     }
 }
+
+/// SIGTERM during a long startup scan ends the process in order at once, not after the last
+/// file: a service manager's grace period is seconds, a full folder's scan may be minutes.
+/// Eight names for one four-step file (hard links, an hour old so that the scan loads them at
+/// first sight); SIGTERM once the first is loaded; the scan must not have gone on to the
+/// eighth, and the server never listened.
+#[test]
+fn sigterm_during_the_startup_scan_ends_it_without_the_files_left() {
+    let dir = tempfile::tempdir().unwrap();
+    let first = dir.path().join("cycle-0.nc");
+    let spec = hypsogrid::demo::SyntheticGlobal {
+        rows: 181,
+        cols: 360,
+        levels: 31,
+        times: 4,
+        deflate_level: None,
+    };
+    hypsogrid::demo::write_synthetic_global(&first, &spec).expect("synthetic cycle");
+    let an_hour_ago = std::time::SystemTime::now() - Duration::from_secs(3600);
+    std::fs::File::options()
+        .write(true)
+        .open(&first)
+        .unwrap()
+        .set_modified(an_hour_ago)
+        .unwrap();
+    const FILES: usize = 8;
+    for i in 1..FILES {
+        std::fs::hard_link(&first, dir.path().join(format!("cycle-{i}.nc"))).unwrap();
+    }
+    let data = dir.path().to_string_lossy().into_owned();
+    let server = Server::start_unready(&["--data", &data, "--listen", "127.0.0.1:0"], &[]);
+    server.wait_for_log("cycle loaded");
+    let log_so_far = server.log();
+    let (code, _) = server_terminate_keeping_log(server, |log| {
+        assert!(
+            log.contains("shutting down during the startup scan"),
+            "{log}\n(before SIGTERM:\n{log_so_far})"
+        );
+        let loaded = log.lines().filter(|l| l.contains("cycle loaded")).count();
+        assert!(
+            (1..FILES).contains(&loaded),
+            "{loaded} files loaded of {FILES}: the scan went on after SIGTERM\n{log}"
+        );
+        assert!(!log.contains("listening on"), "{log}");
+    });
+    assert_eq!(code, Some(0), "exit code after SIGTERM");
+}
+
+/// Sends SIGTERM, waits for the exit and hands the whole log (read after the exit) to
+/// `check`.
+fn server_terminate_keeping_log(
+    server: Server,
+    check: impl FnOnce(&str),
+) -> (Option<i32>, Duration) {
+    let log = std::sync::Arc::clone(server.stderr_lines());
+    let (code, took) = server.terminate();
+    // The last lines reach the reading thread shortly after the exit.
+    std::thread::sleep(Duration::from_millis(300));
+    check(&log.lock().unwrap().join("\n"));
+    (code, took)
+}

@@ -594,16 +594,32 @@ async fn serve(
         ),
         None => None,
     };
-    // Installed before the scan, so that a SIGTERM during a long scan still ends in an
-    // orderly stop (right after the scan) rather than the default abrupt exit, and a SIGHUP
-    // does not end the process (its default action).
+    // Installed before the scan, so that a SIGTERM during a long scan ends it in an orderly
+    // stop rather than the default abrupt exit, and a SIGHUP does not end the process (its
+    // default action).
     let signal = shutdown_signal()?;
+    tokio::pin!(signal);
     let reload = ReloadSignal::new();
     let hangups = forward_hangups(reload.clone())?;
     let store = Arc::new(CycleStore::new(settings.store_config()));
     let watch_config = settings.watch_config();
     let mut state = WatchState::new();
-    let report = scan_once(&store, &mut state, &watch_config, &ingest, &compute).await;
+    // A startup scan of a full folder may take minutes; a service manager that sends SIGTERM
+    // meanwhile expects an exit within its grace period, not after the last file.
+    let scan = scan_once(&store, &mut state, &watch_config, &ingest, &compute);
+    let report = tokio::select! {
+        report = scan => report,
+        name = &mut signal => {
+            hypsogrid::netcdf_session::stop_reads();
+            tracing::info!(
+                signal = name,
+                cycles_loaded = store.snapshot().cycles.len(),
+                "shutting down during the startup scan: the files not yet loaded are read at the next start"
+            );
+            hangups.abort();
+            return Ok(());
+        }
+    };
     tracing::info!(
         data = %settings.data.display(),
         loaded = report.loaded.len(),
@@ -677,8 +693,10 @@ async fn serve(
 
     let mut server = server;
     let served = tokio::select! {
-        name = signal => {
+        name = &mut signal => {
             tracing::info!(signal = name, "shutting down");
+            // A file being read stops at its next step: the exit waits for that read.
+            hypsogrid::netcdf_session::stop_reads();
             let _ = stop_tx.send(true);
             server.await
         }

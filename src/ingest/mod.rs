@@ -137,6 +137,19 @@ pub enum IngestError {
         /// The value, where it is, and what probably went wrong.
         found: Box<Implausibility>,
     },
+    /// The process is stopping ([`crate::netcdf_session::stop_reads`]): the read stopped
+    /// before a step of the file.
+    #[error(
+        "reading '{file}' stopped at member {member}, time step {time}: the process is stopping"
+    )]
+    Stopped {
+        /// The file.
+        file: String,
+        /// The member about to be read.
+        member: usize,
+        /// The time step about to be read.
+        time: usize,
+    },
     /// A field in which no value is present: every point is a fill value, a `missing_value`
     /// or outside the valid range. Served, it would be a cycle of missing heights that
     /// displaces a good one as the newest.
@@ -699,6 +712,13 @@ impl Stepwise<'_, '_> {
             let (member, time) = (i / times.max(1), i % times.max(1));
             if member >= members {
                 break;
+            }
+            if crate::netcdf_session::reads_stopped() {
+                return Err(IngestError::Stopped {
+                    file: self.file.to_string(),
+                    member,
+                    time,
+                });
             }
             if let Some(plan) = self.temperature {
                 plan.read_step(self.file, member, time, t_step)?;

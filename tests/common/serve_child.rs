@@ -26,6 +26,42 @@ impl ServeChild {
     /// HYPSOGRID_ALLOW_INSECURE_REMOTE is removed, so that only the test decides) and waits for
     /// its "listening on" line.
     pub fn start(args: &[&str], env: &[(&str, &str)]) -> ServeChild {
+        let (mut child, lines, listening) = Self::spawn(args, env);
+        let address = match listening.recv_timeout(Duration::from_secs(60)) {
+            Ok(a) => a,
+            Err(_) => {
+                let _ = child.kill();
+                panic!(
+                    "the server printed no 'listening on' line:\n{}",
+                    lines.lock().unwrap().join("\n")
+                );
+            }
+        };
+        ServeChild {
+            child,
+            address,
+            stderr: lines,
+        }
+    }
+
+    /// Starts `hypsogrid serve ARGS` as [`ServeChild::start`] does, without waiting for
+    /// anything: `address` stays empty (the server may stop before it listens).
+    pub fn start_unready(args: &[&str], env: &[(&str, &str)]) -> ServeChild {
+        let (child, lines, _) = Self::spawn(args, env);
+        ServeChild {
+            child,
+            address: String::new(),
+            stderr: lines,
+        }
+    }
+
+    /// The child, its stderr lines as they come, and the address of its "listening on" line
+    /// when it comes.
+    #[allow(clippy::type_complexity)]
+    fn spawn(
+        args: &[&str],
+        env: &[(&str, &str)],
+    ) -> (Child, Arc<Mutex<Vec<String>>>, mpsc::Receiver<String>) {
         let mut cmd = Command::new(BIN);
         cmd.arg("serve")
             .args(args)
@@ -48,20 +84,19 @@ impl ServeChild {
                 keep.lock().unwrap().push(line);
             }
         });
-        let address = match rx.recv_timeout(Duration::from_secs(60)) {
-            Ok(a) => a,
-            Err(_) => {
-                let _ = child.kill();
-                panic!(
-                    "the server printed no 'listening on' line:\n{}",
-                    lines.lock().unwrap().join("\n")
-                );
-            }
-        };
-        ServeChild {
-            child,
-            address,
-            stderr: lines,
+        (child, lines, rx)
+    }
+
+    /// Waits (at most 60 s) until a line of its log contains `text`.
+    pub fn wait_for_log(&self, text: &str) {
+        let deadline = Instant::now() + Duration::from_secs(60);
+        while !self.stderr.lock().unwrap().iter().any(|l| l.contains(text)) {
+            assert!(
+                Instant::now() < deadline,
+                "no log line with '{text}':\n{}",
+                self.log()
+            );
+            std::thread::sleep(Duration::from_millis(20));
         }
     }
 
@@ -77,6 +112,11 @@ impl ServeChild {
             .next()
             .and_then(|p| p.parse().ok())
             .unwrap_or_else(|| panic!("no port in '{}'", self.address))
+    }
+
+    /// Its stderr lines, shared with the thread that reads them (they outlive the child).
+    pub fn stderr_lines(&self) -> &Arc<Mutex<Vec<String>>> {
+        &self.stderr
     }
 
     /// Everything it has written to stderr so far.
