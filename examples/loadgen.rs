@@ -901,8 +901,8 @@ async fn run(args: Args) -> anyhow::Result<bool> {
 }
 
 fn main() -> ExitCode {
-    // The NetCDF library's set-up on the main thread, before any other thread (the served
-    // cycle is read on a worker): see `hypsogrid::netcdf_session::initialize`.
+    // The NetCDF library's set-up now, on a thread of its own that stays (the served cycle
+    // is read on a worker): see `hypsogrid::netcdf_session::initialize`.
     let _ = hypsogrid::netcdf_session::initialize();
     let args = Args::parse();
     let runtime = match tokio::runtime::Builder::new_multi_thread()

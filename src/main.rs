@@ -18,8 +18,9 @@ fn main() -> ExitCode {
     if std::env::var_os("HDF5_USE_FILE_LOCKING").is_none() {
         std::env::set_var("HDF5_USE_FILE_LOCKING", "FALSE");
     }
-    // Before any thread exists too: see `netcdf_session::initialize`. A failure here would
-    // come back, with the file's name, from the first file operation.
+    // The NetCDF library's set-up, on a thread of its own that stays (see
+    // `netcdf_session::initialize`), now rather than in the first file's time. A failure
+    // here would come back, with the file's name, from the first file operation.
     let _ = hypsogrid::netcdf_session::initialize();
     let args = cli::Cli::parse();
     match cli::run(args) {

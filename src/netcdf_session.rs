@@ -8,7 +8,7 @@
 //! file handle: take the guard *before* opening, so that it is dropped after the file.
 
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Mutex, MutexGuard};
+use std::sync::{Mutex, MutexGuard, OnceLock};
 
 static SESSION: Mutex<()> = Mutex::new(());
 
@@ -29,11 +29,13 @@ pub fn reads_stopped() -> bool {
     STOPPING.load(Ordering::Acquire)
 }
 
-/// Waits for, and holds, the process-wide NetCDF session lock.
+/// Waits for, and holds, the process-wide NetCDF session lock. The library's one-time set-up
+/// ([`initialize`]) runs before the first lock is given.
 ///
 /// A panic while the lock was held leaves nothing to repair (the file handle is closed on
 /// unwinding), so a poisoned lock is simply taken over.
 pub fn lock() -> MutexGuard<'static, ()> {
+    set_up();
     SESSION
         .lock()
         .unwrap_or_else(|poisoned| poisoned.into_inner())
@@ -44,8 +46,8 @@ extern "C" {
     fn nc_initialize() -> std::os::raw::c_int;
 }
 
-/// Runs the NetCDF-C library's one-time set-up now, on the calling thread: call it from the
-/// main thread before any other thread starts.
+/// Runs the NetCDF-C library's one-time set-up now (it runs anyway before the first
+/// [`lock`]; an early call only moves it out of the first file's time).
 ///
 /// The set-up runs at the library's first call, and Debian's build of it then initialises
 /// libcurl and through it OpenSSL, which keeps state for the thread that did it. When that
@@ -55,20 +57,72 @@ extern "C" {
 /// corruption (SIGABRT or SIGSEGV after SIGTERM: one run in 25, then one in 72, of
 /// `tests/serve_cli.rs`, which stops five servers a run; the core showed the main thread in
 /// `OPENSSL_cleanup` under `exit` and an exiting worker in OpenSSL's thread-local
-/// destructor). Set up from the main thread, whose thread-local
-/// destructors do not run at exit, no worker holds such state.
+/// destructor). The set-up therefore runs on a thread of its own, `netcdf-setup`, which then
+/// sleeps for the life of the process: its thread-local destructors never run, whichever
+/// thread asked first (a test's thread, a worker) and whenever that thread ends. (Until
+/// then the server's main thread did the set-up before starting others; test binaries, whose
+/// first file is opened on a test's thread, had no such guard.)
 ///
 /// # Errors
 /// The library's status code when the set-up fails (the first file operation would then
 /// report the same failure).
 pub fn initialize() -> Result<(), i32> {
-    let _session = lock();
-    // SAFETY: a plain call without arguments, under the session lock like every other
-    // call into the library; it is idempotent.
-    let status = unsafe { nc_initialize() };
-    if status == 0 {
-        Ok(())
-    } else {
-        Err(status)
+    match set_up() {
+        0 => Ok(()),
+        status => Err(status),
+    }
+}
+
+/// The set-up's status, once it has run.
+static SET_UP: OnceLock<i32> = OnceLock::new();
+
+/// Runs the set-up once, on the `netcdf-setup` thread (on the calling thread if no thread
+/// can be started), and returns its status. Every caller waits until it is done; no call
+/// into the library can come before, since each takes [`lock`] first.
+fn set_up() -> i32 {
+    *SET_UP.get_or_init(|| {
+        let (done_tx, done_rx) = std::sync::mpsc::channel();
+        let started = std::thread::Builder::new()
+            .name("netcdf-setup".into())
+            .stack_size(256 << 10)
+            .spawn(move || {
+                // SAFETY: a plain call without arguments; no other call into the library
+                // runs meanwhile (every caller waits in `get_or_init`).
+                let status = unsafe { nc_initialize() };
+                let _ = done_tx.send(status);
+                // Never ends, so that the state the set-up left with this thread is never
+                // torn down while the process exits.
+                loop {
+                    std::thread::park();
+                }
+            });
+        match started.ok().and_then(|_| done_rx.recv().ok()) {
+            Some(status) => status,
+            // SAFETY: as above, on this thread instead.
+            None => unsafe { nc_initialize() },
+        }
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The set-up runs once, on its own thread, which stays.
+    #[test]
+    fn the_set_up_runs_on_a_thread_that_stays() {
+        assert_eq!(initialize(), Ok(()));
+        drop(lock());
+        assert_eq!(initialize(), Ok(()));
+        let names: Vec<String> = std::fs::read_dir("/proc/self/task")
+            .expect("listing this process's threads")
+            .filter_map(|task| std::fs::read_to_string(task.ok()?.path().join("comm")).ok())
+            .map(|name| name.trim().to_string())
+            .collect();
+        assert_eq!(
+            names.iter().filter(|n| *n == "netcdf-setup").count(),
+            1,
+            "{names:?}"
+        );
     }
 }
