@@ -246,8 +246,8 @@ impl PendingSteps {
     }
 
     /// Computes every step of `heights` still pending (rows in parallel on a pool of its
-    /// own, see `heights_pool`) and sets it, in file order, so that a waiting query is
-    /// released step by step.
+    /// own, see `heights_pool`) and sets it, the steps queries are waiting for first, then
+    /// in file order, so that a waiting query is released as soon as its step is in.
     ///
     /// Should a step fail (it cannot once [`read_for_serving`] has accepted the cycle) or
     /// this thread panic, every step still pending is marked failed, so that nobody waits
@@ -269,7 +269,8 @@ impl PendingSteps {
 
     fn compute_pending(&mut self, cycle: &Cycle, config: &ComputeConfig, heights: &ServedHeights) {
         let (_, times, ..) = cycle.temperature.dim();
-        for (m, t) in heights.pending_steps() {
+        // The steps queries wait for first, then file order (`ServedHeights::next_pending`).
+        while let Some((m, t)) = heights.next_pending() {
             let buffer = self.buffers.get_mut(m * times + t).and_then(Option::take);
             let step = match &self.kernel {
                 Some(kernel) => kernel_step(kernel, cycle, (m, t), buffer)

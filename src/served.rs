@@ -39,8 +39,9 @@ pub struct ServedHeights {
     times: usize,
     steps: Vec<OnceLock<Result<StepHeights, String>>>,
     method: String,
-    /// Wakes those waiting for a step whenever one is set.
-    set_lock: Mutex<()>,
+    /// Guards the steps asked for while pending, oldest first (step indices); wakes those
+    /// waiting for a step whenever one is set.
+    set_lock: Mutex<Vec<usize>>,
     set_signal: Condvar,
 }
 
@@ -52,7 +53,7 @@ impl ServedHeights {
             times,
             steps: (0..members * times).map(|_| OnceLock::new()).collect(),
             method,
-            set_lock: Mutex::new(()),
+            set_lock: Mutex::new(Vec::new()),
             set_signal: Condvar::new(),
         }
     }
@@ -99,6 +100,11 @@ impl ServedHeights {
         // Checked under the lock, which every setter takes after setting: a step set before
         // the check is seen, one set after it wakes the wait.
         let mut held = self.lock();
+        // Asked for: computed before the steps nobody waits for (see `next_pending`).
+        let index = member * self.times + time;
+        if cell.get().is_none() && !held.contains(&index) {
+            held.push(index);
+        }
         loop {
             if let Some(result) = cell.get() {
                 return result.as_ref().map_err(|e| unavailable(e.clone()));
@@ -110,7 +116,7 @@ impl ServedHeights {
         }
     }
 
-    fn lock(&self) -> std::sync::MutexGuard<'_, ()> {
+    fn lock(&self) -> std::sync::MutexGuard<'_, Vec<usize>> {
         self.set_lock
             .lock()
             .unwrap_or_else(std::sync::PoisonError::into_inner)
@@ -136,6 +142,24 @@ impl ServedHeights {
             .iter()
             .filter(|c| matches!(c.get(), Some(Err(_))))
             .count()
+    }
+
+    /// The step to compute next: the one asked for longest ago ([`ServedHeights::wait`])
+    /// that is still pending, else the first pending in file order; `None` when none is.
+    /// A query that waits for the last step of a many-step cycle whose steps are computed
+    /// after the read (hybrid levels, on the column path) is then answered after one step's
+    /// computation rather than all of them.
+    pub fn next_pending(&self) -> Option<(usize, usize)> {
+        let times = self.times.max(1);
+        let pending = |i: &usize| self.steps.get(*i).is_some_and(|c| c.get().is_none());
+        let asked = {
+            let mut held = self.lock();
+            held.retain(pending);
+            held.first().copied()
+        };
+        asked
+            .or_else(|| (0..self.steps.len()).find(pending))
+            .map(|i| (i / times, i % times))
     }
 
     /// The (member, time) steps still pending, in file order.
@@ -230,6 +254,38 @@ mod tests {
         );
         assert!(h.wait(0, 3).is_err(), "time out of range");
         assert!(h.wait(2, 0).is_err(), "member out of range");
+    }
+
+    /// A step a query waits for is computed before the steps nobody has asked for, the
+    /// longest asked first; set or failed steps leave the queue.
+    #[test]
+    fn steps_asked_for_come_next() {
+        let h = ServedHeights::pending(2, 3, "test".into());
+        assert_eq!(h.next_pending(), Some((0, 0)));
+        let asked = |h: &ServedHeights| h.lock().clone();
+        std::thread::scope(|scope| {
+            let last = scope.spawn(|| h.wait(1, 2).cloned());
+            while asked(&h) != [5] {
+                std::thread::yield_now();
+            }
+            let second = scope.spawn(|| h.wait(0, 1).cloned());
+            while asked(&h) != [5, 1] {
+                std::thread::yield_now();
+            }
+            assert_eq!(h.next_pending(), Some((1, 2)));
+            h.set(1, 2, step(12.0));
+            assert_eq!(last.join().unwrap(), Ok(step(12.0)));
+            assert_eq!(h.next_pending(), Some((0, 1)));
+            h.set(0, 1, step(1.0));
+            assert_eq!(second.join().unwrap(), Ok(step(1.0)));
+        });
+        assert_eq!(h.next_pending(), Some((0, 0)));
+        assert!(asked(&h).is_empty());
+        // Waiting for a step already set asks nothing.
+        assert_eq!(h.wait(1, 2).cloned(), Ok(step(12.0)));
+        assert!(asked(&h).is_empty());
+        h.fail_pending("stopped");
+        assert_eq!(h.next_pending(), None);
     }
 
     #[test]

@@ -1283,6 +1283,34 @@ fn a_cycle_answers_while_its_heights_are_computed() {
     assert_eq!(position(&pending, &q, &limits).unwrap(), stored);
 }
 
+/// An area on the last lead time of a cycle whose steps are all pending puts that step first
+/// in line (`ServedHeights::next_pending`): the computation, started after the area asked,
+/// begins with it, and the area gets the same bits as once every step is in.
+#[test]
+fn an_area_waiting_on_a_late_step_has_it_computed_first() {
+    let done = demo();
+    let pending = LoadedCycle::from_cycle(&done.id, done.cycle.clone(), &done.config).unwrap();
+    let times = done.cycle.lead_times_s.len();
+    assert!(times > 2);
+    assert_eq!(pending.heights.next_pending(), Some((0, 0)));
+    let last_hours = done.cycle.lead_times_s[times - 1] / 3600;
+    let area_q = AreaQuery {
+        time: lead(last_hours),
+        ..area_query(vec![height(500.0)], demo_box())
+    };
+    let limits = Limits::default();
+    let waited = std::thread::scope(|scope| {
+        let asker = scope.spawn(|| area(&pending, &area_q, &limits));
+        while pending.heights.next_pending() != Some((0, times - 1)) {
+            std::thread::yield_now();
+        }
+        pending.finish_heights();
+        asker.join().unwrap().unwrap()
+    });
+    assert_eq!(waited, area(done, &area_q, &limits).unwrap());
+    assert!(pending.heights.pending_steps().is_empty());
+}
+
 /// Should the computation of a cycle's heights stop, the steps it left answer areas with an
 /// error naming the cycle (nobody waits for ever); points still answer from rebuilt columns.
 #[test]
