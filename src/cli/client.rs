@@ -181,6 +181,22 @@ fn code_name(code: tonic::Code) -> &'static str {
 }
 
 /// A runtime for one client command.
+/// Connects, makes one unary call with the client (`what` names it in errors) and returns
+/// the answer.
+fn unary<T, F, Fut>(args: &ConnectArgs, what: &str, call: F) -> Result<T>
+where
+    F: FnOnce(Client) -> Fut,
+    Fut: std::future::Future<Output = std::result::Result<tonic::Response<T>, Status>>,
+{
+    runtime()?.block_on(async {
+        let client = connect(args).await?;
+        call(client)
+            .await
+            .map(tonic::Response::into_inner)
+            .map_err(|s| status_error(what, s))
+    })
+}
+
 fn runtime() -> Result<tokio::runtime::Runtime> {
     tokio::runtime::Builder::new_current_thread()
         .enable_all()
@@ -458,17 +474,10 @@ const MARKS_NOTE: &str = "values in gpm; '~' below ground (extrapolated), NaN mi
 // ---------------------------------------------------------------------------------------
 
 pub(super) fn catalogue(args: CatalogueArgs) -> Result<()> {
-    let response = runtime()?.block_on(async {
-        let mut client = connect(&args.connect).await?;
-        client
-            .get_catalogue(pb::CatalogueRequest {})
-            .await
-            .map_err(|s| status_error("catalogue", s))
+    let response = unary(&args.connect, "catalogue", |mut client| async move {
+        client.get_catalogue(pb::CatalogueRequest {}).await
     })?;
-    print!(
-        "{}",
-        render_catalogue(&response.into_inner(), args.connect.format)?
-    );
+    print!("{}", render_catalogue(&response, args.connect.format)?);
     Ok(())
 }
 
@@ -966,17 +975,10 @@ pub(super) fn position(args: PositionArgs) -> Result<()> {
         interpolation: interpolation(args.nearest),
         allow_extrapolation: args.quantities.extrapolate,
     };
-    let response = runtime()?.block_on(async {
-        let mut client = connect(&args.connect).await?;
-        client
-            .query_position(request)
-            .await
-            .map_err(|s| status_error("position", s))
+    let response = unary(&args.connect, "position", |mut client| async move {
+        client.query_position(request).await
     })?;
-    print!(
-        "{}",
-        render_position(&response.into_inner(), args.connect.format)?
-    );
+    print!("{}", render_position(&response, args.connect.format)?);
     Ok(())
 }
 
@@ -1100,17 +1102,10 @@ pub(super) fn profile(args: ProfileArgs) -> Result<()> {
         member: args.cycle.member,
         interpolation: interpolation(args.nearest),
     };
-    let response = runtime()?.block_on(async {
-        let mut client = connect(&args.connect).await?;
-        client
-            .query_profile(request)
-            .await
-            .map_err(|s| status_error("profile", s))
+    let response = unary(&args.connect, "profile", |mut client| async move {
+        client.query_profile(request).await
     })?;
-    print!(
-        "{}",
-        render_profile(&response.into_inner(), args.connect.format)?
-    );
+    print!("{}", render_profile(&response, args.connect.format)?);
     Ok(())
 }
 
@@ -1231,17 +1226,10 @@ pub(super) fn trajectory(args: TrajectoryArgs) -> Result<()> {
         interpolation: interpolation(args.nearest),
         allow_extrapolation: args.quantities.extrapolate,
     };
-    let response = runtime()?.block_on(async {
-        let mut client = connect(&args.connect).await?;
-        client
-            .query_trajectory(request)
-            .await
-            .map_err(|s| status_error("trajectory", s))
+    let response = unary(&args.connect, "trajectory", |mut client| async move {
+        client.query_trajectory(request).await
     })?;
-    print!(
-        "{}",
-        render_trajectory(&response.into_inner(), args.connect.format)?
-    );
+    print!("{}", render_trajectory(&response, args.connect.format)?);
     Ok(())
 }
 
