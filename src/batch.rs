@@ -32,7 +32,8 @@ use crate::output::{
 };
 
 /// Bytes of one field's band (temperature, humidity, heights: `[level, row, lon]` `f32`):
-/// 4 MiB, 39 rows of a 0.5° grid on 37 levels. The 0.5° batch took 98.5, 83.5 and 88.2 ms
+/// 4 MiB, 39 rows of a 0.5° grid on 37 levels (cut into even bands: nine of 40–41 rows, see
+/// [`even_bands`]). The 0.5° batch took 98.5, 83.5 and 88.2 ms
 /// with bands of 2, 4 and 8 MiB (medians of 11 alternate runs of the process); a C program
 /// that only read and wrote the same bands through the library took 96 ms with bands of 8
 /// rows (the library's cost per call), 42, 40 and 39 ms with 24, 45 and 91 rows, 52 ms with
