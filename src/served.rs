@@ -266,10 +266,12 @@ mod tests {
         std::thread::scope(|scope| {
             let last = scope.spawn(|| h.wait(1, 2).cloned());
             while asked(&h) != [5] {
+                assert!(!last.is_finished());
                 std::thread::yield_now();
             }
             let second = scope.spawn(|| h.wait(0, 1).cloned());
             while asked(&h) != [5, 1] {
+                assert!(!second.is_finished());
                 std::thread::yield_now();
             }
             assert_eq!(h.next_pending(), Some((1, 2)));

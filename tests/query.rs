@@ -1302,6 +1302,7 @@ fn an_area_waiting_on_a_late_step_has_it_computed_first() {
     let waited = std::thread::scope(|scope| {
         let asker = scope.spawn(|| area(&pending, &area_q, &limits));
         while pending.heights.next_pending() != Some((0, times - 1)) {
+            assert!(!asker.is_finished(), "the area answered without waiting");
             std::thread::yield_now();
         }
         pending.finish_heights();
