@@ -17,7 +17,7 @@ use crate::buffers::touch_pages;
 use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
 use crate::kernel::{IsobaricKernel, KernelOutput, StepFields};
 use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
-use crate::physics::column::{thickness_between, ColumnAnchor, ColumnNodes};
+use crate::physics::column::{thickness_between, usable_tv, ColumnAnchor, ColumnNodes};
 use crate::physics::humidity::{
     saturation_vapour_pressure, specific_humidity_from_vapour_pressure,
     vapour_pressure_from_dewpoint, virtual_temperature_from_mixing_ratio,
@@ -685,6 +685,8 @@ pub struct ColumnScratch {
     pub height_half: Vec<f64>,
     /// Whether each level lies below the ground.
     pub below: Vec<bool>,
+    /// Scratch of a whole row (hybrid heights alone).
+    row: Vec<f64>,
 }
 
 impl ColumnScratch {
@@ -697,6 +699,7 @@ impl ColumnScratch {
             height: vec![0.0; levels],
             height_half: vec![0.0; levels + 1],
             below: vec![false; levels],
+            row: Vec::new(),
         }
     }
 }
@@ -794,17 +797,7 @@ impl<'a> StepColumns<'a> {
                 }
             }
         }
-        for k in 0..levels {
-            let t = f64::from(self.temperature[[k, row, col]]);
-            s.tv[k] = match self.humidity {
-                None => t,
-                Some(_) if self.dry_levels[k] => t,
-                Some((kind, values)) => {
-                    let h = f64::from(values[[k, row, col]]);
-                    self.virtual_temperature(kind, t, h, s.pressure[k])
-                }
-            };
-        }
+        self.virtual_temperatures(row, col, &s.pressure, &mut s.tv);
         match &self.cycle.vertical {
             Vertical::Isobaric { pressure_pa } => {
                 let anchor = self.anchor(surface, row, col, pressure_pa);
@@ -827,6 +820,114 @@ impl<'a> StepColumns<'a> {
             }
         }
     }
+    /// The virtual temperature of every level of the column at (`row`, `col`) into `tv`,
+    /// from its temperature and humidity at the level pressures `pressure`.
+    fn virtual_temperatures(&self, row: usize, col: usize, pressure: &[f64], tv: &mut [f64]) {
+        for (k, (tv, &p)) in tv.iter_mut().zip(pressure).enumerate() {
+            let t = f64::from(self.temperature[[k, row, col]]);
+            *tv = match self.humidity {
+                None => t,
+                Some(_) if self.dry_levels[k] => t,
+                Some((kind, values)) => {
+                    let h = f64::from(values[[k, row, col]]);
+                    self.virtual_temperature(kind, t, h, p)
+                }
+            };
+        }
+    }
+
+    /// The full-level heights of row `row` of a hybrid cycle into `z` (`[level, lon]`,
+    /// `NaN` where masked): the values [`ColumnNodes::hybrid`] gives, bit for bit (the same
+    /// operations in the same order), without building the nodes for interpolation that
+    /// only layers and queries between levels need, and level by level along the row rather
+    /// than column by column: the heights a served cycle stores.
+    fn hybrid_heights_row(
+        &self,
+        (a_half, b_half): (&[f64], &[f64]),
+        row: usize,
+        z: &mut ArrayViewMut2<'_, f32>,
+        scratch: &mut Vec<f64>,
+    ) {
+        let (levels, cols) = z.dim();
+        z.fill(f32::NAN);
+        if a_half.len() != levels + 1 || b_half.len() != levels + 1 || levels == 0 {
+            return;
+        }
+        let Some((ps_row, zs_row)) = self
+            .surface
+            .as_ref()
+            .map(|(ps, zs)| (ps.row(row), zs.row(row)))
+        else {
+            return;
+        };
+        // Per column: the half-level pressures ([half level, lon]), then the lower half
+        // level's height and whether the column is still alive.
+        scratch.clear();
+        scratch.resize((levels + 1) * cols + 2 * cols, 0.0);
+        let (half, rest) = scratch.split_at_mut((levels + 1) * cols);
+        let (z_lower, alive) = rest.split_at_mut(cols);
+        for c in 0..cols {
+            let ps = f64::from(ps_row[c]);
+            let zs = f64::from(zs_row[c]);
+            let mut ok = ps.is_finite() && ps > 0.0 && zs.is_finite();
+            if ok {
+                for k in 0..=levels {
+                    half[k * cols + c] = a_half[k] + b_half[k] * ps;
+                }
+                let at = |k: usize| half[k * cols + c];
+                ok = at(0) > 0.0
+                    && at(levels) >= 0.0
+                    && (0..=levels).all(|k| at(k).is_finite())
+                    && (0..levels).all(|k| at(k) > at(k + 1));
+            }
+            z_lower[c] = zs;
+            alive[c] = if ok { 1.0 } else { 0.0 };
+        }
+        let rd_g0 = self.constants.rd_over_g0();
+        let humidity = self
+            .humidity
+            .as_ref()
+            .map(|(kind, values)| (*kind, values.slice(s![.., row, ..])));
+        for k in 0..levels {
+            let t_row = self.temperature.slice(s![k, row, ..]);
+            let h_row = humidity
+                .as_ref()
+                .filter(|_| !self.dry_levels[k])
+                .map(|(kind, values)| (*kind, values.row(k)));
+            for c in 0..cols {
+                if alive[c] == 0.0 {
+                    continue;
+                }
+                let (lower, upper) = (half[k * cols + c], half[(k + 1) * cols + c]);
+                let t = f64::from(t_row[c]);
+                let tv = match &h_row {
+                    None => t,
+                    Some((kind, values)) => self.virtual_temperature(
+                        *kind,
+                        t,
+                        f64::from(values[c]),
+                        0.5 * (lower + upper),
+                    ),
+                };
+                if !usable_tv(tv) {
+                    // Masks this level and every one above, as the column does.
+                    alive[c] = 0.0;
+                    continue;
+                }
+                let zl = z_lower[c];
+                let (alpha, z_upper) = if upper == 0.0 {
+                    (std::f64::consts::LN_2, f64::NAN)
+                } else {
+                    let ln_ratio = (lower / upper).ln();
+                    let alpha = 1.0 - upper / (lower - upper) * ln_ratio;
+                    (alpha, zl + rd_g0 * tv * ln_ratio)
+                };
+                z[[k, c]] = (zl + alpha * rd_g0 * tv) as f32;
+                z_lower[c] = z_upper;
+            }
+        }
+    }
+
     /// Every column of the step, rows in parallel: heights and flags `[level, lat, lon]`,
     /// thickness and its flags `[layer, lat, lon]` (one per layer of the settings).
     fn fill(
@@ -860,6 +961,15 @@ impl<'a> StepColumns<'a> {
         mut th_row: ArrayViewMut2<'_, f32>,
         mut tb_row: ArrayViewMut2<'_, u8>,
     ) {
+        if let (Vertical::Hybrid { a_half_pa, b_half }, true) =
+            (&self.cycle.vertical, self.config.layers.is_empty())
+        {
+            // Heights alone (a served cycle's): no nodes to build. Every level of a hybrid
+            // column lies above the ground.
+            b_row.fill(0);
+            self.hybrid_heights_row((a_half_pa, b_half), row, &mut z_row, &mut s.row);
+            return;
+        }
         let c = self.constants;
         let cols = z_row.dim().1;
         for col in 0..cols {

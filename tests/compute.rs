@@ -321,3 +321,155 @@ fn hybrid_levels_without_the_ground_are_refused_naming_the_file() {
     let err = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).unwrap_err();
     assert!(err.to_string().contains("hybrid.nc"), "{err}");
 }
+
+/// A served cycle has no layers, and its hybrid heights skip the nodes that layers need: the
+/// heights and flags must be the bits the full column gives (Simmons and Burridge, as
+/// `ColumnNodes::hybrid` computes them), whatever the humidity, the model top (at p = 0 or
+/// above it) and whatever masks a column: a missing temperature at the lowest level or
+/// higher up, a surface pressure missing, zero, negative or so low that the half levels no
+/// longer decrease, a surface height missing. Also on the hybrid file variants.
+#[test]
+fn hybrid_heights_alone_are_the_full_columns_bits() {
+    use hypsogrid::model::{Grid, Humidity, HumidityKind, Surface, Vertical};
+    use hypsogrid::physics::Constants;
+    use ndarray::{Array4, Array5};
+
+    let (rows, cols, levels, times) = (3, 7, 10, 2);
+    // Invented coefficients, bottom-up: terrain following near the ground, pure pressure aloft.
+    let b_half: Vec<f64> = (0..=levels)
+        .map(|k| (1.0 - k as f64 / 6.0).max(0.0).powi(2))
+        .collect();
+    let a_shape: Vec<f64> = (0..=levels)
+        .map(|k| {
+            let s = k as f64 / levels as f64;
+            18_000.0 * (std::f64::consts::PI * s).sin()
+        })
+        .collect();
+    let surface_pressure = |r: usize, c: usize| -> f32 {
+        match (r, c) {
+            (0, 1) => f32::NAN,
+            (0, 2) => 0.0,
+            (0, 3) => -500.0,
+            // So low that a half level above lies at a higher pressure: not ordered.
+            (0, 4) => 300.0,
+            _ => 101_000.0 - 4_000.0 * r as f32 - 1_500.0 * c as f32,
+        }
+    };
+    let surface_height = |r: usize, c: usize| -> f32 {
+        if (r, c) == (0, 5) {
+            f32::NAN
+        } else {
+            120.0 * r as f32 + 40.0 * c as f32
+        }
+    };
+    let temperature = |t: usize, k: usize, r: usize, c: usize| -> f32 {
+        match (r, c, k) {
+            (1, 1, 0) => f32::NAN,
+            (1, 2, 6) => f32::NAN,
+            (1, 3, 3) => -5.0,
+            _ => 288.0 - 6.0 * k as f32 + 0.7 * r as f32 - 0.3 * c as f32 + t as f32,
+        }
+    };
+    let humidities: Vec<Option<(HumidityKind, f32, f32)>> = vec![
+        None,
+        Some((HumidityKind::SpecificHumidity, 0.012, 0.001)),
+        Some((HumidityKind::MixingRatio, 0.012, 0.001)),
+        Some((HumidityKind::RelativeHumidity, 0.9, 0.08)),
+        Some((HumidityKind::DewPoint, 283.0, 6.0)),
+    ];
+    let mut compared = 0;
+    let mut masked = 0;
+    for top_pa in [0.0, 1_000.0] {
+        let mut a_half = a_shape.clone();
+        a_half[levels] = top_pa;
+        for humidity in &humidities {
+            let cycle = Cycle {
+                source: std::path::PathBuf::from("invented-hybrid.nc"),
+                reference_time: None,
+                lead_times_s: vec![0, 3600],
+                members: 1,
+                grid: Grid {
+                    latitudes: (0..rows).map(|r| 50.0 + r as f64).collect(),
+                    longitudes: (0..cols).map(|c| 10.0 + c as f64).collect(),
+                },
+                vertical: Vertical::Hybrid {
+                    a_half_pa: a_half.clone(),
+                    b_half: b_half.clone(),
+                },
+                levels_top_down_in_file: false,
+                temperature: Array5::from_shape_fn(
+                    (1, times, levels, rows, cols),
+                    |(_, t, k, r, c)| temperature(t, k, r, c),
+                ),
+                humidity: humidity.map(|(kind, base, step)| Humidity {
+                    kind,
+                    values: Array5::from_shape_fn(
+                        (1, times, levels, rows, cols),
+                        |(_, _, k, _, c)| {
+                            if kind == HumidityKind::DewPoint {
+                                base - step * k as f32 - 0.2 * c as f32
+                            } else {
+                                (base - step * k as f32).max(step / 4.0)
+                            }
+                        },
+                    ),
+                    missing_levels: vec![levels - 1],
+                }),
+                surface: Some(Surface {
+                    pressure_pa: Array4::from_shape_fn((1, times, rows, cols), |(_, _, r, c)| {
+                        surface_pressure(r, c)
+                    }),
+                    height_m: Array4::from_shape_fn((1, times, rows, cols), |(_, _, r, c)| {
+                        surface_height(r, c)
+                    }),
+                }),
+                file_heights: None,
+                constants: Constants::default(),
+                variables: Vec::new(),
+                notes: Vec::new(),
+            };
+            let alone = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).unwrap();
+            let with_layers = ComputeConfig {
+                layers: vec![Layer {
+                    bottom_pa: 90_000.0,
+                    top_pa: 50_000.0,
+                }],
+                ..ComputeConfig::default()
+            };
+            let full = compute_heights(&cycle, &with_layers, &|_| {}).unwrap();
+            let what = format!("top {top_pa} Pa, humidity {:?}", humidity.map(|h| h.0));
+            for (a, b) in alone
+                .geopotential_height
+                .iter()
+                .zip(full.geopotential_height.iter())
+            {
+                assert!(
+                    a.to_bits() == b.to_bits() || (a.is_nan() && b.is_nan()),
+                    "{what}: {a} alone against {b} from the full column"
+                );
+                compared += 1;
+                masked += usize::from(a.is_nan());
+            }
+            assert_eq!(alone.below_ground, full.below_ground, "{what}");
+            assert!(alone.below_ground.iter().all(|&f| f == 0), "{what}");
+        }
+    }
+    // Every masking case above masks something, and most values are heights.
+    assert!(
+        masked > 0 && masked < compared / 2,
+        "{masked} of {compared}"
+    );
+
+    // The hybrid file variants, read as the service reads them.
+    let dir = tempfile::tempdir().unwrap();
+    for (label, spec) in hybrid_variants() {
+        let path = spec.write(&dir.path().join(format!("{label}.nc")));
+        let cycle = read_cycle(&path, &IngestConfig::default()).unwrap();
+        let alone = compute_heights(&cycle, &ComputeConfig::default(), &|_| {}).unwrap();
+        let (_, full) = run(&spec, dir.path(), &format!("{label}-layers"));
+        let bits = |h: &Heights| -> Vec<u32> {
+            h.geopotential_height.iter().map(|v| v.to_bits()).collect()
+        };
+        assert_eq!(bits(&alone), bits(&full), "{label}");
+    }
+}

@@ -89,7 +89,7 @@ fn standard_kappa(c: &Constants) -> f64 {
 
 /// A virtual temperature that can be used: finite and positive.
 #[inline]
-pub(super) fn usable_tv(tv: f64) -> bool {
+pub(crate) fn usable_tv(tv: f64) -> bool {
     tv.is_finite() && tv > 0.0
 }
 
