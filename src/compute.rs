@@ -23,6 +23,7 @@ use crate::physics::humidity::{
     vapour_pressure_from_dewpoint, virtual_temperature_from_mixing_ratio,
     virtual_temperature_from_specific_humidity, RelativeHumidityPhase, SaturationFormula,
 };
+use crate::physics::hybrid::full_level;
 use crate::physics::standard_atmosphere::us_standard_atmosphere_height_at_pressure;
 use crate::physics::Constants;
 use crate::served::{ServedHeights, StepHeights};
@@ -914,15 +915,8 @@ impl<'a> StepColumns<'a> {
                     alive[c] = 0.0;
                     continue;
                 }
-                let zl = z_lower[c];
-                let (alpha, z_upper) = if upper == 0.0 {
-                    (std::f64::consts::LN_2, f64::NAN)
-                } else {
-                    let ln_ratio = (lower / upper).ln();
-                    let alpha = 1.0 - upper / (lower - upper) * ln_ratio;
-                    (alpha, zl + rd_g0 * tv * ln_ratio)
-                };
-                z[[k, c]] = (zl + alpha * rd_g0 * tv) as f32;
+                let (z_full, z_upper) = full_level(lower, upper, tv, z_lower[c], rd_g0);
+                z[[k, c]] = z_full as f32;
                 z_lower[c] = z_upper;
             }
         }

@@ -34,6 +34,23 @@ pub fn hybrid_half_level_pressures(
     }
 }
 
+/// One full level of the sums of [`ColumnNodes::hybrid`]: from the pressures of its lower
+/// and upper half levels (Pa), its virtual temperature (K), the height of its lower half
+/// level and R_d/g0, the height of the full level and of its upper half level (`NaN` for
+/// the model top at p = 0, where α = ln 2 as in the IFS).
+#[inline]
+pub(crate) fn full_level(lower: f64, upper: f64, tv: f64, z_lower: f64, rd_g0: f64) -> (f64, f64) {
+    let (alpha, z_upper) = if upper == 0.0 {
+        // The model top at p = 0: α = ln 2 (IFS Part III), no finite half-level height.
+        (std::f64::consts::LN_2, f64::NAN)
+    } else {
+        let ln_ratio = (lower / upper).ln();
+        let alpha = 1.0 - upper / (lower - upper) * ln_ratio;
+        (alpha, z_lower + rd_g0 * tv * ln_ratio)
+    };
+    (z_lower + alpha * rd_g0 * tv, z_upper)
+}
+
 impl ColumnNodes {
     /// Hybrid column. `a_half_pa`, `b_half` bottom-up (len n+1, index 0 = surface half level),
     /// `tv_full` (len n, bottom-up), surface pressure and surface geopotential height.
@@ -139,15 +156,7 @@ impl ColumnNodes {
                 self.push(p_full, f64::NAN, f64::NAN, false);
                 continue;
             }
-            let (alpha, z_upper) = if upper == 0.0 {
-                // The model top at p = 0: α = ln 2 (IFS Part III), no finite half-level height.
-                (std::f64::consts::LN_2, f64::NAN)
-            } else {
-                let ln_ratio = (lower / upper).ln();
-                let alpha = 1.0 - upper / (lower - upper) * ln_ratio;
-                (alpha, z_lower + rd_g0 * tv * ln_ratio)
-            };
-            let z_full = z_lower + alpha * rd_g0 * tv;
+            let (z_full, z_upper) = full_level(lower, upper, tv, z_lower, rd_g0);
             self.push(p_full, tv, z_full, false);
             z_full_out[k] = z_full;
             z_half_out[k + 1] = z_upper;
