@@ -22,6 +22,7 @@
 //! | `hypsogrid_newest_cycle_reference_age_seconds` | gauge | |
 //! | `hypsogrid_newest_cycle_load_age_seconds` | gauge | |
 //! | `hypsogrid_cycle_memory_bytes` | gauge | |
+//! | `hypsogrid_cycle_load_seconds` | gauge | `cycle_id` |
 //! | `hypsogrid_cycle_steps_without_heights` | gauge | `state` (`computing`, `failed`) |
 //! | `hypsogrid_failed_files` | gauge | |
 //! | `hypsogrid_cycle_load_failures_total` | counter | |
@@ -389,6 +390,20 @@ impl Recorder {
         );
         family(
             &mut out,
+            "hypsogrid_cycle_load_seconds",
+            "gauge",
+            "Time each cycle being served took from the start of its read until it was listed (servable), seconds.",
+        );
+        for cycle in &snapshot.cycles {
+            let _ = writeln!(
+                out,
+                "hypsogrid_cycle_load_seconds{{cycle_id=\"{}\"}} {}",
+                label_value(&cycle.id),
+                cycle.load_seconds
+            );
+        }
+        family(
+            &mut out,
             "hypsogrid_cycle_steps_without_heights",
             "gauge",
             "(member, time) steps of the cycles being served whose heights are not stored, by state: computing (for tens of milliseconds after a cycle is listed) or failed (never to be stored: queries on them fail; see the log).",
@@ -430,6 +445,14 @@ impl Recorder {
         let _ = writeln!(out, "hypsogrid_cycle_evictions_total {}", self.evictions());
         out
     }
+}
+
+/// A label value as the text format writes it: backslash, double quote and line feed
+/// escaped (a cycle id is a file name, which may hold any of them).
+fn label_value(text: &str) -> String {
+    text.replace('\\', "\\\\")
+        .replace('"', "\\\"")
+        .replace('\n', "\\n")
 }
 
 fn family(out: &mut String, name: &str, kind: &str, help: &str) {

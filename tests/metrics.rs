@@ -741,7 +741,9 @@ fn steps_without_heights_are_counted_until_they_are_computed() {
 
     // A second cycle (the same file under another name) whose pending steps fail: they
     // leave "computing" for "failed", and the first cycle's steps count in neither.
-    let second_path = dir.path().join("second.nc");
+    // Named with a character the text format must escape in a label value (the NetCDF
+    // library cannot open a path with a backslash, the other one: see tests/ingest.rs).
+    let second_path = dir.path().join("second \"run\" b.nc");
     std::fs::copy(&path, &second_path).unwrap();
     let second = read(&second_path);
     let second_pending = second.heights.pending_steps().len();
@@ -754,4 +756,16 @@ fn steps_without_heights_are_counted_until_they_are_computed() {
         failed.steps_without_heights("failed"),
         second_pending as f64
     );
+    // Each cycle's time to servable, labelled with its id as it is.
+    assert_eq!(failed.types["hypsogrid_cycle_load_seconds"], "gauge");
+    let snapshot = store.snapshot();
+    assert_eq!(snapshot.cycles.len(), 2);
+    for cycle in &snapshot.cycles {
+        let value = failed
+            .value("hypsogrid_cycle_load_seconds", &[("cycle_id", &cycle.id)])
+            .unwrap_or_else(|| panic!("no load time for '{}'", cycle.id));
+        assert_eq!(value, cycle.load_seconds, "{}", cycle.id);
+        assert!(value > 0.0);
+    }
+    assert!(snapshot.cycles.iter().any(|c| c.id.contains('"')));
 }
