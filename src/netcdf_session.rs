@@ -7,10 +7,20 @@
 //! code path that opens or creates a file therefore holds this lock for the whole life of the
 //! file handle: take the guard *before* opening, so that it is dropped after the file.
 
+use std::path::Path;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Mutex, MutexGuard, OnceLock};
 
 static SESSION: Mutex<()> = Mutex::new(());
+
+/// Whether the NetCDF library can open or create `path`: not when it contains a backslash.
+/// Debian's netCDF-C 4.9 turns the backslash into something else before it opens the file
+/// (a copy of a good cycle named `a\b.nc` failed to open with "netcdf: hdf error", and an
+/// output named `o\ut.nc` with "Permission denied"), so such paths are refused up front
+/// with a message that says why, rather than reported as a damaged file.
+pub fn usable_path(path: &Path) -> bool {
+    !path.as_os_str().as_encoded_bytes().contains(&b'\\')
+}
 
 /// Set once the process is stopping: see [`stop_reads`].
 static STOPPING: AtomicBool = AtomicBool::new(false);

@@ -54,6 +54,12 @@ pub enum OutputError {
         /// The output path.
         path: PathBuf,
     },
+    /// A path the NetCDF library cannot create (see [`crate::netcdf_session::usable_path`]).
+    #[error("cannot write '{path}': the NetCDF library cannot create a path that contains a backslash ('\\'): choose a name without one")]
+    Backslash {
+        /// The output path.
+        path: PathBuf,
+    },
     /// A deflate level outside 1–9.
     #[error("cannot write '{path}': deflate level {level} is out of range: expected 1 to 9")]
     DeflateLevel {
@@ -771,6 +777,11 @@ impl PartialFile {
             Some(dir) if !dir.as_os_str().is_empty() => dir.to_path_buf(),
             _ => PathBuf::from("."),
         };
+        if !crate::netcdf_session::usable_path(target) {
+            return Err(OutputError::Backslash {
+                path: target.to_path_buf(),
+            });
+        }
         if !dir.is_dir() {
             return Err(OutputError::MissingDirectory {
                 path: target.to_path_buf(),

@@ -769,3 +769,22 @@ fn celsius_labelled_kelvin_fails_plausibility() {
     );
     assert!(msg.contains("plev=0"), "{msg}");
 }
+
+/// A good cycle under a name with a backslash is refused up front, saying why, rather than
+/// reported as damaged (which is what the NetCDF library says when it is asked to open it).
+#[test]
+fn a_backslash_in_the_path_is_refused_with_the_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = FixtureSpec::default().write(&dir.path().join("good.nc"));
+    read_cycle(&good, &IngestConfig::default()).expect("the fixture reads under a plain name");
+    let odd = dir.path().join("cycle\\2030.nc");
+    std::fs::copy(&good, &odd).unwrap();
+    let err = read_cycle(&odd, &IngestConfig::default()).unwrap_err();
+    assert!(matches!(err, IngestError::Backslash { .. }), "{err:?}");
+    let message = err.to_string();
+    assert!(message.contains(&odd.display().to_string()), "{message}");
+    assert!(
+        message.contains("backslash") && !message.contains("damaged"),
+        "{message}"
+    );
+}

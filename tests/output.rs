@@ -859,3 +859,23 @@ fn the_band_writer_keeps_flags_for_longer_runs_and_loses_none() {
         assert!(flags.contains(&1) && flags.contains(&0), "{name}");
     }
 }
+
+/// A path with a backslash is refused before anything is made, saying why: the NetCDF
+/// library cannot create it (as built on Debian it failed with "Permission denied").
+#[test]
+fn a_backslash_in_the_path_is_refused_with_the_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("thickness\\2030.nc");
+    let err = write_heights(
+        &cycle(MEMBERS, None),
+        &heights(MEMBERS),
+        &path,
+        &options("x"),
+    )
+    .unwrap_err();
+    assert!(matches!(err, OutputError::Backslash { .. }), "{err:?}");
+    let message = err.to_string();
+    assert!(message.contains(&path.display().to_string()), "{message}");
+    assert!(message.contains("backslash"), "{message}");
+    assert!(entries(dir.path()).is_empty());
+}

@@ -59,6 +59,12 @@ pub enum IngestError {
         #[source]
         source: std::io::Error,
     },
+    /// A path the NetCDF library cannot open (see [`crate::netcdf_session::usable_path`]).
+    #[error("cannot open '{file}': the NetCDF library cannot open a path that contains a backslash ('\\'): rename the file (or its folder) without one")]
+    Backslash {
+        /// The file.
+        file: String,
+    },
     /// The file does not start with a NetCDF-3 or HDF5 signature.
     #[error("'{file}' is not a netcdf file: {detail}")]
     NotNetcdf {
@@ -269,6 +275,9 @@ pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestErr
 /// opens it.
 fn checked_label(path: &Path) -> Result<String, IngestError> {
     let label = path.display().to_string();
+    if !crate::netcdf_session::usable_path(path) {
+        return Err(IngestError::Backslash { file: label });
+    }
     if check_signature(path, &label)? {
         check_classic_length(path, &label)?;
     }
