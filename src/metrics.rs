@@ -765,6 +765,14 @@ mod tests {
         assert_eq!(r.requests(Method::GetCatalogue, 99), 0);
     }
 
+    /// Text format 0.0.4: in a label value, backslash, double quote and line feed are
+    /// written `\\`, `\"` and `\n`; nothing else is escaped.
+    #[test]
+    fn label_values_escape_what_the_text_format_says() {
+        assert_eq!(label_value("cycle-2030.nc"), "cycle-2030.nc");
+        assert_eq!(label_value("a\\b \"c\"\nd é"), "a\\\\b \\\"c\\\"\\nd é");
+    }
+
     #[test]
     fn code_names_follow_the_grpc_numbering() {
         // gRPC doc/statuscodes.md: 0 OK, 5 NOT_FOUND, 8 RESOURCE_EXHAUSTED, 16 UNAUTHENTICATED.
