@@ -9,8 +9,11 @@
 //! process touches a few tens of megabytes of memory instead of the whole cycle and its
 //! heights (fresh memory, whose first touch cost about a third of the whole batch on these
 //! virtual machines). The file written is the one [`read_and_compute`] and
-//! [`write_heights`] give, value for value (`tests/batch.rs`). Everything else goes through
-//! those two.
+//! [`write_heights`] give, value for value (`tests/batch.rs`). Every other cycle is read
+//! whole, once ([`read_cycle_in_bands`] goes on to the whole cycle), computed by
+//! [`compute_heights`] and written by [`write_heights`].
+//!
+//! [`read_and_compute`]: crate::compute::read_and_compute
 
 use std::ops::Range;
 use std::path::Path;
@@ -20,10 +23,10 @@ use ndarray::{s, ArrayView3, ArrayViewMut2, ArrayViewMut3};
 
 use crate::buffers::zeroed_field;
 use crate::compute::{
-    background_pool, check_layers, kernel_for, read_and_compute, ComputeConfig, ComputeError,
+    background_pool, check_layers, compute_heights, kernel_for, ComputeConfig, ComputeError,
 };
 use crate::ingest::{
-    read_cycle_in_bands, BadValue, BandDecode, BandReader, IngestConfig, IngestError,
+    read_cycle_in_bands, BadValue, BandDecode, BandReader, InBands, IngestConfig, IngestError,
 };
 use crate::kernel::{IsobaricKernel, NotApplicable, StepFields, StepOutputs};
 use crate::model::{Cycle, Surface};
@@ -90,8 +93,8 @@ pub struct BatchReport {
 /// It is called while this function holds the NetCDF session ([`crate::netcdf_session`]):
 /// it must not open a NetCDF file itself (it would wait for itself).
 ///
-/// The output is the same, value for value, as [`read_and_compute`] followed by
-/// [`write_heights`]; see the module documentation for how it is made.
+/// The output is the same, value for value, as [`crate::compute::read_and_compute`]
+/// followed by [`write_heights`]; see the module documentation for how it is made.
 ///
 /// # Errors
 /// The input cannot be read as a cycle (a bad value in any band names the file, variable
@@ -139,19 +142,19 @@ pub fn compute_file_in_bands(
         };
         Some(job.run(bands, output, options, progress))
     })?;
-    if let Some(Some(report)) = streamed {
-        return report;
-    }
-    let (cycle, heights) =
-        read_and_compute(input, ingest, config, progress).map_err(|e| match e {
-            crate::compute::LoadError::Ingest(e) => BatchError::Ingest(e),
-            crate::compute::LoadError::Compute(e) => compute_error(e),
-        })?;
-    write_heights(&cycle, &heights, output, options)?;
+    let cycle = match streamed {
+        InBands::Done(report) => return report,
+        InBands::Whole(cycle) => *cycle,
+    };
+    // What `read_and_compute` then `write_heights` do, on the cycle already read.
     let (members, times, ..) = cycle.temperature.dim();
+    let total = members * times;
+    let heights =
+        compute_heights(&cycle, config, &|done| progress(done, total)).map_err(compute_error)?;
+    write_heights(&cycle, &heights, output, options)?;
     Ok(BatchReport {
         notes: cycle.notes,
-        steps: members * times,
+        steps: total,
         band_rows: None,
     })
 }

@@ -148,8 +148,8 @@ pub enum LoadError {
 /// ([`compute_heights`]). `progress` is called once per finished (member, time) step with
 /// the number finished and the total.
 ///
-/// The batch goes band by band instead wherever it can ([`crate::batch::compute_file`]);
-/// this is its way for the other cycles, and the reference the bands are tested against.
+/// The batch ([`crate::batch::compute_file`]) goes band by band wherever it can and reads
+/// the other cycles once, whole; this is the reference it is tested against.
 ///
 /// [`read_cycle`]: crate::ingest::read_cycle
 pub fn read_and_compute(

@@ -600,44 +600,63 @@ impl BandDecode {
     }
 }
 
+/// What [`read_cycle_in_bands`] did.
+pub enum InBands<R> {
+    /// `work` read temperature and humidity band by band, and returned this.
+    Done(R),
+    /// The whole cycle, exactly as [`read_cycle`] gives it: the file's layout needs
+    /// whole-variable reads, or `work` declined.
+    Whole(Box<Cycle>),
+}
+
 /// Reads everything of the cycle in `path` but the values of temperature and humidity
 /// (coordinates, surface fields, file heights) and lets `work` read those a band of latitude
 /// rows at a time ([`BandReader`]), holding the NetCDF session for as long as `work` runs.
 ///
 /// `work` sees the cycle with its final shapes and metadata, temperature and humidity left
-/// zero (untouched memory). Returns `None`, without calling `work`, where the file's layout
-/// needs whole-variable reads (packed as wider types, dimensions out of order, humidity on
-/// its own axis or broadcast): read it with [`read_cycle`] then.
+/// zero (untouched memory), and returns `None` to decline. Where it declines, or where the
+/// file's layout needs whole-variable reads (packed as wider types, dimensions out of order,
+/// humidity on its own axis or broadcast; `work` is not called then), the read goes on to
+/// the whole cycle ([`InBands::Whole`]), without reading again what was read already.
 ///
 /// # Errors
-/// As [`read_cycle`] for everything read before `work` starts; `work` gets the errors of its
-/// own reads.
+/// As [`read_cycle`] for everything read outside `work`; `work` gets the errors of its own
+/// reads.
 pub fn read_cycle_in_bands<R>(
     path: &Path,
     config: &IngestConfig,
-    work: impl FnOnce(&Cycle, &mut BandReader<'_, '_>) -> R,
-) -> Result<Option<R>, IngestError> {
+    work: impl FnOnce(&Cycle, &mut BandReader<'_, '_>) -> Option<R>,
+) -> Result<InBands<R>, IngestError> {
     let label = checked_label(path)?;
     let session = crate::netcdf_session::lock();
     let file = open_quietly(path, &label)?;
     let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
-    let cycle = reader.read(path)?;
+    let mut cycle = reader.read(path)?;
     let planned = reader.take_stepwise();
-    let fields = Stepwise::of(&label, &planned);
-    if !fields.complete(&cycle) {
-        return Ok(None);
+    let mut fields = Stepwise::of(&label, &planned);
+    if fields.complete(&cycle) {
+        let mut bands = true;
+        for plan in [fields.temperature, fields.humidity].into_iter().flatten() {
+            bands = bands && plan.reads_bands(&label)?;
+        }
+        let mut band_reader = BandReader {
+            fields,
+            dim: cycle.temperature.dim(),
+            bands,
+            session: &session,
+        };
+        if let Some(done) = work(&cycle, &mut band_reader) {
+            return Ok(InBands::Done(done));
+        }
+        fields = band_reader.fields;
     }
-    let mut bands = true;
-    for plan in [fields.temperature, fields.humidity].into_iter().flatten() {
-        bands = bands && plan.reads_bands(&label)?;
-    }
-    let mut band_reader = BandReader {
-        fields,
-        dim: cycle.temperature.dim(),
-        bands,
-        session: &session,
-    };
-    Ok(Some(work(&cycle, &mut band_reader)))
+    // The fields planned for stepwise reading, step by step into the cycle: the rest was
+    // read whole above.
+    let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
+    let humidity = cycle.humidity.as_mut().map(|h| &mut h.values);
+    fields.fill(&mut cycle.temperature, humidity, |_| {})?;
+    check_valid(&label, &names, &cycle)?;
+    Ok(InBands::Whole(Box::new(cycle)))
 }
 
 /// What the reading scope of [`read_cycle_overlapped`] hands back.
