@@ -31,7 +31,8 @@ use crate::ingest::{
 use crate::kernel::{IsobaricKernel, NotApplicable, StepFields, StepOutputs};
 use crate::model::{Cycle, Surface};
 use crate::output::{
-    write_heights, FileRows, HeightsAbout, HeightsWriter, OutputError, OutputOptions,
+    rows_past_sieve, write_heights, FileRows, HeightsAbout, HeightsWriter, OutputError,
+    OutputOptions,
 };
 
 /// Bytes of one field's band (temperature, humidity, heights: `[level, row, lon]` `f32`):
@@ -165,13 +166,6 @@ fn rows_per_band(levels: usize, rows: usize, cols: usize) -> usize {
     (BAND_BYTES / (4 * levels * cols).max(1)).clamp(1, rows.max(1))
 }
 
-/// Rows enough that a level's rows of `f32` (one write per level and variable) are more than
-/// the 64 KiB that the HDF5 library would otherwise read back and write again through its
-/// sieve buffer (bands of [`rows_per_band`] are, up to 64 levels).
-fn rows_past_sieve(cols: usize) -> usize {
-    (64 << 10) / (4 * cols).max(1) + 1
-}
-
 /// `rows` rows in bands of about `band_rows` rows each and at least `least` (all of them if
 /// fewer), as even as can be: a short last band would fall below the size that keeps a
 /// level's rows past the HDF5 sieve buffer (361 rows in bands of 39 left 10 rows, read back
@@ -253,7 +247,9 @@ impl BandJob<'_> {
                 None => even_bands(
                     rows,
                     rows_per_band(levels, rows, cols),
-                    rows_past_sieve(cols),
+                    // A level's rows of `f32` are one write per level and variable (bands
+                    // of `rows_per_band` are past the sieve buffer up to 64 levels).
+                    rows_past_sieve(cols, 4),
                 ),
             }
         } else {
@@ -434,7 +430,6 @@ impl From<ndarray::ShapeError> for Failure {
     }
 }
 
-/// The error when the computing thread has stopped (it panicked: the panic follows).
 /// Threads computing bands beside a global pool of `global` threads: one fewer, at least
 /// one, so that the reading and writing thread (the critical path: it reads and writes
 /// about 64 ms a 0.5° step, the kernel computes one in about 45 ms on one thread) keeps a
@@ -449,6 +444,7 @@ fn compute_threads(global: usize) -> usize {
     global.saturating_sub(1).max(1)
 }
 
+/// The error when the computing thread has stopped (it panicked: the panic follows).
 fn worker_gone(shell: &Cycle) -> BatchError {
     BatchError::Band {
         file: shell.source.display().to_string(),
@@ -487,7 +483,7 @@ mod tests {
         }
         // The 0.5° grid: 361 rows, bands of about 39 (4 MiB a field on 37 levels), runs past
         // 64 KiB from 23 rows: nine bands of 40 or 41 rows, no short last band.
-        let half_degree = even_bands(361, rows_per_band(37, 361, 720), rows_past_sieve(720));
+        let half_degree = even_bands(361, rows_per_band(37, 361, 720), rows_past_sieve(720, 4));
         assert_eq!(half_degree.len(), 9);
         assert!(half_degree.iter().all(|b| (40..=41).contains(&b.len())));
     }

@@ -798,7 +798,17 @@ impl<'a> StepColumns<'a> {
                 }
             }
         }
-        self.virtual_temperatures(row, col, &s.pressure, &mut s.tv);
+        for k in 0..levels {
+            let t = f64::from(self.temperature[[k, row, col]]);
+            s.tv[k] = match self.humidity {
+                None => t,
+                Some(_) if self.dry_levels[k] => t,
+                Some((kind, values)) => {
+                    let h = f64::from(values[[k, row, col]]);
+                    self.virtual_temperature(kind, t, h, s.pressure[k])
+                }
+            };
+        }
         match &self.cycle.vertical {
             Vertical::Isobaric { pressure_pa } => {
                 let anchor = self.anchor(surface, row, col, pressure_pa);
@@ -821,22 +831,6 @@ impl<'a> StepColumns<'a> {
             }
         }
     }
-    /// The virtual temperature of every level of the column at (`row`, `col`) into `tv`,
-    /// from its temperature and humidity at the level pressures `pressure`.
-    fn virtual_temperatures(&self, row: usize, col: usize, pressure: &[f64], tv: &mut [f64]) {
-        for (k, (tv, &p)) in tv.iter_mut().zip(pressure).enumerate() {
-            let t = f64::from(self.temperature[[k, row, col]]);
-            *tv = match self.humidity {
-                None => t,
-                Some(_) if self.dry_levels[k] => t,
-                Some((kind, values)) => {
-                    let h = f64::from(values[[k, row, col]]);
-                    self.virtual_temperature(kind, t, h, p)
-                }
-            };
-        }
-    }
-
     /// The full-level heights of row `row` of a hybrid cycle into `z` (`[level, lon]`,
     /// `NaN` where masked): the values [`ColumnNodes::hybrid`] gives, bit for bit (the same
     /// operations in the same order), without building the nodes for interpolation that
@@ -862,11 +856,10 @@ impl<'a> StepColumns<'a> {
             return;
         };
         // Per column: the half-level pressures ([half level, lon]), then the lower half
-        // level's height and whether the column is still alive.
+        // level's height, `NaN` once the column is masked (its heights above stay `NaN`).
         scratch.clear();
-        scratch.resize((levels + 1) * cols + 2 * cols, 0.0);
-        let (half, rest) = scratch.split_at_mut((levels + 1) * cols);
-        let (z_lower, alive) = rest.split_at_mut(cols);
+        scratch.resize((levels + 2) * cols, 0.0);
+        let (half, z_lower) = scratch.split_at_mut((levels + 1) * cols);
         for c in 0..cols {
             let ps = f64::from(ps_row[c]);
             let zs = f64::from(zs_row[c]);
@@ -881,8 +874,7 @@ impl<'a> StepColumns<'a> {
                     && (0..=levels).all(|k| at(k).is_finite())
                     && (0..levels).all(|k| at(k) > at(k + 1));
             }
-            z_lower[c] = zs;
-            alive[c] = if ok { 1.0 } else { 0.0 };
+            z_lower[c] = if ok { zs } else { f64::NAN };
         }
         let rd_g0 = self.constants.rd_over_g0();
         let humidity = self
@@ -896,7 +888,7 @@ impl<'a> StepColumns<'a> {
                 .filter(|_| !self.dry_levels[k])
                 .map(|(kind, values)| (*kind, values.row(k)));
             for c in 0..cols {
-                if alive[c] == 0.0 {
+                if z_lower[c].is_nan() {
                     continue;
                 }
                 let (lower, upper) = (half[k * cols + c], half[(k + 1) * cols + c]);
@@ -912,7 +904,7 @@ impl<'a> StepColumns<'a> {
                 };
                 if !usable_tv(tv) {
                     // Masks this level and every one above, as the column does.
-                    alive[c] = 0.0;
+                    z_lower[c] = f64::NAN;
                     continue;
                 }
                 let (z_full, z_upper) = full_level(lower, upper, tv, z_lower[c], rd_g0);

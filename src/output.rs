@@ -195,6 +195,12 @@ pub struct HeightsWriter {
 /// written for 9.6 MB of flags (`strace` of `hypsogrid compute`).
 const SIEVE_BYTES: usize = 64 * 1024;
 
+/// Rows of `cols` values of `value_bytes` bytes each that make one write longer than
+/// [`SIEVE_BYTES`], so that the library writes it straight to the file.
+pub(crate) fn rows_past_sieve(cols: usize, value_bytes: usize) -> usize {
+    SIEVE_BYTES / (value_bytes * cols).max(1) + 1
+}
+
 /// The below-ground flags (`below_ground`, then each layer's) of contiguous rows of one step,
 /// kept until each level's run of rows is longer than [`SIEVE_BYTES`] (and so are the rows
 /// left of the step), the step is complete, or a band that does not continue them comes;
@@ -299,16 +305,14 @@ impl HeightsWriter {
         let plan = &self.plan;
         let planes = plan.levels + plan.thickness_names.len();
         let staged = &mut self.staged;
+        let past_sieve = rows_past_sieve(plan.cols, 1);
         if staged.held.is_none() {
             // Room for twice the rows past the sieve buffer and one band more, at most the
             // grid (see the flush below).
-            staged.room = (2 * (SIEVE_BYTES / plan.cols.max(1) + 1) + n).min(plan.rows.max(n));
+            staged.room = (2 * past_sieve + n).min(plan.rows.max(n));
             staged.bytes.resize(planes * staged.room * plan.cols, 0);
-            staged.held = Some(((m, t), rows.start..rows.start));
         }
-        let Some((_, held)) = staged.held.as_mut() else {
-            unreachable!("set just above")
-        };
+        let (_, held) = staged.held.get_or_insert(((m, t), rows.start..rows.start));
         let at = (held.end - held.start) * plan.cols;
         let room = staged.room * plan.cols;
         let sources = band
@@ -322,7 +326,7 @@ impl HeightsWriter {
         held.end = rows.end;
         // Written once past the sieve buffer, unless the rows left of the step would not be:
         // they are then kept for one write with these.
-        let past = |rows: usize| rows * plan.cols > SIEVE_BYTES;
+        let past = |rows: usize| rows >= past_sieve;
         let full = held.end == plan.rows || (past(held.len()) && past(plan.rows - held.end));
         if let Some(w) = self.written.get_mut(m * plan.times + t) {
             *w += n;
