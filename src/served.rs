@@ -147,7 +147,7 @@ impl ServedHeights {
     /// The step to compute next: the one asked for longest ago ([`ServedHeights::wait`])
     /// that is still pending, else the first pending in file order; `None` when none is.
     /// A query that waits for the last step of a many-step cycle whose steps are computed
-    /// after the read (hybrid levels, on the column path) is then answered after one step's
+    /// after the read (hybrid levels) is then answered after one step's
     /// computation rather than all of them.
     pub fn next_pending(&self) -> Option<(usize, usize)> {
         let times = self.times.max(1);
