@@ -146,6 +146,12 @@ pub enum DemoError {
         /// Its directory.
         dir: PathBuf,
     },
+    /// A path the NetCDF library cannot create (see [`crate::netcdf_session::usable_path`]).
+    #[error("cannot write '{path}': the NetCDF library cannot create a path that contains a backslash ('\\'): choose a folder without one")]
+    Backslash {
+        /// The file that was to be written.
+        path: PathBuf,
+    },
     /// A synthetic-cycle setting is out of range.
     #[error(
         "cannot write '{path}': synthetic cycle setting {setting} = {value} is invalid: {hint}"
@@ -228,6 +234,9 @@ pub fn write_demo_ensemble(dir: &Path) -> Result<PathBuf, DemoError> {
 }
 
 fn write_fields(path: PathBuf, fields: &DemoFields) -> Result<PathBuf, DemoError> {
+    if !crate::netcdf_session::usable_path(&path) {
+        return Err(DemoError::Backslash { path });
+    }
     let result = write_demo_file(&path, fields);
     if result.is_err() {
         // Never leave a half-written demo behind; the file may not exist, so a failed
@@ -246,6 +255,11 @@ fn write_fields(path: PathBuf, fields: &DemoFields) -> Result<PathBuf, DemoError
 /// memory stays at about two 3-D fields of one step.
 pub fn write_synthetic_global(path: &Path, spec: &SyntheticGlobal) -> Result<(), DemoError> {
     validate_synthetic(path, spec)?;
+    if !crate::netcdf_session::usable_path(path) {
+        return Err(DemoError::Backslash {
+            path: path.to_path_buf(),
+        });
+    }
     let dir = match path.parent() {
         Some(d) if !d.as_os_str().is_empty() => d.to_path_buf(),
         _ => PathBuf::from("."),

@@ -275,6 +275,34 @@ fn a_demo_into_a_missing_directory_fails_and_names_it() {
     assert!(!missing.exists());
 }
 
+/// A folder with a backslash in its name is refused before anything is written, saying why:
+/// the NetCDF library cannot create a file there (as built on Debian it failed with
+/// "Permission denied"; see tests/output.rs).
+#[test]
+fn a_demo_into_a_folder_with_a_backslash_is_refused_with_the_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let folder = dir.path().join("charts\\2030");
+    std::fs::create_dir(&folder).unwrap();
+    let err = write_demo_cycle(&folder).unwrap_err();
+    assert!(matches!(err, DemoError::Backslash { .. }), "{err:?}");
+    let message = err.to_string();
+    assert!(message.contains(&folder.display().to_string()), "{message}");
+    assert!(message.contains("backslash"), "{message}");
+    assert_eq!(std::fs::read_dir(&folder).unwrap().count(), 0);
+
+    let spec = SyntheticGlobal {
+        rows: 5,
+        cols: 8,
+        levels: 2,
+        times: 1,
+        deflate_level: None,
+    };
+    let path = folder.join("g.nc");
+    let err = write_synthetic_global(&path, &spec).unwrap_err();
+    assert!(matches!(err, DemoError::Backslash { .. }), "{err:?}");
+    assert_eq!(std::fs::read_dir(&folder).unwrap().count(), 0);
+}
+
 #[test]
 fn synthetic_global_cycle_is_global_layered_and_deterministic() {
     let dir = tempfile::tempdir().unwrap();
