@@ -27,9 +27,12 @@ static STOPPING: AtomicBool = AtomicBool::new(false);
 
 /// Asks every read of a cycle's fields in progress to stop before its next (member, time)
 /// step, and every later read to stop before its first, with
-/// [`crate::ingest::IngestError::Stopped`]. For a process that is stopping: a server that
-/// waits, before it exits, for the read holding this session (see `hypsogrid serve`) then
-/// waits for one step of a file rather than all of it. It cannot be undone.
+/// [`crate::ingest::IngestError::Stopped`]; a variable read whole (a layout that needs it)
+/// stops before its next slab (a band of about a megabyte, or a slab of whole chunks) with
+/// [`crate::ingest::IngestError::StoppedInVariable`]. For a process that is stopping: a
+/// server that waits, before it exits, for the read holding this session (see `hypsogrid
+/// serve`) then waits for one step or slab of a file rather than all of it. It cannot be
+/// undone.
 pub fn stop_reads() {
     STOPPING.store(true, Ordering::Release);
 }

@@ -519,6 +519,9 @@ fn read_decoded(req: &FieldRequest<'_, '_>) -> Result<Decoded, IngestError> {
             let mut slab = vec![0f64; slab_len];
             let lead_shape: Vec<usize> = shape.iter().take(lead).copied().collect();
             for (s, chunk) in data.chunks_mut(slab_len.max(1)).enumerate() {
+                if s > 0 {
+                    stop_point(req.file, var)?;
+                }
                 let mut rem = s;
                 let mut idx = vec![0usize; lead];
                 for (k, n) in lead_shape.iter().enumerate().rev() {
@@ -582,7 +585,8 @@ fn read_narrow_in_bands(
     let split = (0..rest.len()).find(|&d| rest[d + 1..].iter().product::<usize>() <= band);
     let (Some(d), true) = (split, contiguous) else {
         let read = if fixed.is_empty() {
-            var.get_values_into::<f32, _>(out, ..)
+            read_in_chunk_slabs((file, var, shape), out)?;
+            Ok(())
         } else {
             let mut extents: Vec<Extent> = fixed.iter().map(|&i| one(i)).collect();
             extents.extend(rest.iter().map(|&n| Extent::from(0..n)));
@@ -605,14 +609,13 @@ fn read_narrow_in_bands(
         }
         let mut start = 0usize;
         while start < rest[d] {
+            if at > 0 {
+                stop_point(file, var)?;
+            }
             let end = (start + per).min(rest[d]);
             let len = (end - start) * inner;
             let Some(part) = out.get_mut(at..at + len) else {
-                return Err(IngestError::Read {
-                    file: file.to_string(),
-                    variable: var.name(),
-                    detail: "the buffer is shorter than the variable".to_string(),
-                });
+                return Err(short_buffer(file, var));
             };
             let mut extents: Vec<Extent> = fixed.iter().chain(&idx).map(|&i| one(i)).collect();
             extents.push(Extent::from(start..end));
@@ -627,6 +630,87 @@ fn read_narrow_in_bands(
         }
     }
     Ok(None)
+}
+
+/// Reads the whole of a variable stored in chunks (maybe compressed) into `out` (file
+/// order, as stored), a slab of whole chunks at a time, so that a stopping process
+/// ([`crate::netcdf_session::stop_reads`]) need not wait for the rest of a large variable.
+///
+/// The slabs run along the first dimension that is cut into several chunks, one chunk deep
+/// and whole along every other dimension: each chunk is read (and decompressed) once, as in
+/// a read of the whole variable. Where that dimension is not the first, each slab is read
+/// into a buffer of its own and put in place.
+fn read_in_chunk_slabs(
+    (file, var, shape): (&str, &Variable<'_>, &[usize]),
+    out: &mut [f32],
+) -> Result<(), IngestError> {
+    let chunks = var
+        .chunking()
+        .map_err(|e| read_error(file, var, e))?
+        .unwrap_or_default();
+    let cut = (0..shape.len())
+        .find(|&d| chunks.get(d).is_some_and(|&c| c > 0 && c < shape[d]))
+        .and_then(|d| Some((d, *chunks.get(d)?)));
+    let Some((d, depth)) = cut else {
+        return var
+            .get_values_into::<f32, _>(out, ..)
+            .map_err(|e| read_error(file, var, e));
+    };
+    let outer: usize = shape[..d].iter().product();
+    let inner: usize = shape[d + 1..].iter().product();
+    let mut slab = Vec::new();
+    let mut start = 0usize;
+    while start < shape[d] {
+        if start > 0 {
+            stop_point(file, var)?;
+        }
+        let end = (start + depth).min(shape[d]);
+        let extents: Vec<Extent> = shape
+            .iter()
+            .enumerate()
+            .map(|(i, &n)| Extent::from(if i == d { start..end } else { 0..n }))
+            .collect();
+        let piece = (end - start) * inner;
+        if d == 0 {
+            let part = out
+                .get_mut(start * inner..end * inner)
+                .ok_or_else(|| short_buffer(file, var))?;
+            var.get_values_into::<f32, _>(part, extents)
+                .map_err(|e| read_error(file, var, e))?;
+        } else {
+            slab.resize(outer * piece, 0f32);
+            var.get_values_into::<f32, _>(&mut slab, extents)
+                .map_err(|e| read_error(file, var, e))?;
+            for (o, from) in slab.chunks_exact(piece.max(1)).enumerate() {
+                let at = (o * shape[d] + start) * inner;
+                out.get_mut(at..at + piece)
+                    .ok_or_else(|| short_buffer(file, var))?
+                    .copy_from_slice(from);
+            }
+        }
+        start = end;
+    }
+    Ok(())
+}
+
+/// Where a read of a whole variable may stop: between two of its slabs, once the process is
+/// stopping.
+fn stop_point(file: &str, var: &Variable<'_>) -> Result<(), IngestError> {
+    if crate::netcdf_session::reads_stopped() {
+        return Err(IngestError::StoppedInVariable {
+            file: file.to_string(),
+            variable: var.name(),
+        });
+    }
+    Ok(())
+}
+
+fn short_buffer(file: &str, var: &Variable<'_>) -> IngestError {
+    IngestError::Read {
+        file: file.to_string(),
+        variable: var.name(),
+        detail: "the buffer is shorter than the variable".to_string(),
+    }
 }
 
 /// The error for the implausible `value` at flat index `i` (file order).
@@ -1118,6 +1202,49 @@ mod tests {
         let mut var = file.variable_mut("t").expect("t");
         var.put_values(&raw, ..).expect("values");
         path
+    }
+
+    /// A variable read whole a slab of chunks at a time holds the values written, in file
+    /// order, whichever dimension its chunks cut first (with a short last slab, with
+    /// compression, in one chunk).
+    #[test]
+    fn reads_in_chunk_slabs_give_the_values_written() {
+        let _session = crate::netcdf_session::lock();
+        let dir = tempfile::tempdir().expect("tempdir");
+        let shape = [3usize, 5, 4, 6];
+        let written: Vec<f32> = (0..360).map(|i| i as f32 * 0.25 - 17.0).collect();
+        let layouts: [(&[usize], bool); 6] = [
+            (&[2, 5, 4, 6], false),
+            (&[3, 2, 4, 6], false),
+            (&[3, 5, 3, 2], true),
+            (&[3, 5, 4, 5], false),
+            (&[1, 1, 1, 1], true),
+            (&[3, 5, 4, 6], true),
+        ];
+        for (i, (chunks, deflate)) in layouts.into_iter().enumerate() {
+            let path = dir.path().join(format!("slabs-{i}.nc"));
+            {
+                let mut file =
+                    netcdf::create_with(&path, netcdf::Options::NETCDF4).expect("create");
+                for (name, n) in ["time", "plev", "lat", "lon"].into_iter().zip(shape) {
+                    file.add_dimension(name, n).expect("dimension");
+                }
+                let mut var = file
+                    .add_variable::<f32>("t", &["time", "plev", "lat", "lon"])
+                    .expect("variable");
+                var.set_chunking(chunks).expect("chunking");
+                if deflate {
+                    var.set_compression(4, true).expect("compression");
+                }
+                var.put_values(&written, ..).expect("values");
+            }
+            let file = netcdf::open(&path).expect("open");
+            let var = file.variable("t").expect("t");
+            let mut got = vec![f32::NAN; 360];
+            read_in_chunk_slabs(("f.nc", &var, &shape), &mut got).expect("read");
+            let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+            assert_eq!(bits(&got), bits(&written), "chunks {chunks:?}");
+        }
     }
 
     #[test]

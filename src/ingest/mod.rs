@@ -156,6 +156,15 @@ pub enum IngestError {
         /// The time step about to be read.
         time: usize,
     },
+    /// The process is stopping ([`crate::netcdf_session::stop_reads`]): the read of a
+    /// variable read whole stopped between two of its slabs.
+    #[error("reading variable '{variable}' in '{file}' stopped: the process is stopping")]
+    StoppedInVariable {
+        /// The file.
+        file: String,
+        /// The variable.
+        variable: String,
+    },
     /// A field in which no value is present: every point is a fill value, a `missing_value`
     /// or outside the valid range. Served, it would be a cycle of missing heights that
     /// displaces a good one as the newest.
