@@ -19,6 +19,11 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
         prost::Message::encode_to_vec(&fds),
     )?;
     tonic_prost_build::configure()
+        // Area answers' values are encoded and decoded as one block (src/wire.rs).
+        .extern_path(
+            ".hypsogrid.v1.QuantityValues",
+            "crate::wire::QuantityValues",
+        )
         .build_server(true)
         .build_client(true)
         .compile_fds(fds)?;

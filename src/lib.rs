@@ -30,4 +30,8 @@ pub mod watch;
 #[allow(missing_docs, unreachable_pub, clippy::all)]
 pub mod pb {
     include!(concat!(env!("OUT_DIR"), "/hypsogrid.v1.rs"));
+    pub use crate::wire::QuantityValues;
 }
+
+/// `hypsogrid.v1.QuantityValues`, whose packed values go over the wire as one block.
+mod wire;
