@@ -52,10 +52,12 @@ const CLIENT_MAX_MESSAGE: usize = 64 * 1024 * 1024;
 /// every value into an `f32`.
 ///
 /// Packed `repeated float` and `bytes` share the protobuf wire form (a length-delimited run of
-/// bytes), so declaring `values` as bytes reads the same message with one copy instead of a
-/// decode call per value: prost's generic decoding of packed floats took about a fifth of the
-/// machine in an area-only run, time a load generator should leave to the server it measures.
-/// Real clients read packed floats as one block too (Python's protobuf runtime does).
+/// bytes), so declaring `values` as bytes reads the same message as a slice of the received
+/// buffer instead of a decode call per value: prost's generic decoding of packed floats took
+/// about a fifth of the machine in an area-only run, time a load generator should leave to
+/// the server it measures. (`pb::QuantityValues` now decodes such a run in one copy too, see
+/// `src/wire.rs`; the view still saves that copy.) Real clients read packed floats as one
+/// block too (Python's protobuf runtime does).
 #[derive(Clone, PartialEq, prost::Message)]
 struct AreaChunkView {
     #[prost(string, tag = "1")]
