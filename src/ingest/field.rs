@@ -831,6 +831,11 @@ pub(crate) struct StepwiseField<'f> {
     check: Option<Plausible>,
     decoder: Decoder,
     shape: [usize; 5],
+    /// Stored as `f32` (not as narrow integers the library widens).
+    stored_f32: bool,
+    /// Whole steps read chunk by chunk without the library, where planned
+    /// ([`StepwiseField::plan_chunk_reads`]).
+    chunks: Option<super::chunks::StepChunks>,
 }
 
 impl<'f> StepwiseField<'f> {
@@ -857,8 +862,11 @@ impl<'f> StepwiseField<'f> {
         if chunks.as_deref().is_some_and(spans_steps) {
             return Ok(None);
         }
+        let stored_f32 = matches!(storage, Storage::Narrow { is_f32: true, .. });
         let decoder = Decoder::new(req.file, var, storage, default_fill, req.to_si)?;
         Ok(Some(Self {
+            stored_f32,
+            chunks: None,
             var: var.clone(),
             shape: canonical_shape(&req.axes, &file_shape),
             file_shape,
@@ -896,13 +904,19 @@ impl<'f> StepwiseField<'f> {
             .filter_map(|&(axis, i)| axis.map(|_| i))
             .collect();
         let limits = self.check.as_ref().map(Limits::of);
-        let bad = read_narrow_in_bands(
-            (file, &self.var, &self.file_shape),
-            &fixed,
-            (&self.decoder, limits),
-            BAND_VALUES,
-            out,
-        )?;
+        let bad = match &self.chunks {
+            Some(chunks) => {
+                chunks.read_step((member, time), out)?;
+                self.decoder.decode_narrow_in_place(out, limits)
+            }
+            None => read_narrow_in_bands(
+                (file, &self.var, &self.file_shape),
+                &fixed,
+                (&self.decoder, limits),
+                BAND_VALUES,
+                out,
+            )?,
+        };
         if let Some(i) = bad {
             // File order is canonical order here, steps first.
             let step = member * self.shape[1] + time;
@@ -954,6 +968,9 @@ impl<'f> StepwiseField<'f> {
                 ),
             });
         }
+        if let (Some(chunks), true) = (&self.chunks, rows == (0..y)) {
+            return chunks.read_step((member, time), out);
+        }
         let mut extents: Vec<Extent> = Vec::with_capacity(5);
         for (axis, i) in [(self.axes[0], member), (self.axes[1], time)] {
             if axis.is_some() {
@@ -972,6 +989,63 @@ impl<'f> StepwiseField<'f> {
         self.var
             .get_values_into::<f32, _>(out, extents)
             .map_err(|e| read_error(file, &self.var, e))
+    }
+
+    /// Plans whole-step reads chunk by chunk without the library ([`super::chunks`]) for a
+    /// field stored as little-endian `f32` in chunks of whole planes, behind no filters but
+    /// deflate and shuffle, in the file at `path`; checked against the library's read of the
+    /// first chunk. Leaves the field as it is otherwise. The caller holds the NetCDF session.
+    pub(crate) fn plan_chunk_reads(&mut self, path: &std::path::Path, label: &str) {
+        let little = matches!(self.var.endianness(), Ok(netcdf::Endianness::Little))
+            || (cfg!(target_endian = "little")
+                && matches!(self.var.endianness(), Ok(netcdf::Endianness::Native)));
+        let Ok(Some(chunk_dims)) = self.var.chunking() else {
+            return;
+        };
+        let same_size =
+            self.file_shape.iter().product::<usize>() == self.shape.iter().product::<usize>();
+        if !(self.stored_f32 && little && same_size && self.file_shape.len() == chunk_dims.len()) {
+            return;
+        }
+        let variable = super::chunks::ChunkedVariable {
+            label,
+            name: self.var.name(),
+            shape: self.shape,
+            present: self.axes.map(|a| a.is_some()),
+            chunk_dims: &chunk_dims,
+        };
+        let Some(chunks) = super::chunks::StepChunks::plan(path, &variable) else {
+            return;
+        };
+        // The first chunk both ways, bit for bit, before the plan is trusted.
+        let [_, _, z, y, x] = self.shape;
+        let depth = chunks.depth().min(z);
+        let mut by_library = vec![0f32; depth * y * x];
+        let mut extents: Vec<Extent> = Vec::with_capacity(5);
+        for (axis, range) in [
+            (self.axes[0], 0..1),
+            (self.axes[1], 0..1),
+            (self.axes[2], 0..depth),
+            (self.axes[3], 0..y),
+            (self.axes[4], 0..x),
+        ] {
+            if axis.is_some() {
+                extents.push(Extent::from(range));
+            }
+        }
+        let mut by_chunks = vec![0f32; depth * y * x];
+        let same = self
+            .var
+            .get_values_into::<f32, _>(&mut by_library, extents)
+            .is_ok()
+            && chunks.read_first_chunk(&mut by_chunks).is_ok()
+            && by_library
+                .iter()
+                .zip(&by_chunks)
+                .all(|(a, b)| a.to_bits() == b.to_bits());
+        if same {
+            self.chunks = Some(chunks);
+        }
     }
 
     /// What makes a band read by [`StepwiseField::read_rows_raw`] SI values, bottom-up.

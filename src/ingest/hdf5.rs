@@ -1,4 +1,5 @@
-//! Keeps HDF5's automatic error printing off on every thread that reads a file.
+//! Keeps HDF5's automatic error printing off on every thread that reads a file, and tells
+//! where a dataset's chunks lie ([`chunk_layout`]).
 //!
 //! netCDF-C turns HDF5's error-stack printing off once, on the thread that first initialises
 //! the library. With the thread-safe HDF5 that Debian ships the setting is per thread, so a
@@ -37,4 +38,173 @@ pub(crate) fn quiet_on_this_thread() {
             quiet.set(true);
         }
     });
+}
+
+/// `H5F_ACC_RDONLY`.
+const H5F_ACC_RDONLY: std::ffi::c_uint = 0;
+/// `H5P_DEFAULT`.
+const H5P_DEFAULT: Hid = 0;
+/// `HADDR_UNDEF`: no address (storage not allocated).
+const HADDR_UNDEF: u64 = u64::MAX;
+
+extern "C" {
+    /// `hid_t H5Fopen(const char *name, unsigned flags, hid_t fapl_id)`.
+    fn H5Fopen(name: *const std::ffi::c_char, flags: std::ffi::c_uint, fapl: Hid) -> Hid;
+    /// `herr_t H5Fclose(hid_t file_id)`.
+    fn H5Fclose(file: Hid) -> i32;
+    /// `hid_t H5Dopen2(hid_t loc_id, const char *name, hid_t dapl_id)`.
+    fn H5Dopen2(loc: Hid, name: *const std::ffi::c_char, dapl: Hid) -> Hid;
+    /// `herr_t H5Dclose(hid_t dset_id)`.
+    fn H5Dclose(dset: Hid) -> i32;
+    /// `hid_t H5Dget_create_plist(hid_t dset_id)`.
+    fn H5Dget_create_plist(dset: Hid) -> Hid;
+    /// `hid_t H5Dget_space(hid_t dset_id)`.
+    fn H5Dget_space(dset: Hid) -> Hid;
+    /// `herr_t H5Sclose(hid_t space_id)`.
+    fn H5Sclose(space: Hid) -> i32;
+    /// `int H5Sget_simple_extent_ndims(hid_t space_id)`.
+    fn H5Sget_simple_extent_ndims(space: Hid) -> std::ffi::c_int;
+    /// `herr_t H5Pclose(hid_t plist_id)`.
+    fn H5Pclose(plist: Hid) -> i32;
+    /// `int H5Pget_nfilters(hid_t plist_id)`.
+    fn H5Pget_nfilters(plist: Hid) -> std::ffi::c_int;
+    /// `H5Z_filter_t H5Pget_filter2(hid_t plist_id, unsigned idx, unsigned *flags,
+    /// size_t *cd_nelmts, unsigned cd_values[], size_t namelen, char name[],
+    /// unsigned *filter_config)`.
+    fn H5Pget_filter2(
+        plist: Hid,
+        idx: std::ffi::c_uint,
+        flags: *mut std::ffi::c_uint,
+        cd_nelmts: *mut usize,
+        cd_values: *mut std::ffi::c_uint,
+        namelen: usize,
+        name: *mut std::ffi::c_char,
+        filter_config: *mut std::ffi::c_uint,
+    ) -> std::ffi::c_int;
+    /// `herr_t H5Dget_num_chunks(hid_t dset_id, hid_t fspace_id, hsize_t *nchunks)`
+    /// (HDF5 1.10.5 and later).
+    fn H5Dget_num_chunks(dset: Hid, space: Hid, count: *mut u64) -> i32;
+    /// `herr_t H5Dget_chunk_info(hid_t dset_id, hid_t fspace_id, hsize_t chk_idx,
+    /// hsize_t *offset, unsigned *filter_mask, haddr_t *addr, hsize_t *size)`.
+    fn H5Dget_chunk_info(
+        dset: Hid,
+        space: Hid,
+        index: u64,
+        offset: *mut u64,
+        filter_mask: *mut std::ffi::c_uint,
+        addr: *mut u64,
+        size: *mut u64,
+    ) -> i32;
+}
+
+/// One stored chunk of a dataset ([`chunk_layout`]).
+#[derive(Clone, Debug)]
+pub(crate) struct StoredChunk {
+    /// Index of its first value along each dimension.
+    pub(crate) start: Vec<u64>,
+    /// Bit `i` set: filter `i` of the pipeline was not applied to this chunk.
+    pub(crate) filter_mask: u32,
+    /// Byte offset in the file.
+    pub(crate) addr: u64,
+    /// Bytes stored.
+    pub(crate) size: u64,
+}
+
+/// The filter pipeline (HDF5 filter identifiers, in the order they were applied on writing)
+/// and every stored chunk of the root-group dataset `name` of `rank` dimensions in the
+/// NetCDF-4 file at `path`. `None` when the file or dataset does not open, or a query fails.
+///
+/// The caller holds the NetCDF session ([`crate::netcdf_session::lock`]).
+pub(crate) fn chunk_layout(
+    path: &std::path::Path,
+    name: &str,
+    rank: usize,
+) -> Option<(Vec<i32>, Vec<StoredChunk>)> {
+    use std::os::unix::ffi::OsStrExt;
+    let c_path = std::ffi::CString::new(path.as_os_str().as_bytes()).ok()?;
+    let c_name = std::ffi::CString::new(name).ok()?;
+    quiet_on_this_thread();
+    // SAFETY: NUL-terminated strings and default property lists; every identifier opened
+    // here is closed before returning, and every out-pointer points at memory sized as the
+    // call documents (`start` has `rank` elements, the dataset's rank, checked below).
+    unsafe {
+        let file = H5Fopen(c_path.as_ptr(), H5F_ACC_RDONLY, H5P_DEFAULT);
+        if file < 0 {
+            return None;
+        }
+        let dset = H5Dopen2(file, c_name.as_ptr(), H5P_DEFAULT);
+        let found = if dset < 0 {
+            None
+        } else {
+            let found = dataset_chunks(dset, rank);
+            H5Dclose(dset);
+            found
+        };
+        H5Fclose(file);
+        found
+    }
+}
+
+/// [`chunk_layout`] of an open dataset.
+///
+/// # Safety
+/// `dset` is an open dataset identifier of `rank` dimensions, and the caller holds the
+/// NetCDF session.
+unsafe fn dataset_chunks(dset: Hid, rank: usize) -> Option<(Vec<i32>, Vec<StoredChunk>)> {
+    let plist = H5Dget_create_plist(dset);
+    if plist < 0 {
+        return None;
+    }
+    let count = H5Pget_nfilters(plist);
+    let mut filters = Vec::new();
+    for i in 0..u32::try_from(count).unwrap_or(0) {
+        let (mut flags, mut nelmts, mut config) = (0u32, 0usize, 0u32);
+        let id = H5Pget_filter2(
+            plist,
+            i,
+            &mut flags,
+            &mut nelmts,
+            std::ptr::null_mut(),
+            0,
+            std::ptr::null_mut(),
+            &mut config,
+        );
+        filters.push(id);
+    }
+    H5Pclose(plist);
+    if count < 0 || filters.iter().any(|&id| id < 0) {
+        return None;
+    }
+    let space = H5Dget_space(dset);
+    if space < 0 {
+        return None;
+    }
+    let mut chunks = Vec::new();
+    let mut n = 0u64;
+    let mut ok = usize::try_from(H5Sget_simple_extent_ndims(space)).ok() == Some(rank)
+        && H5Dget_num_chunks(dset, space, &mut n) >= 0;
+    let mut i = 0;
+    while ok && i < n {
+        let mut start = vec![0u64; rank];
+        let (mut filter_mask, mut addr, mut size) = (0u32, 0u64, 0u64);
+        ok = H5Dget_chunk_info(
+            dset,
+            space,
+            i,
+            start.as_mut_ptr(),
+            &mut filter_mask,
+            &mut addr,
+            &mut size,
+        ) >= 0
+            && addr != HADDR_UNDEF;
+        chunks.push(StoredChunk {
+            start,
+            filter_mask,
+            addr,
+            size,
+        });
+        i += 1;
+    }
+    H5Sclose(space);
+    ok.then_some((filters, chunks))
 }

@@ -7,6 +7,8 @@
 //! and attribute is checked and refused with an [`IngestError`] that names the file and the
 //! variable.
 
+/// Whole steps of compressed variables read chunk by chunk, in parallel, without the library.
+mod chunks;
 /// The data extent of a NetCDF-3 header, to refuse truncated files.
 pub mod classic;
 /// Reading one variable: masking, unpacking, conversion, axis order.
@@ -393,7 +395,10 @@ where
         let file = open_quietly(path, label_ref)?;
         let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
         let mut cycle = reader.read(path)?;
-        let planned = reader.take_stepwise();
+        let mut planned = reader.take_stepwise();
+        for (_, plan) in planned.iter_mut() {
+            plan.plan_chunk_reads(path, label_ref);
+        }
         let fields = Stepwise::of(label_ref, &planned);
         let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
         let complete = fields.complete(&cycle);
@@ -641,7 +646,10 @@ pub fn read_cycle_in_bands<R>(
     let file = open_quietly(path, &label)?;
     let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
     let mut cycle = reader.read(path)?;
-    let planned = reader.take_stepwise();
+    let mut planned = reader.take_stepwise();
+    for (_, plan) in planned.iter_mut() {
+        plan.plan_chunk_reads(path, &label);
+    }
     let mut fields = Stepwise::of(&label, &planned);
     if fields.complete(&cycle) {
         let mut bands = true;
