@@ -6,6 +6,7 @@
 #   benches/compare.sh            # the 0.5° file, 3 paired runs
 #   REPEAT=9 benches/compare.sh   # more pairs
 #   QUARTER=1 benches/compare.sh  # also an invented 0.25° grid (721 x 1440 x 37, ~300 MB file)
+#   ZLIB=1 benches/compare.sh     # also the same 0.5° cycle stored zlib-1 compressed (shuffled)
 #
 # The synthetic file is the one the compute bench writes (target/bench-data/global_0p5deg.nc);
 # when it is missing, the compute bench's smoke run writes it. The Rust batch runs twice per
@@ -94,6 +95,14 @@ run_grid() {
 
 echo "# $(date -u +%Y-%m-%dT%H:%M:%SZ), load average: $(cut -d' ' -f1-3 /proc/loadavg), $(nproc) cores" >&2
 run_grid 0p5 "$INPUT"
+if [ "${ZLIB:-0}" = 1 ]; then
+    ZLIB_INPUT=target/bench-data/global_0p5deg_zlib.nc
+    if [ ! -f "$ZLIB_INPUT" ]; then
+        echo "writing $ZLIB_INPUT with the compute bench's smoke run" >&2
+        cargo bench --quiet --bench compute -- --test compute_whole_process_0p5deg/zlib1 >&2
+    fi
+    run_grid 0p5_zlib "$ZLIB_INPUT"
+fi
 if [ "${QUARTER:-0}" = 1 ]; then
     "$PY" benches/numpy_baseline.py --grid 0.25 --repeat "$REPEAT" --save-grid "$WORK/grid_0p25.nc" |
         sed 's/^{/{"grid_label": "0p25_in_memory", /' | tee -a "$WORK/all.jsonl"
