@@ -16,7 +16,7 @@
 //! The plan is checked against the library's read of the first chunk before it is used.
 
 use std::fs::File;
-use std::os::unix::fs::FileExt;
+use std::os::unix::fs::{FileExt, MetadataExt};
 use std::path::Path;
 use std::sync::Arc;
 
@@ -64,11 +64,17 @@ pub(crate) struct ChunkedVariable<'a> {
 }
 
 impl StepChunks {
-    /// The chunk reads of `var` in the file at `path`, or `None` where its layout or filters
-    /// are not ones this reader takes, or HDF5 does not describe its chunks. The caller holds
-    /// the NetCDF session and has checked that the variable is stored as little-endian `f32`
-    /// with its dimensions in canonical order.
-    pub(crate) fn plan(path: &Path, var: &ChunkedVariable<'_>) -> Option<Self> {
+    /// The chunk reads of `var` in the file at `path`, read through `own`, or `None` where
+    /// its layout or filters are not ones this reader takes, or HDF5 does not describe its
+    /// chunks. The caller holds the NetCDF session and has checked that the variable is
+    /// stored as little-endian `f32` with its dimensions in canonical order.
+    ///
+    /// `own` must have been opened before the library opened `path`, and is used only while
+    /// `path` still names the same file: a file renamed over `path` in between (a producer
+    /// replacing a cycle) would otherwise be read at the offsets of another file's chunks.
+    /// Then the library opened either the file `own` holds or a later one, and a later one
+    /// shows as `path` naming another file now.
+    pub(crate) fn plan(path: &Path, own: &File, var: &ChunkedVariable<'_>) -> Option<Self> {
         let [members, times, levels, rows, cols] = var.shape;
         // The chunk length along each canonical axis (1 where the file lacks the axis).
         let mut chunk = [1usize; 5];
@@ -114,7 +120,11 @@ impl StepChunks {
         }
         // A chunk never written reads as fill values through the library: left to it.
         let chunks: Vec<StoredChunk> = chunks.into_iter().collect::<Option<_>>()?;
-        let file = Arc::new(File::open(path).ok()?);
+        let (ours, now) = (own.metadata().ok()?, std::fs::metadata(path).ok()?);
+        if (ours.dev(), ours.ino()) != (now.dev(), now.ino()) {
+            return None;
+        }
+        let file = Arc::new(own.try_clone().ok()?);
         let plan = Self {
             file,
             label: var.label.to_string(),
@@ -338,7 +348,8 @@ mod tests {
                 present[axis] = true;
             }
             let var = variable(canonical, present, chunks);
-            let plan = StepChunks::plan(&path, &var)
+            let own = File::open(&path).expect("open");
+            let plan = StepChunks::plan(&path, &own, &var)
                 .unwrap_or_else(|| panic!("case {i}: no plan for chunks {chunks:?}"));
             let step_len: usize = canonical[2..].iter().product();
             let file = netcdf::open(&path).expect("open");
@@ -376,8 +387,27 @@ mod tests {
             let path = dir.path().join(format!("n{i}.nc"));
             fixture(&path, &shape, chunks, Some((1, true)));
             let var = variable([1, 4, 3, 6, 8], [false, true, true, true, true], chunks);
-            assert!(StepChunks::plan(&path, &var).is_none(), "{chunks:?}");
+            let own = File::open(&path).expect("open");
+            assert!(StepChunks::plan(&path, &own, &var).is_none(), "{chunks:?}");
         }
+    }
+
+    /// A file renamed over the path after the caller opened its own handle is not planned:
+    /// the offsets HDF5 gives would be those of the other file.
+    #[test]
+    fn a_file_replaced_after_it_was_opened_is_not_planned() {
+        let _session = crate::netcdf_session::lock();
+        let dir = tempfile::tempdir().expect("tempdir");
+        let (path, other) = (dir.path().join("r.nc"), dir.path().join("r2.nc"));
+        let shape = [2usize, 3, 6, 8];
+        let chunks = [1usize, 1, 6, 8];
+        fixture(&path, &shape, &chunks, Some((1, true)));
+        fixture(&other, &shape, &chunks, None);
+        let var = variable([1, 2, 3, 6, 8], [false, true, true, true, true], &chunks);
+        let own = File::open(&path).expect("open");
+        assert!(StepChunks::plan(&path, &own, &var).is_some());
+        std::fs::rename(&other, &path).expect("replace");
+        assert!(StepChunks::plan(&path, &own, &var).is_none());
     }
 
     /// A chunk whose stored bytes are damaged is an error that names file and variable.
@@ -392,7 +422,8 @@ mod tests {
             [false, true, true, true, true],
             &[1, 1, 40, 50],
         );
-        let plan = StepChunks::plan(&path, &var).expect("plan");
+        let own = File::open(&path).expect("open");
+        let plan = StepChunks::plan(&path, &own, &var).expect("plan");
         // Overwrite the middle of the second chunk's stored bytes.
         let chunk = &plan.chunks[1];
         let file = std::fs::OpenOptions::new()

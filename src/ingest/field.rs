@@ -994,8 +994,17 @@ impl<'f> StepwiseField<'f> {
     /// Plans whole-step reads chunk by chunk without the library ([`super::chunks`]) for a
     /// field stored as little-endian `f32` in chunks of whole planes, behind no filters but
     /// deflate and shuffle, in the file at `path`; checked against the library's read of the
-    /// first chunk. Leaves the field as it is otherwise. The caller holds the NetCDF session.
-    pub(crate) fn plan_chunk_reads(&mut self, path: &std::path::Path, label: &str) {
+    /// first chunk. Leaves the field as it is otherwise. `own` is the file opened before the
+    /// library opened it (none: no plan). The caller holds the NetCDF session.
+    pub(crate) fn plan_chunk_reads(
+        &mut self,
+        path: &std::path::Path,
+        own: Option<&std::fs::File>,
+        label: &str,
+    ) {
+        let Some(own) = own else {
+            return;
+        };
         let little = matches!(self.var.endianness(), Ok(netcdf::Endianness::Little))
             || (cfg!(target_endian = "little")
                 && matches!(self.var.endianness(), Ok(netcdf::Endianness::Native)));
@@ -1014,7 +1023,7 @@ impl<'f> StepwiseField<'f> {
             present: self.axes.map(|a| a.is_some()),
             chunk_dims: &chunk_dims,
         };
-        let Some(chunks) = super::chunks::StepChunks::plan(path, &variable) else {
+        let Some(chunks) = super::chunks::StepChunks::plan(path, own, &variable) else {
             return;
         };
         // The first chunk both ways, bit for bit, before the plan is trusted.

@@ -392,12 +392,14 @@ where
     let (cycle_ref, t_ref, q_ref, label_ref) = (&mut cycle_slot, &mut t_slot, &mut q_slot, &label);
     let outcome = std::thread::scope(move |scope| -> Result<Overlap<R>, IngestError> {
         let session = crate::netcdf_session::lock();
+        // Opened before the library opens it: see `chunks::StepChunks::plan`.
+        let own = std::fs::File::open(path).ok();
         let file = open_quietly(path, label_ref)?;
         let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
         let mut cycle = reader.read(path)?;
         let mut planned = reader.take_stepwise();
         for (_, plan) in planned.iter_mut() {
-            plan.plan_chunk_reads(path, label_ref);
+            plan.plan_chunk_reads(path, own.as_ref(), label_ref);
         }
         let fields = Stepwise::of(label_ref, &planned);
         let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
@@ -643,12 +645,14 @@ pub fn read_cycle_in_bands<R>(
 ) -> Result<InBands<R>, IngestError> {
     let label = checked_label(path)?;
     let session = crate::netcdf_session::lock();
+    // Opened before the library opens it: see `chunks::StepChunks::plan`.
+    let own = std::fs::File::open(path).ok();
     let file = open_quietly(path, &label)?;
     let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
     let mut cycle = reader.read(path)?;
     let mut planned = reader.take_stepwise();
     for (_, plan) in planned.iter_mut() {
-        plan.plan_chunk_reads(path, &label);
+        plan.plan_chunk_reads(path, own.as_ref(), &label);
     }
     let mut fields = Stepwise::of(&label, &planned);
     if fields.complete(&cycle) {
