@@ -992,7 +992,7 @@ impl<'f> StepwiseField<'f> {
     }
 
     /// Plans whole-step reads chunk by chunk without the library ([`super::chunks`]) for a
-    /// field stored as little-endian `f32` in chunks of whole planes, behind no filters but
+    /// field stored as little-endian `f32` in chunks of one step each, behind no filters but
     /// deflate and shuffle, in the file at `path`; checked against the library's read of the
     /// first chunk. Leaves the field as it is otherwise. `own` is the file opened before the
     /// library opened it (none: no plan). The caller holds the NetCDF session.
@@ -1027,22 +1027,21 @@ impl<'f> StepwiseField<'f> {
             return;
         };
         // The first chunk both ways, bit for bit, before the plan is trusted.
-        let [_, _, z, y, x] = self.shape;
-        let depth = chunks.depth().min(z);
-        let mut by_library = vec![0f32; depth * y * x];
+        let [lz, ly, lx] = chunks.first_chunk_extent();
+        let mut by_library = vec![0f32; lz * ly * lx];
         let mut extents: Vec<Extent> = Vec::with_capacity(5);
         for (axis, range) in [
             (self.axes[0], 0..1),
             (self.axes[1], 0..1),
-            (self.axes[2], 0..depth),
-            (self.axes[3], 0..y),
-            (self.axes[4], 0..x),
+            (self.axes[2], 0..lz),
+            (self.axes[3], 0..ly),
+            (self.axes[4], 0..lx),
         ] {
             if axis.is_some() {
                 extents.push(Extent::from(range));
             }
         }
-        let mut by_chunks = vec![0f32; depth * y * x];
+        let mut by_chunks = vec![0f32; lz * ly * lx];
         let same = self
             .var
             .get_values_into::<f32, _>(&mut by_library, extents)
