@@ -195,7 +195,9 @@ impl StepChunks {
 
     /// Reads step (`member`, `time`) into `out` (`[level, lat, lon]`, the file's level order,
     /// as stored): the values the library's read of the step gives, bit for bit. The blocks
-    /// of levels the chunks make are read and inflated in parallel.
+    /// of levels the chunks make are read and inflated in parallel, on rayon's pool (the
+    /// caller's, or the global one) while the caller holds the NetCDF session: no task on
+    /// those pools may wait for the session, or this would wait for it in turn.
     pub(crate) fn read_step(
         &self,
         (member, time): (usize, usize),
