@@ -11,6 +11,9 @@ mod buffers;
 pub mod compute;
 pub mod demo;
 pub mod grid;
+/// HDF5 below the NetCDF library: error printing kept off on every thread, where a
+/// dataset's chunks lie, chunks written as they are stored.
+mod hdf5;
 pub mod ingest;
 pub mod kernel;
 pub mod lanes;

@@ -178,7 +178,7 @@ pub struct HeightsWriter {
     plan: Plan,
     /// Declared before `partial`, so that the file is closed before the partial file is
     /// removed on drop.
-    file: netcdf::FileMut,
+    sink: Sink,
     partial: PartialFile,
     reverse: bool,
     /// Rows written so far of each (member, time) step, member-major.
@@ -230,10 +230,14 @@ impl HeightsWriter {
         let plan = Plan::new(cycle, about.layers, path, options)?;
         let partial = PartialFile::new(path)?;
         let file = create_defined(&plan, cycle, about, options, partial.path(), session)?;
+        let sink = match options.deflate_level {
+            Some(level) => Sink::for_compressed(file, &plan, partial.path(), level)?,
+            None => Sink::Library(file),
+        };
         let steps = plan.members * plan.times;
         Ok(Self {
             plan,
-            file,
+            sink,
             partial,
             reverse: cycle.levels_top_down_in_file,
             written: vec![0; steps],
@@ -280,7 +284,16 @@ impl HeightsWriter {
                 found: vec![band.dim.0, band.dim.1, band.dim.2],
             });
         }
-        let file = &mut self.file;
+        let file = match &mut self.sink {
+            Sink::Library(file) => file,
+            Sink::Chunks(chunks) => {
+                chunks.put_step(plan, (m, t), rows, band)?;
+                if let Some(w) = self.written.get_mut(m * plan.times + t) {
+                    *w += n;
+                }
+                return Ok(());
+            }
+        };
         let name = "geopotential_height";
         data_variable(file, plan, name)?
             .put_values(
@@ -352,7 +365,10 @@ impl HeightsWriter {
             staged.bytes.copy_within(p * room..p * room + run, p * run);
         }
         let name = "below_ground";
-        data_variable(&mut self.file, plan, name)?
+        let Sink::Library(file) = &mut self.sink else {
+            return Ok(());
+        };
+        data_variable(file, plan, name)?
             .put_values(
                 flag_bytes(&staged.bytes[..plan.levels * run]),
                 plan.row_extents(step, rows.clone(), true),
@@ -361,7 +377,7 @@ impl HeightsWriter {
         for (i, name) in plan.thickness_names.iter().enumerate() {
             let at = (plan.levels + i) * run;
             let flag_name = format!("{name}_below_ground");
-            data_variable(&mut self.file, plan, &flag_name)?
+            data_variable(file, plan, &flag_name)?
                 .put_values(
                     flag_bytes(&staged.bytes[at..at + run]),
                     plan.row_extents(step, rows.clone(), false),
@@ -379,7 +395,7 @@ impl HeightsWriter {
         self.write_staged()?;
         let Self {
             plan,
-            file,
+            sink,
             partial,
             written,
             ..
@@ -396,10 +412,193 @@ impl HeightsWriter {
                 found: vec![n],
             });
         }
-        file.close()
-            .map_err(plan.nc_error(format!("closing '{}'", partial.path().display())))?;
+        match sink {
+            Sink::Library(file) => file
+                .close()
+                .map_err(plan.nc_error(format!("closing '{}'", partial.path().display())))?,
+            Sink::Chunks(chunks) => {
+                if !chunks.writer.close() {
+                    return Err(chunk_error(&plan, "closing the file"));
+                }
+            }
+        }
         partial.commit()
     }
+}
+
+/// Where [`HeightsWriter`] puts its values.
+enum Sink {
+    /// Through the NetCDF library.
+    Library(netcdf::FileMut),
+    /// Compressed output: whole steps compressed here, a chunk a thread, and written as
+    /// stored chunks ([`ChunkSink`]).
+    Chunks(ChunkSink),
+}
+
+/// Compressed output written chunk by chunk: the NetCDF library defines the file (chunks
+/// of one latitude-longitude plane, the shuffle and deflate filters) and closes it, then
+/// each step's planes are shuffled (HDF5's byte shuffle: byte 0 of every value, then byte
+/// 1, ...) and deflated (zlib format, as HDF5's deflate filter stores it: RFC 1950/1951) on
+/// every core, and handed to HDF5 as stored chunks. The library compresses one chunk at a
+/// time on the thread that calls it: 1.69 s for the 0.5° cycle at level 1, three fifths of
+/// it in zlib.
+struct ChunkSink {
+    writer: crate::hdf5::ChunkWriter,
+    /// zlib level.
+    level: u8,
+    /// Per dataset (heights, flags, then per layer thickness and flags), whether the
+    /// shuffle filter comes first.
+    shuffled: Vec<bool>,
+}
+
+/// Data variables in the order [`ChunkSink`] opens them.
+fn data_variable_names(plan: &Plan) -> Vec<String> {
+    let mut names = vec![
+        "geopotential_height".to_string(),
+        "below_ground".to_string(),
+    ];
+    for name in &plan.thickness_names {
+        names.push(name.clone());
+        names.push(format!("{name}_below_ground"));
+    }
+    names
+}
+
+/// HDF5's filter identifiers (H5Zpublic.h).
+const FILTER_DEFLATE: i32 = 1;
+const FILTER_SHUFFLE: i32 = 2;
+
+fn chunk_error(plan: &Plan, what: &str) -> OutputError {
+    OutputError::Netcdf {
+        path: plan.path.clone(),
+        context: format!("writing compressed chunks: {what}"),
+        source: netcdf::Error::Str("refused by the HDF5 library".into()),
+    }
+}
+
+impl Sink {
+    /// The sink of a compressed output whose NetCDF definition is `file`: stored chunks
+    /// where every data variable's pipeline is deflate after an optional shuffle, else the
+    /// library (the file opened again).
+    fn for_compressed(
+        file: netcdf::FileMut,
+        plan: &Plan,
+        partial: &Path,
+        level: i32,
+    ) -> Result<Self, OutputError> {
+        file.close()
+            .map_err(plan.nc_error(format!("closing '{}'", partial.display())))?;
+        let names = data_variable_names(plan);
+        let refs: Vec<&str> = names.iter().map(String::as_str).collect();
+        let writer = crate::hdf5::ChunkWriter::open(partial, &refs);
+        let shuffled: Option<Vec<bool>> = writer.as_ref().and_then(|w| {
+            (0..names.len())
+                .map(|i| match w.filters(i)? {
+                    [FILTER_DEFLATE] => Some(false),
+                    [FILTER_SHUFFLE, FILTER_DEFLATE] => Some(true),
+                    _ => None,
+                })
+                .collect()
+        });
+        match (writer, shuffled, u8::try_from(level)) {
+            (Some(writer), Some(shuffled), Ok(level)) => Ok(Sink::Chunks(ChunkSink {
+                writer,
+                level,
+                shuffled,
+            })),
+            _ => netcdf::append(partial)
+                .map(Sink::Library)
+                .map_err(plan.nc_error(format!("opening '{}' again", partial.display()))),
+        }
+    }
+}
+
+impl ChunkSink {
+    /// Compresses and writes step (`m`, `t`), which `band` holds whole in the file's form.
+    fn put_step(
+        &self,
+        plan: &Plan,
+        (m, t): (usize, usize),
+        rows: std::ops::Range<usize>,
+        band: &FileRows,
+    ) -> Result<(), OutputError> {
+        if rows != (0..plan.rows) {
+            return Err(OutputError::Shape {
+                path: plan.path.clone(),
+                what: format!(
+                    "rows {}..{} of step ({m}, {t}) for compressed output, which takes whole steps",
+                    rows.start, rows.end
+                ),
+                expected: vec![plan.rows],
+                found: vec![rows.len()],
+            });
+        }
+        let plane = plan.rows * plan.cols;
+        let lead: Vec<u64> = if plan.members > 1 {
+            vec![m as u64, t as u64]
+        } else {
+            vec![t as u64]
+        };
+        let start = |level: Option<usize>| -> Vec<u64> {
+            let mut s = lead.clone();
+            s.extend(level.map(|k| k as u64));
+            s.extend([0, 0]);
+            s
+        };
+        // (dataset, chunk start, the plane's bytes: f32 values or flags).
+        enum Plane<'a> {
+            Values(&'a [f32]),
+            Flags(&'a [u8]),
+        }
+        let mut planes: Vec<(usize, Vec<u64>, Plane<'_>)> = Vec::new();
+        for k in 0..plan.levels {
+            let at = k * plane..(k + 1) * plane;
+            planes.push((0, start(Some(k)), Plane::Values(&band.heights[at.clone()])));
+            planes.push((1, start(Some(k)), Plane::Flags(&band.flags[at])));
+        }
+        for (i, (values, flags)) in band.thickness.iter().enumerate() {
+            planes.push((2 + 2 * i, start(None), Plane::Values(&values[..plane])));
+            planes.push((3 + 2 * i, start(None), Plane::Flags(&flags[..plane])));
+        }
+        let stored: Vec<Vec<u8>> = planes
+            .par_iter()
+            .map(|(dataset, _, data)| {
+                let bytes: Vec<u8> = match data {
+                    Plane::Values(v) if self.shuffled[*dataset] => shuffle_f32(v),
+                    Plane::Values(v) => v.iter().flat_map(|x| x.to_le_bytes()).collect(),
+                    // A shuffle of one-byte values leaves them as they are.
+                    Plane::Flags(f) => f.to_vec(),
+                };
+                miniz_oxide::deflate::compress_to_vec_zlib(&bytes, self.level)
+            })
+            .collect();
+        for ((dataset, start, _), bytes) in planes.iter().zip(&stored) {
+            if !self.writer.write(*dataset, start, bytes) {
+                return Err(chunk_error(plan, &format!("step ({m}, {t})")));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// The bytes of little-endian `values` as HDF5's shuffle filter stores them: byte 0 of every
+/// value, then byte 1, and so on.
+fn shuffle_f32(values: &[f32]) -> Vec<u8> {
+    let n = values.len();
+    let mut out = vec![0u8; 4 * n];
+    if n <= 1 {
+        // HDF5 leaves a chunk of one value unshuffled.
+        out.copy_from_slice(&values.first().map(|v| v.to_le_bytes()).unwrap_or_default()[..4 * n]);
+        return out;
+    }
+    let (b0, rest) = out.split_at_mut(n);
+    let (b1, rest) = rest.split_at_mut(n);
+    let (b2, b3) = rest.split_at_mut(n);
+    for (i, v) in values.iter().enumerate() {
+        let [x0, x1, x2, x3] = v.to_le_bytes();
+        (b0[i], b1[i], b2[i], b3[i]) = (x0, x1, x2, x3);
+    }
+    out
 }
 
 /// One band of latitude rows of one step, written by [`HeightsWriter::put_rows`]: the

@@ -10,7 +10,7 @@
 //! writes, or tiles of them, as netCDF-C's default chunking makes), stored as little-endian
 //! `f32` behind the HDF5 deflate filter, the byte-shuffle filter, both or neither,
 //! [`StepChunks`] reads a step's chunks at the offsets HDF5 reports
-//! ([`super::hdf5::chunk_layout`]), inflates them (zlib format, as the deflate filter writes
+//! ([`crate::hdf5::chunk_layout`]), inflates them (zlib format, as the deflate filter writes
 //! it: RFC 1950/1951) and undoes the shuffle (HDF5's byte shuffle: byte `j` of every value
 //! in turn, then byte `j + 1`), each block of levels on its own thread. Any other layout or
 //! filter (Fletcher-32, szip, chunks across steps, chunks never written) goes through the
@@ -24,8 +24,8 @@ use std::sync::Arc;
 
 use rayon::prelude::*;
 
-use super::hdf5::{chunk_layout, StoredChunk};
 use super::IngestError;
+use crate::hdf5::{chunk_layout, StoredChunk};
 
 /// HDF5's deflate (zlib) filter.
 const FILTER_DEFLATE: i32 = 1;

@@ -13,8 +13,6 @@ mod chunks;
 pub mod classic;
 /// Reading one variable: masking, unpacking, conversion, axis order.
 mod field;
-/// HDF5 error printing, kept off on every reading thread.
-mod hdf5;
 /// The name map and the dataset config file.
 pub mod names;
 /// Finding variables and reading them into a cycle.
@@ -298,7 +296,7 @@ fn checked_label(path: &Path) -> Result<String, IngestError> {
 /// Opens the file with HDF5's error printing off on this thread (the caller holds the
 /// session lock).
 fn open_quietly(path: &Path, label: &str) -> Result<netcdf::File, IngestError> {
-    hdf5::quiet_on_this_thread();
+    crate::hdf5::quiet_on_this_thread();
     netcdf::open(path).map_err(|e| IngestError::Damaged {
         file: label.to_string(),
         detail: e.to_string().to_lowercase(),

@@ -151,38 +151,14 @@ pub(crate) fn chunk_layout(
 /// `dset` is an open dataset identifier of `rank` dimensions, and the caller holds the
 /// NetCDF session.
 unsafe fn dataset_chunks(dset: Hid, rank: usize) -> Option<(Vec<i32>, Vec<StoredChunk>)> {
-    let plist = H5Dget_create_plist(dset);
-    if plist < 0 {
-        return None;
-    }
-    let count = H5Pget_nfilters(plist);
-    let mut filters = Vec::new();
-    for i in 0..u32::try_from(count).unwrap_or(0) {
-        let (mut flags, mut nelmts, mut config) = (0u32, 0usize, 0u32);
-        let id = H5Pget_filter2(
-            plist,
-            i,
-            &mut flags,
-            &mut nelmts,
-            std::ptr::null_mut(),
-            0,
-            std::ptr::null_mut(),
-            &mut config,
-        );
-        filters.push(id);
-    }
-    H5Pclose(plist);
-    if count < 0 || filters.iter().any(|&id| id < 0) {
-        return None;
-    }
+    let filters = pipeline(dset)?;
     let space = H5Dget_space(dset);
     if space < 0 {
         return None;
     }
     let mut chunks = Vec::new();
     let mut n = 0u64;
-    let mut ok = usize::try_from(H5Sget_simple_extent_ndims(space)).ok() == Some(rank)
-        && H5Dget_num_chunks(dset, space, &mut n) >= 0;
+    let mut ok = dataset_rank(dset) == Some(rank) && H5Dget_num_chunks(dset, space, &mut n) >= 0;
     let mut i = 0;
     while ok && i < n {
         let mut start = vec![0u64; rank];
@@ -207,4 +183,168 @@ unsafe fn dataset_chunks(dset: Hid, rank: usize) -> Option<(Vec<i32>, Vec<Stored
     }
     H5Sclose(space);
     ok.then_some((filters, chunks))
+}
+
+/// `H5F_ACC_RDWR`.
+const H5F_ACC_RDWR: std::ffi::c_uint = 1;
+
+extern "C" {
+    /// `herr_t H5Dwrite_chunk(hid_t dset_id, hid_t dxpl_id, uint32_t filters,
+    /// const hsize_t *offset, size_t data_size, const void *buf)` (HDF5 1.10.3 and later).
+    fn H5Dwrite_chunk(
+        dset: Hid,
+        dxpl: Hid,
+        filters: u32,
+        offset: *const u64,
+        data_size: usize,
+        buf: *const std::ffi::c_void,
+    ) -> i32;
+}
+
+/// Datasets of a NetCDF-4 file that the NetCDF library has defined and closed, open in HDF5
+/// to take chunks already passed through their filter pipeline
+/// ([`ChunkWriter::write`]). Closed on drop.
+pub(crate) struct ChunkWriter {
+    file: Hid,
+    /// Each dataset's identifier, its rank and its filter pipeline.
+    datasets: Vec<(Hid, usize, Vec<i32>)>,
+}
+
+impl ChunkWriter {
+    /// Opens the file at `path` for writing and the root-group datasets `names`; `None`
+    /// when any does not open or its layout cannot be read. The caller holds the NetCDF
+    /// session.
+    pub(crate) fn open(path: &std::path::Path, names: &[&str]) -> Option<Self> {
+        use std::os::unix::ffi::OsStrExt;
+        let c_path = std::ffi::CString::new(path.as_os_str().as_bytes()).ok()?;
+        quiet_on_this_thread();
+        // SAFETY: a NUL-terminated path and default property lists; the identifier is
+        // closed by `Drop` from here on.
+        let file = unsafe { H5Fopen(c_path.as_ptr(), H5F_ACC_RDWR, H5P_DEFAULT) };
+        if file < 0 {
+            return None;
+        }
+        let mut writer = Self {
+            file,
+            datasets: Vec::with_capacity(names.len()),
+        };
+        for name in names {
+            let c_name = std::ffi::CString::new(*name).ok()?;
+            // SAFETY: an open file and a NUL-terminated name; the dataset is closed by
+            // `Drop` once pushed below.
+            let dset = unsafe { H5Dopen2(file, c_name.as_ptr(), H5P_DEFAULT) };
+            if dset < 0 {
+                return None;
+            }
+            // Pushed first, so that `Drop` closes it whatever follows.
+            writer.datasets.push((dset, 0, Vec::new()));
+            // SAFETY: `dset` is open; it is queried, not changed.
+            let (rank, filters) = unsafe { (dataset_rank(dset), pipeline(dset)) };
+            let (Some(rank), Some(filters)) = (rank, filters) else {
+                return None;
+            };
+            if let Some(last) = writer.datasets.last_mut() {
+                *last = (dset, rank, filters);
+            }
+        }
+        Some(writer)
+    }
+
+    /// The filter pipeline of dataset `index` (HDF5 filter identifiers in the order they
+    /// apply on writing).
+    pub(crate) fn filters(&self, index: usize) -> Option<&[i32]> {
+        self.datasets.get(index).map(|(_, _, f)| f.as_slice())
+    }
+
+    /// Writes `bytes`, a chunk already through every filter of the pipeline, as the chunk of
+    /// dataset `index` that starts at `start` (one index a dimension). False when HDF5
+    /// refuses it.
+    pub(crate) fn write(&self, index: usize, start: &[u64], bytes: &[u8]) -> bool {
+        let Some(&(dset, rank, _)) = self.datasets.get(index) else {
+            return false;
+        };
+        if start.len() != rank {
+            return false;
+        }
+        // SAFETY: an open dataset, `start` of the dataset's rank and `bytes` valid for its
+        // length; HDF5 copies what it writes before returning.
+        unsafe {
+            H5Dwrite_chunk(
+                dset,
+                H5P_DEFAULT,
+                0,
+                start.as_ptr(),
+                bytes.len(),
+                bytes.as_ptr().cast(),
+            ) >= 0
+        }
+    }
+
+    /// Closes the datasets and the file; false when HDF5 reports a failure (the data may not
+    /// all be on disk).
+    pub(crate) fn close(mut self) -> bool {
+        self.close_all()
+    }
+
+    fn close_all(&mut self) -> bool {
+        let mut ok = true;
+        for (dset, _, _) in self.datasets.drain(..) {
+            // SAFETY: each dataset identifier was opened once and is closed once.
+            ok &= unsafe { H5Dclose(dset) } >= 0;
+        }
+        if self.file >= 0 {
+            // SAFETY: the file identifier was opened once and is closed once.
+            ok &= unsafe { H5Fclose(self.file) } >= 0;
+            self.file = -1;
+        }
+        ok
+    }
+}
+
+impl Drop for ChunkWriter {
+    fn drop(&mut self) {
+        self.close_all();
+    }
+}
+
+/// The rank of an open dataset, `None` when it cannot be read.
+///
+/// # Safety
+/// `dset` is an open dataset identifier and the caller holds the NetCDF session.
+unsafe fn dataset_rank(dset: Hid) -> Option<usize> {
+    let space = H5Dget_space(dset);
+    if space < 0 {
+        return None;
+    }
+    let rank = H5Sget_simple_extent_ndims(space);
+    H5Sclose(space);
+    usize::try_from(rank).ok()
+}
+
+/// The filter pipeline of an open dataset, `None` when it cannot be read.
+///
+/// # Safety
+/// `dset` is an open dataset identifier and the caller holds the NetCDF session.
+unsafe fn pipeline(dset: Hid) -> Option<Vec<i32>> {
+    let plist = H5Dget_create_plist(dset);
+    if plist < 0 {
+        return None;
+    }
+    let count = H5Pget_nfilters(plist);
+    let mut filters = Vec::new();
+    for i in 0..u32::try_from(count).unwrap_or(0) {
+        let (mut flags, mut nelmts, mut config) = (0u32, 0usize, 0u32);
+        filters.push(H5Pget_filter2(
+            plist,
+            i,
+            &mut flags,
+            &mut nelmts,
+            std::ptr::null_mut(),
+            0,
+            std::ptr::null_mut(),
+            &mut config,
+        ));
+    }
+    H5Pclose(plist);
+    (count >= 0 && filters.iter().all(|&id| id >= 0)).then_some(filters)
 }
