@@ -311,6 +311,76 @@ fn chunks_across_time_steps_are_read_whole() {
     }
 }
 
+/// Fields deflated in chunks of one step (whole planes, or tiles with short edges) are read
+/// step by step chunk by chunk, inflated in parallel without the library: the same cycle as
+/// the library's whole read, for every member, step, level order, masked point and packing
+/// (packed fields stay with the library).
+#[test]
+fn deflated_steps_read_as_the_library_reads_them() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    let variants: [(&str, Option<[usize; 3]>, FixtureSpec); 4] = [
+        (
+            "planes",
+            Some([1, usize::MAX, usize::MAX]),
+            FixtureSpec {
+                time_steps: Some(3),
+                ..FixtureSpec::default()
+            },
+        ),
+        (
+            "tiles-members-top-down-masked",
+            Some([3, 2, 3]),
+            FixtureSpec {
+                members: Some(2),
+                time_steps: Some(2),
+                levels_top_down: true,
+                masked_points: vec![[1, 1, 2, 3, 5]],
+                ..FixtureSpec::default()
+            },
+        ),
+        (
+            "one-chunk-a-step",
+            Some([usize::MAX, usize::MAX, usize::MAX]),
+            FixtureSpec {
+                time_steps: Some(2),
+                ..FixtureSpec::default()
+            },
+        ),
+        (
+            "packed",
+            Some([1, usize::MAX, usize::MAX]),
+            FixtureSpec {
+                time_steps: Some(2),
+                packed: true,
+                ..FixtureSpec::default()
+            },
+        ),
+    ];
+    for (label, tiles, spec) in variants {
+        // Tile lengths no longer than the fixture's axes.
+        let (levels, rows, cols) = (
+            spec.levels(),
+            spec.latitudes().len(),
+            spec.longitudes().len(),
+        );
+        let spec = FixtureSpec {
+            deflate_tiles: tiles.map(|[z, y, x]| [z.min(levels), y.min(rows), x.min(cols)]),
+            ..spec
+        };
+        let path = write(dir.path(), label, &spec);
+        let (cycle, fed) =
+            read_cycle_overlapped(&path, &ingest, |_| Some(()), |(), _, steps| steps.count())
+                .expect(label);
+        assert_eq!(
+            fed,
+            Some(spec.member_count() * spec.time_count()),
+            "{label}: read step by step"
+        );
+        same_cycle(label, &read_cycle(&path, &ingest).expect(label), &cycle);
+    }
+}
+
 /// Writes `value` into variable `name` at `index` of an existing fixture file.
 fn overwrite(path: &Path, name: &str, index: &[usize], value: f32) {
     let mut file = netcdf::append(path).expect("opening the fixture for append");

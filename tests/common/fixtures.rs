@@ -251,6 +251,9 @@ pub struct FixtureSpec {
     /// NetCDF-4: store float fields in chunks of one level plane holding every member and
     /// time step (else the library's default layout).
     pub chunks_across_steps: bool,
+    /// NetCDF-4: store float fields deflated (level 1, shuffled) in chunks of one member and
+    /// one time step, tiled as `[level, lat, lon]` lengths (`None`: not compressed).
+    pub deflate_tiles: Option<[usize; 3]>,
     /// Faults for error tests.
     pub faults: Faults,
 }
@@ -279,6 +282,7 @@ impl Default for FixtureSpec {
             near_surface_decoys: false,
             transpose_dims: false,
             chunks_across_steps: false,
+            deflate_tiles: None,
             faults: Faults::default(),
         }
     }
@@ -1218,6 +1222,19 @@ impl FixtureSpec {
                     })
                     .collect();
                 v.set_chunking(&chunks)?;
+            }
+            if let (Some([lz, ly, lx]), Format::Netcdf4) = (self.deflate_tiles, self.format) {
+                let chunks: Vec<usize> = dims
+                    .iter()
+                    .map(|d| match d {
+                        Dim::Level(_) => lz,
+                        Dim::Lat(_) => ly,
+                        Dim::Lon(_) => lx,
+                        _ => 1,
+                    })
+                    .collect();
+                v.set_chunking(&chunks)?;
+                v.set_compression(1, true)?;
             }
             match self.mask {
                 MaskEncoding::FillValue => {
