@@ -163,11 +163,67 @@ pub fn write_heights(
         layers: &layers,
     };
     let mut file = create_defined(&plan, cycle, &about, options, partial.path(), &session)?;
+    if let Some(level) = options.deflate_level {
+        match Sink::for_compressed(file, &plan, partial.path(), level)? {
+            Sink::Chunks(chunks) => {
+                write_chunks(&chunks, &plan, cycle, heights)?;
+                if !chunks.writer.close() {
+                    return Err(chunk_error(&plan, "closing the file"));
+                }
+                drop(session);
+                return partial.commit();
+            }
+            Sink::Library(reopened) => file = reopened,
+        }
+    }
     write_data(&mut file, &plan, cycle, heights)?;
     file.close()
         .map_err(plan.nc_error(format!("closing '{}'", partial.path().display())))?;
     drop(session);
     partial.commit()
+}
+
+/// [`write_data`] for compressed output written as stored chunks ([`ChunkSink`]): each step
+/// copied into the file's form, then compressed and written.
+fn write_chunks(
+    chunks: &ChunkSink,
+    plan: &Plan,
+    cycle: &Cycle,
+    heights: &Heights,
+) -> Result<(), OutputError> {
+    let dim = (plan.levels, plan.rows, plan.cols);
+    let mut band = FileRows::new(dim, heights.thickness.len());
+    for m in 0..plan.members {
+        for t in 0..plan.times {
+            let fields = band.fields_mut(dim).ok_or_else(|| OutputError::Shape {
+                path: plan.path.clone(),
+                what: "the step buffers".into(),
+                expected: vec![dim.0, dim.1, dim.2],
+                found: vec![],
+            })?;
+            let z = heights.geopotential_height.slice(s![m, t, .., .., ..]);
+            let b = heights.below_ground.slice(s![m, t, .., .., ..]);
+            for (to, from) in fields.heights.iter_mut().zip(z.iter()) {
+                *to = *from;
+            }
+            for (to, from) in fields.flags.iter_mut().zip(b.iter()) {
+                *to = *from;
+            }
+            for ((values, flags), layer) in fields.thickness.into_iter().zip(&heights.thickness) {
+                let v = layer.values.slice(s![m, t, .., ..]);
+                let f = layer.below_ground.slice(s![m, t, .., ..]);
+                for (to, from) in values.iter_mut().zip(v.iter()) {
+                    *to = *from;
+                }
+                for (to, from) in flags.iter_mut().zip(f.iter()) {
+                    *to = *from;
+                }
+            }
+            band.to_file_form(cycle.levels_top_down_in_file);
+            chunks.put_step(plan, (m, t), 0..plan.rows, &band)?;
+        }
+    }
+    Ok(())
 }
 
 /// An output file being written band by band: everything defined (as [`write_heights`]
