@@ -348,3 +348,98 @@ unsafe fn pipeline(dset: Hid) -> Option<Vec<i32>> {
     H5Pclose(plist);
     (count >= 0 && filters.iter().all(|&id| id >= 0)).then_some(filters)
 }
+
+/// HDF5's deflate (zlib) filter (`H5Z_FILTER_DEFLATE`).
+const FILTER_DEFLATE: i32 = 1;
+/// HDF5's byte-shuffle filter (`H5Z_FILTER_SHUFFLE`).
+const FILTER_SHUFFLE: i32 = 2;
+
+/// A filter pipeline of at most the byte shuffle, then deflate: where each stands in it (the
+/// bit of a chunk's filter mask that says it was skipped).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub(crate) struct Pipeline {
+    pub(crate) shuffle: Option<usize>,
+    pub(crate) deflate: Option<usize>,
+}
+
+impl Pipeline {
+    /// The pipeline of these filter identifiers (in the order they apply on writing), `None`
+    /// when it holds any other filter, or the shuffle after deflate.
+    pub(crate) fn of(filters: &[i32]) -> Option<Self> {
+        let mut p = Self::default();
+        for (i, id) in filters.iter().enumerate() {
+            match *id {
+                FILTER_SHUFFLE if p.shuffle.is_none() && p.deflate.is_none() => p.shuffle = Some(i),
+                FILTER_DEFLATE if p.deflate.is_none() => p.deflate = Some(i),
+                _ => return None,
+            }
+        }
+        Some(p)
+    }
+}
+
+/// The bytes of little-endian `values` as HDF5's shuffle filter stores them: byte 0 of every
+/// value, then byte 1, and so on (a single value stays as it is).
+pub(crate) fn shuffle_f32(values: &[f32]) -> Vec<u8> {
+    let n = values.len();
+    if n <= 1 {
+        return values.iter().flat_map(|v| v.to_le_bytes()).collect();
+    }
+    let mut out = vec![0u8; 4 * n];
+    let (b0, rest) = out.split_at_mut(n);
+    let (b1, rest) = rest.split_at_mut(n);
+    let (b2, b3) = rest.split_at_mut(n);
+    for (i, v) in values.iter().enumerate() {
+        let [x0, x1, x2, x3] = v.to_le_bytes();
+        (b0[i], b1[i], b2[i], b3[i]) = (x0, x1, x2, x3);
+    }
+    out
+}
+
+/// The first `out.len()` values of a chunk of `data.len() / 4` little-endian `f32` that
+/// [`shuffle_f32`]'s order holds (the inverse).
+pub(crate) fn unshuffle_f32(data: &[u8], out: &mut [f32]) {
+    let e = data.len() / 4;
+    let (b0, rest) = data.split_at(e);
+    let (b1, rest) = rest.split_at(e);
+    let (b2, b3) = rest.split_at(e);
+    let n = out.len().min(e);
+    let (b0, b1, b2, b3) = (&b0[..n], &b1[..n], &b2[..n], &b3[..n]);
+    for (i, v) in out[..n].iter_mut().enumerate() {
+        *v = f32::from_le_bytes([b0[i], b1[i], b2[i], b3[i]]);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn pipelines_of_shuffle_and_deflate_only() {
+        let p = |shuffle, deflate| Some(Pipeline { shuffle, deflate });
+        assert_eq!(Pipeline::of(&[]), p(None, None));
+        assert_eq!(Pipeline::of(&[2, 1]), p(Some(0), Some(1)));
+        assert_eq!(Pipeline::of(&[1]), p(None, Some(0)));
+        assert_eq!(Pipeline::of(&[2]), p(Some(0), None));
+        // Shuffle after deflate, Fletcher-32, szip, a filter twice.
+        for other in [&[1, 2][..], &[3, 1], &[4], &[1, 1]] {
+            assert_eq!(Pipeline::of(other), None, "{other:?}");
+        }
+    }
+
+    #[test]
+    fn shuffling_groups_bytes_by_significance_and_unshuffling_undoes_it() {
+        let values = [1.5f32, -2.25, f32::NAN, 3.0e-39];
+        let shuffled = shuffle_f32(&values);
+        let bytes: Vec<[u8; 4]> = values.iter().map(|v| v.to_le_bytes()).collect();
+        for (j, group) in shuffled.chunks_exact(values.len()).enumerate() {
+            let want: Vec<u8> = bytes.iter().map(|b| b[j]).collect();
+            assert_eq!(group, want.as_slice(), "byte {j}");
+        }
+        let mut back = [0f32; 4];
+        unshuffle_f32(&shuffled, &mut back);
+        let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        assert_eq!(bits(&back), bits(&values));
+        assert_eq!(shuffle_f32(&[7.0]), 7.0f32.to_le_bytes().to_vec());
+    }
+}

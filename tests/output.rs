@@ -515,18 +515,23 @@ fn compressed_output_reads_back_the_same_values() {
     );
 }
 
+/// The error of writing the test cycle's heights to `path`, which must fail.
+fn write_error(path: &Path) -> OutputError {
+    write_heights(
+        &cycle(MEMBERS, None),
+        &heights(MEMBERS),
+        path,
+        &options("x"),
+    )
+    .unwrap_err()
+}
+
 #[test]
 fn a_missing_directory_is_named_and_nothing_is_created() {
     let dir = tempfile::tempdir().unwrap();
     let missing = dir.path().join("no").join("such");
     let path = missing.join("out.nc");
-    let err = write_heights(
-        &cycle(MEMBERS, None),
-        &heights(MEMBERS),
-        &path,
-        &options("x"),
-    )
-    .unwrap_err();
+    let err = write_error(&path);
     assert!(
         matches!(err, OutputError::MissingDirectory { .. }),
         "{err:?}"
@@ -866,13 +871,7 @@ fn the_band_writer_keeps_flags_for_longer_runs_and_loses_none() {
 fn a_backslash_in_the_path_is_refused_with_the_reason() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("thickness\\2030.nc");
-    let err = write_heights(
-        &cycle(MEMBERS, None),
-        &heights(MEMBERS),
-        &path,
-        &options("x"),
-    )
-    .unwrap_err();
+    let err = write_error(&path);
     assert!(matches!(err, OutputError::Backslash { .. }), "{err:?}");
     let message = err.to_string();
     assert!(message.contains(&path.display().to_string()), "{message}");

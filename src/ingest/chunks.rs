@@ -25,12 +25,7 @@ use std::sync::Arc;
 use rayon::prelude::*;
 
 use super::IngestError;
-use crate::hdf5::{chunk_layout, StoredChunk};
-
-/// HDF5's deflate (zlib) filter.
-const FILTER_DEFLATE: i32 = 1;
-/// HDF5's byte-shuffle filter.
-const FILTER_SHUFFLE: i32 = 2;
+use crate::hdf5::{chunk_layout, unshuffle_f32, Pipeline, StoredChunk};
 
 /// Where each stored chunk of a variable's steps lies, for [`StepChunks::read_step`].
 #[derive(Debug)]
@@ -44,9 +39,8 @@ pub(crate) struct StepChunks {
     tile: [usize; 3],
     /// Chunks along the level, latitude and longitude axes.
     across: [usize; 3],
-    /// Position of the shuffle and deflate filters in the pipeline, where present.
-    shuffle: Option<usize>,
-    deflate: Option<usize>,
+    /// Where the shuffle and deflate filters stand in the pipeline.
+    pipeline: Pipeline,
     /// The chunks of every step in order: index `((step * across[0] + k) * across[1] + y)
     /// * across[2] + x` for the chunk starting at level `k * tile[0]`, row `y * tile[1]`,
     /// column `x * tile[2]`.
@@ -111,14 +105,7 @@ impl StepChunks {
         ];
         let rank = var.present.iter().filter(|p| **p).count();
         let (filters, stored) = chunk_layout(path, &var.name, rank)?;
-        let (mut shuffle, mut deflate) = (None, None);
-        for (i, id) in filters.iter().enumerate() {
-            match *id {
-                FILTER_SHUFFLE if shuffle.is_none() && deflate.is_none() => shuffle = Some(i),
-                FILTER_DEFLATE if deflate.is_none() => deflate = Some(i),
-                _ => return None,
-            }
-        }
+        let pipeline = Pipeline::of(&filters)?;
         let per_step = across.iter().product::<usize>();
         let mut chunks: Vec<Option<StoredChunk>> = vec![None; members * times * per_step];
         for c in stored {
@@ -152,8 +139,7 @@ impl StepChunks {
             shape: var.shape,
             tile,
             across,
-            shuffle,
-            deflate,
+            pipeline,
             chunks,
         })
     }
@@ -275,7 +261,7 @@ impl StepChunks {
             filter.is_some_and(|i| i >= 32 || chunk.filter_mask & (1 << i) == 0)
         };
         let bytes = 4 * self.chunk_values();
-        let data: &[u8] = if applied(self.deflate) {
+        let data: &[u8] = if applied(self.pipeline.deflate) {
             inflated.resize(bytes, 0);
             let n = miniz_oxide::inflate::decompress_slice_iter_to_slice(
                 inflated,
@@ -302,7 +288,7 @@ impl StepChunks {
         }
         values.resize(self.chunk_values(), 0.0);
         // HDF5 leaves a chunk of a single value unshuffled.
-        if applied(self.shuffle) && self.chunk_values() > 1 {
+        if applied(self.pipeline.shuffle) && self.chunk_values() > 1 {
             unshuffle_f32(data, values);
         } else {
             for (v, b) in values.iter_mut().zip(data.chunks_exact(4)) {
@@ -318,21 +304,6 @@ impl StepChunks {
             variable: self.variable.clone(),
             detail,
         }
-    }
-}
-
-/// The first `out.len()` values of a chunk of `data.len() / 4` little-endian `f32` whose
-/// bytes HDF5's shuffle filter grouped by significance: byte 0 of every value, then byte 1,
-/// and so on.
-fn unshuffle_f32(data: &[u8], out: &mut [f32]) {
-    let e = data.len() / 4;
-    let (b0, rest) = data.split_at(e);
-    let (b1, rest) = rest.split_at(e);
-    let (b2, b3) = rest.split_at(e);
-    let n = out.len().min(e);
-    let (b0, b1, b2, b3) = (&b0[..n], &b1[..n], &b2[..n], &b3[..n]);
-    for (i, v) in out[..n].iter_mut().enumerate() {
-        *v = f32::from_le_bytes([b0[i], b1[i], b2[i], b3[i]]);
     }
 }
 

@@ -584,15 +584,14 @@ fn read_narrow_in_bands(
     // The split dimension `d` (of `rest`): the first whose trailing dimensions fit a band.
     let split = (0..rest.len()).find(|&d| rest[d + 1..].iter().product::<usize>() <= band);
     let (Some(d), true) = (split, contiguous) else {
-        let read = if fixed.is_empty() {
+        if fixed.is_empty() {
             read_in_chunk_slabs((file, var, shape), out)?;
-            Ok(())
         } else {
             let mut extents: Vec<Extent> = fixed.iter().map(|&i| one(i)).collect();
             extents.extend(rest.iter().map(|&n| Extent::from(0..n)));
             var.get_values_into::<f32, _>(out, extents)
-        };
-        read.map_err(|e| read_error(file, var, e))?;
+                .map_err(|e| read_error(file, var, e))?;
+        }
         return Ok(decoder.decode_narrow_in_place(out, limits));
     };
     let inner: usize = rest[d + 1..].iter().product();
