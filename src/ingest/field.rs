@@ -1004,9 +1004,10 @@ impl<'f> StepwiseField<'f> {
         let Some(own) = own else {
             return;
         };
-        let little = matches!(self.var.endianness(), Ok(netcdf::Endianness::Little))
-            || (cfg!(target_endian = "little")
-                && matches!(self.var.endianness(), Ok(netcdf::Endianness::Native)));
+        let little = matches!(
+            (self.var.endianness(), cfg!(target_endian = "little")),
+            (Ok(netcdf::Endianness::Little), _) | (Ok(netcdf::Endianness::Native), true)
+        );
         let Ok(Some(chunk_dims)) = self.var.chunking() else {
             return;
         };
