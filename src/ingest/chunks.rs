@@ -61,12 +61,23 @@ pub(crate) struct ChunkedVariable<'a> {
     pub(crate) chunk_dims: &'a [usize],
 }
 
-/// Scratch buffers of one thread: a chunk as stored, inflated, and as values.
-#[derive(Default)]
+/// Scratch of one thread: a chunk as stored, inflated, and as values, and the inflater.
 struct Scratch {
     packed: Vec<u8>,
     inflated: Vec<u8>,
     values: Vec<f32>,
+    inflater: libdeflater::Decompressor,
+}
+
+impl Scratch {
+    fn new() -> Self {
+        Self {
+            packed: Vec::new(),
+            inflated: Vec::new(),
+            values: Vec::new(),
+            inflater: libdeflater::Decompressor::new(),
+        }
+    }
 }
 
 impl StepChunks {
@@ -162,8 +173,8 @@ impl StepChunks {
         if out.len() != lz * ly * lx {
             return Err(self.error(format!("the first chunk does not fit {} values", out.len())));
         }
-        let mut scratch = Scratch::default();
-        self.read_chunk(0, &mut scratch)?;
+        let mut scratch = Scratch::new();
+        self.read_chunk(0, &mut scratch, None)?;
         let [_, ty, tx] = self.tile;
         for (l, plane) in out.chunks_exact_mut((ly * lx).max(1)).enumerate() {
             for (r, row) in plane.chunks_exact_mut(lx.max(1)).enumerate() {
@@ -200,7 +211,7 @@ impl StepChunks {
         let per_block = self.tile[0] * rows * cols;
         out.par_chunks_mut(per_block.max(1))
             .enumerate()
-            .try_for_each_init(Scratch::default, |scratch, (block, region)| {
+            .try_for_each_init(Scratch::new, |scratch, (block, region)| {
                 self.read_block(step, block, region, scratch)
             })
     }
@@ -219,10 +230,15 @@ impl StepChunks {
         let [kb, yb, xb] = self.across;
         let plane = rows * cols;
         let levels_here = region.len() / plane.max(1);
+        if yb == 1 && xb == 1 && region.len() == self.chunk_values() {
+            // A chunk of whole planes, all of them in the variable: straight into place.
+            let index = (step * kb + block) * yb * xb;
+            return self.read_chunk(index, scratch, Some(region));
+        }
         for y in 0..yb {
             for x in 0..xb {
                 let index = ((step * kb + block) * yb + y) * xb + x;
-                self.read_chunk(index, scratch)?;
+                self.read_chunk(index, scratch, None)?;
                 let (r0, c0) = (y * ty, x * tx);
                 let (height, width) = (ty.min(rows - r0), tx.min(cols - c0));
                 for l in 0..levels_here {
@@ -237,12 +253,19 @@ impl StepChunks {
         Ok(())
     }
 
-    /// Chunk `index` as values into `scratch.values` (the whole chunk as stored).
-    fn read_chunk(&self, index: usize, scratch: &mut Scratch) -> Result<(), IngestError> {
+    /// Chunk `index` as values into `into` when given (of the chunk's length), else into
+    /// `scratch.values` (the whole chunk as stored).
+    fn read_chunk(
+        &self,
+        index: usize,
+        scratch: &mut Scratch,
+        into: Option<&mut [f32]>,
+    ) -> Result<(), IngestError> {
         let Scratch {
             packed,
             inflated,
             values,
+            inflater,
         } = scratch;
         let chunk = self
             .chunks
@@ -263,18 +286,14 @@ impl StepChunks {
         let bytes = 4 * self.chunk_values();
         let data: &[u8] = if applied(self.pipeline.deflate) {
             inflated.resize(bytes, 0);
-            let n = miniz_oxide::inflate::decompress_slice_iter_to_slice(
-                inflated,
-                std::iter::once(packed.as_slice()),
-                true,
-                false,
-            )
-            .map_err(|status| {
-                self.error(format!(
-                    "the chunk at byte {} does not inflate ({status:?})",
-                    chunk.addr
-                ))
-            })?;
+            let n = inflater
+                .zlib_decompress(packed, inflated)
+                .map_err(|status| {
+                    self.error(format!(
+                        "the chunk at byte {} does not inflate ({status:?})",
+                        chunk.addr
+                    ))
+                })?;
             &inflated[..n]
         } else {
             packed
@@ -286,7 +305,13 @@ impl StepChunks {
                 data.len()
             )));
         }
-        values.resize(self.chunk_values(), 0.0);
+        let values = match into {
+            Some(into) => into,
+            None => {
+                values.resize(self.chunk_values(), 0.0);
+                values.as_mut_slice()
+            }
+        };
         // HDF5 leaves a chunk of a single value unshuffled.
         if applied(self.pipeline.shuffle) && self.chunk_values() > 1 {
             unshuffle_f32(data, values);
