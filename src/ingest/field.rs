@@ -13,6 +13,7 @@
 
 use netcdf::types::{FloatType, IntType, NcVariableType};
 use netcdf::{AttributeValue, Extent, Variable};
+use rayon::prelude::*;
 
 use super::units::Linear;
 use super::IngestError;
@@ -1113,7 +1114,18 @@ impl BandDecoding {
     /// plausibility test and level reversal as a whole-variable read. On an implausible value
     /// returns its index in the band as read, before any reversal.
     pub(crate) fn decode(&self, band: &mut [f32]) -> Result<(), usize> {
-        if let Some(i) = self.decoder.decode_narrow_in_place(band, self.limits) {
+        // In pieces on the caller's pool: a whole step of a chunked cycle is decoded at
+        // once, 10 ms of the 0.5° cycle on one core.
+        const PIECE: usize = 1 << 18;
+        let bad = band
+            .par_chunks_mut(PIECE)
+            .enumerate()
+            .filter_map(|(n, piece)| {
+                let i = self.decoder.decode_narrow_in_place(piece, self.limits)?;
+                Some(n * PIECE + i)
+            })
+            .min();
+        if let Some(i) = bad {
             return Err(i);
         }
         if self.reverse_levels && self.levels > 0 {
@@ -1326,6 +1338,64 @@ mod tests {
             read_in_chunk_slabs(("f.nc", &var, &shape), &mut got).expect("read");
             let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
             assert_eq!(bits(&got), bits(&written), "chunks {chunks:?}");
+        }
+    }
+
+    /// A band long enough to be decoded in pieces on several threads decodes as one pass
+    /// does (values, the first implausible index over all pieces, the level reversal).
+    #[test]
+    fn long_bands_decode_in_pieces_as_one_pass() {
+        let decoder = Decoder {
+            fills: vec![7.0],
+            raw_min: None,
+            raw_max: None,
+            compare_as_f32: true,
+            linear: Linear {
+                scale: 0.5,
+                offset: 100.0,
+            },
+        };
+        let limits = Some(Limits {
+            lo: 100.0,
+            hi: 2000.0,
+            floor: 100.0,
+        });
+        let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        // Three levels of 300,001 values: pieces of 2^18 cut across levels.
+        let (levels, plane) = (3usize, 300_001usize);
+        let raw: Vec<f32> = (0..levels * plane).map(|i| (i % 3000) as f32).collect();
+        for bad_at in [
+            vec![],
+            vec![5],
+            vec![(1 << 18) + 9, 2 * (1 << 18) + 1],
+            vec![899_000],
+        ] {
+            for reverse_levels in [false, true] {
+                let label = format!("bad at {bad_at:?}, reversed {reverse_levels}");
+                let mut band = raw.clone();
+                for &i in &bad_at {
+                    band[i] = 5000.0;
+                }
+                let mut want = band.clone();
+                let want_bad = decoder.decode_narrow_in_place(&mut want, limits);
+                if reverse_levels {
+                    reverse_axis_in_place(&mut want, 1, levels, plane);
+                }
+                let decoding = BandDecoding {
+                    decoder: decoder.clone(),
+                    limits,
+                    reverse_levels,
+                    levels,
+                };
+                match decoding.decode(&mut band) {
+                    Ok(()) => {
+                        assert_eq!(want_bad, None, "{label}");
+                        assert_eq!(bits(&band), bits(&want), "{label}");
+                    }
+                    Err(i) => assert_eq!(Some(i), want_bad, "{label}"),
+                }
+                assert_eq!(want_bad, bad_at.first().copied(), "{label}");
+            }
         }
     }
 
