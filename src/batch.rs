@@ -324,13 +324,7 @@ impl BandJob<'_> {
                              free: &mut Vec<Band>,
                              bands: &BandReader<'_, '_>|
              -> Result<(), BatchError> {
-                let band = done.map_err(|failure| match failure {
-                    Failure::BadValue(bad) => BatchError::Ingest(bands.bad_value(&bad)),
-                    Failure::Kernel(detail) => BatchError::Band {
-                        file: self.shell.source.display().to_string(),
-                        detail,
-                    },
-                })?;
+                let band = done.map_err(|failure| self.failure_error(failure, bands))?;
                 valid = [valid[0] || band.valid[0], valid[1] || band.valid[1]];
                 writer.put_rows(band.place.step, band.place.rows.clone(), &band.out)?;
                 if band.place.rows.end == rows {

@@ -964,10 +964,30 @@ fn a_bad_value_in_a_later_band_fails_and_leaves_nothing_behind() {
             BadValue::Float(1000.0),
         ),
     ];
-    for (label, spec, variable, value) in cases {
-        let case_dir = dir.path().join(label);
+    // Each also stored in deflated chunks of one step (read a whole step at a time, then
+    // decoded and computed in bands on another thread).
+    let cases = cases
+        .into_iter()
+        .flat_map(|(label, spec, variable, value)| {
+            [false, true].map(|chunked| (label, spec.clone(), variable, value, chunked))
+        });
+    for (label, spec, variable, value, chunked) in cases {
+        let label = if chunked {
+            format!("{label}-chunked")
+        } else {
+            label.to_string()
+        };
+        let case_dir = dir.path().join(&label);
         std::fs::create_dir(&case_dir).expect("case directory");
-        let input = write(&case_dir, "cycle", &spec);
+        let input = if chunked {
+            let plain_dir = dir.path().join(format!("{label}-contiguous"));
+            std::fs::create_dir(&plain_dir).expect("directory of the contiguous file");
+            let input = case_dir.join("cycle.nc");
+            rechunk_by_step(&write(&plain_dir, "cycle", &spec), &input);
+            input
+        } else {
+            write(&case_dir, "cycle", &spec)
+        };
         assert_eq!(
             expected_bands(&input, &config, false, Some(1)),
             Bands::Exactly(1),

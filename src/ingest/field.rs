@@ -1351,10 +1351,9 @@ mod tests {
         }
     }
 
-    /// A band long enough to be decoded in pieces on several threads decodes as one pass
-    /// does (values, the first implausible index over all pieces, the level reversal).
-    #[test]
-    fn long_bands_decode_in_pieces_as_one_pass() {
+    /// Unpacking and conversion (raw × 0.5 + 100), a fill value and plausibility limits of
+    /// 100..=2000 after decoding: raw 5000 is implausible, raw 7 is missing.
+    fn scaled_decoder() -> (Decoder, Option<Limits>) {
         let decoder = Decoder {
             fills: vec![7.0],
             raw_min: None,
@@ -1370,6 +1369,14 @@ mod tests {
             hi: 2000.0,
             floor: 100.0,
         });
+        (decoder, limits)
+    }
+
+    /// A band long enough to be decoded in pieces on several threads decodes as one pass
+    /// does (values, the first implausible index over all pieces, the level reversal).
+    #[test]
+    fn long_bands_decode_in_pieces_as_one_pass() {
+        let (decoder, limits) = scaled_decoder();
         let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
         // Three levels of 300,001 values: pieces of 2^18 cut across levels.
         let (levels, plane) = (3usize, 300_001usize);
@@ -1414,23 +1421,7 @@ mod tests {
         // The NetCDF library is not thread-safe: hold the session lock, as its readers do.
         let _session = crate::netcdf_session::lock();
         let dir = tempfile::tempdir().expect("tempdir");
-        // Unpacking and conversion (raw × 0.5 + 100), a fill value and plausibility limits
-        // of 100..=2000 after decoding: raw 5000 is implausible, raw 7 is missing.
-        let decoder = Decoder {
-            fills: vec![7.0],
-            raw_min: None,
-            raw_max: None,
-            compare_as_f32: true,
-            linear: Linear {
-                scale: 0.5,
-                offset: 100.0,
-            },
-        };
-        let limits = Some(Limits {
-            lo: 100.0,
-            hi: 2000.0,
-            floor: 100.0,
-        });
+        let (decoder, limits) = scaled_decoder();
         // Values compared bit for bit (the missing ones are NaN).
         let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
         let bands = [0, 1, 5, 6, 23, 24, 25, 119, 120, 121, 360, 1 << 20];
