@@ -274,6 +274,43 @@ fn off_level_pressures_match_a_column_built_the_batch_way() {
     }
 }
 
+/// A position query of many points (answered in runs on several threads) gives, point for
+/// point and in order, what each point gives asked alone (answered on the calling thread):
+/// heights on and between levels and a thickness rebuilt, two lead times, bilinear.
+#[test]
+fn many_points_answer_as_each_point_alone() {
+    let lc = demo();
+    let points: Vec<(f64, f64)> = (0..700)
+        .map(|i| {
+            let (a, b) = ((i % 35) as f64, (i / 35) as f64);
+            (52.1 + a * 0.17, -39.9 + b * 0.49)
+        })
+        .collect();
+    let quantities = vec![height(500.0), height(433.0), thickness(962.5, 512.5)];
+    let ask = |points: Vec<(f64, f64)>| {
+        let q = PositionQuery {
+            times: vec![lead(0), lead(36)],
+            allow_extrapolation: true,
+            ..position_query(points, quantities.clone())
+        };
+        position(lc, &q, &Limits::default()).unwrap()
+    };
+    let bits = |s: &hypsogrid::query::Sample| {
+        let values: Vec<u64> = s.values.iter().map(|v| v.to_bits()).collect();
+        (s.lead_time_s, s.valid_time_unix_s, values, s.flags.clone())
+    };
+    let together = ask(points.clone());
+    assert_eq!(together.len(), points.len());
+    for (i, (series, &point)) in together.iter().zip(&points).enumerate() {
+        let alone = ask(vec![point]).remove(0);
+        assert_eq!((series.latitude, series.longitude), point, "point {i}");
+        assert_eq!(series.samples.len(), 2, "point {i}");
+        for (a, b) in series.samples.iter().zip(&alone.samples) {
+            assert_eq!(bits(a), bits(b), "point {i}");
+        }
+    }
+}
+
 #[test]
 fn stride_thins_both_axes_and_chunks_rebuild_the_whole() {
     let lc = demo();
