@@ -1783,13 +1783,15 @@ pub fn position(
         out
     };
     // Columns rebuilt: quantities between levels, or steps whose heights are not in yet.
-    let rebuilt = plans
-        .iter()
-        .any(|p| matches!(p, Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. }))
-        || times
+    let rebuilt = || {
+        plans
             .iter()
-            .any(|&t| lc.heights.ready(q.member, t).is_none());
-    if q.points.len() < 2 * POINTS_A_TASK || !rebuilt {
+            .any(|p| matches!(p, Plan::ColumnHeight { .. } | Plan::ColumnThickness { .. }))
+            || times
+                .iter()
+                .any(|&t| lc.heights.ready(q.member, t).is_none())
+    };
+    if q.points.len() < 2 * POINTS_A_TASK || !rebuilt() {
         return Ok(series(&mut evaluators()?, &q.points, &corners));
     }
     // Thousands of points whose columns are rebuilt (about 2 µs a point): runs of points on
