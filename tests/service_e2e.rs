@@ -4,6 +4,8 @@
 //! Values are checked against the batch output (`compute_heights`) for the same file and
 //! grid points; the protocol parts against the standard gRPC health and reflection services.
 
+mod common;
+
 use std::net::SocketAddr;
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
@@ -33,15 +35,16 @@ const THICKNESS_1000_500: Layer = Layer {
 
 /// The demo cycle loaded once, and the batch output for the same file.
 struct Demo {
-    dir: tempfile::TempDir,
+    /// Removed at exit ([`common::scratch`]).
+    dir: std::path::PathBuf,
     batch: Heights,
 }
 
 fn demo() -> &'static Demo {
     static D: OnceLock<Demo> = OnceLock::new();
     D.get_or_init(|| {
-        let dir = tempfile::tempdir().expect("tempdir");
-        let path = write_demo_cycle(dir.path()).expect("demo cycle");
+        let dir = common::scratch::until_exit();
+        let path = write_demo_cycle(&dir).expect("demo cycle");
         let lc = load(&path);
         let batch = compute_heights(
             &lc.cycle,
@@ -63,7 +66,7 @@ fn load(path: &std::path::Path) -> LoadedCycle {
 /// A store holding the demo cycle.
 fn demo_store() -> Arc<CycleStore> {
     let store = Arc::new(CycleStore::new(StoreConfig::default()));
-    store.insert(load(&demo().dir.path().join(DEMO_FILE_NAME)));
+    store.insert(load(&demo().dir.join(DEMO_FILE_NAME)));
     store
 }
 
@@ -315,7 +318,7 @@ async fn health_follows_the_store_and_reflection_lists_the_service() {
         health_of(channel.clone(), SERVICE_NAME).await,
         ServingStatus::NotServing
     );
-    store.insert(load(&demo().dir.path().join(DEMO_FILE_NAME)));
+    store.insert(load(&demo().dir.join(DEMO_FILE_NAME)));
     let mut serving = false;
     for _ in 0..100 {
         if health_of(channel.clone(), "").await == ServingStatus::Serving {

@@ -8,6 +8,8 @@
 //! tests/verify.rs), so these tests prove the wire path: conversions, defaults, error codes
 //! and the caution on every guidance answer.
 
+mod common;
+
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::sync::{Arc, OnceLock};
@@ -50,7 +52,6 @@ fn gfs_path() -> Option<PathBuf> {
 }
 
 struct Fixture {
-    _dir: tempfile::TempDir,
     demo: Arc<LoadedCycle>,
     ensemble: Arc<LoadedCycle>,
     gfs: Option<Arc<LoadedCycle>>,
@@ -64,18 +65,18 @@ fn load(path: &Path) -> LoadedCycle {
 fn fixture() -> &'static Fixture {
     static F: OnceLock<Fixture> = OnceLock::new();
     F.get_or_init(|| {
-        let dir = tempfile::tempdir().expect("tempdir");
-        let demo = load(&write_demo_cycle(dir.path()).expect("demo"));
-        let ensemble = load(&write_demo_ensemble(dir.path()).expect("ensemble"));
+        // Removed at exit ([`common::scratch`]): the fixture lives in a `static`.
+        let dir = common::scratch::until_exit();
+        let demo = load(&write_demo_cycle(&dir).expect("demo"));
+        let ensemble = load(&write_demo_ensemble(&dir).expect("ensemble"));
         let gfs = gfs_path().map(|p| load(&p));
         let store = Arc::new(CycleStore::new(StoreConfig::default()));
-        store.insert(load(&dir.path().join(DEMO_FILE_NAME)));
-        store.insert(load(&dir.path().join(DEMO_ENSEMBLE_FILE_NAME)));
+        store.insert(load(&dir.join(DEMO_FILE_NAME)));
+        store.insert(load(&dir.join(DEMO_ENSEMBLE_FILE_NAME)));
         if let Some(p) = gfs_path() {
             store.insert(load(&p));
         }
         Fixture {
-            _dir: dir,
             demo: Arc::new(demo),
             ensemble: Arc::new(ensemble),
             gfs: gfs.map(Arc::new),
