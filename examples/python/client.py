@@ -24,9 +24,11 @@ services and licensed forecasters decide.
 """
 
 import argparse
+import atexit
 import importlib
 import math
 import os
+import shutil
 import sys
 import tempfile
 
@@ -60,6 +62,8 @@ def generate_stubs(proto_dir, out_dir):
 def load_stubs(proto_dir, stub_dir):
     if stub_dir is None:
         stub_dir = tempfile.mkdtemp(prefix="hypsogrid-stubs-")
+        # Generated for this run only: gone when the client exits.
+        atexit.register(shutil.rmtree, stub_dir, ignore_errors=True)
         generate_stubs(proto_dir, stub_dir)
     sys.path.insert(0, stub_dir)
     pb = importlib.import_module("hypsogrid.v1.service_pb2")
