@@ -272,16 +272,35 @@ impl BandJob<'_> {
         let mut writer =
             HeightsWriter::create(self.shell, &about, output, options, bands.session())?;
         let reverse = writer.levels_reversed();
-        if !bands.reads_bands() && bounds.len() > 1 {
-            let valid = self.stream_steps(bands, &mut writer, &bounds, reverse, progress)?;
-            bands.finish(valid)?;
-            writer.commit()?;
-            return Ok(BatchReport {
-                notes: self.shell.notes.clone(),
-                steps: members * times,
-                band_rows: Some(band_rows),
-            });
-        }
+        // Chunked input is read a whole step at a time (a band would inflate its chunks
+        // again), then computed and written in bands.
+        let valid = if !bands.reads_bands() && bounds.len() > 1 {
+            self.stream_steps(bands, &mut writer, &bounds, reverse, progress)?
+        } else {
+            self.run_bands(bands, &mut writer, &bounds, reverse, progress)?
+        };
+        bands.finish(valid)?;
+        writer.commit()?;
+        Ok(BatchReport {
+            notes: self.shell.notes.clone(),
+            steps: members * times,
+            band_rows: Some(band_rows),
+        })
+    }
+
+    /// Every band of every step read, computed and written in turn: this thread reads and
+    /// writes, one thread computes the band between. Returns whether temperature and
+    /// humidity held a valid value.
+    fn run_bands(
+        &self,
+        bands: &mut BandReader<'_, '_>,
+        writer: &mut HeightsWriter,
+        bounds: &[Range<usize>],
+        reverse: bool,
+        progress: &(dyn Fn(usize, usize) + Sync),
+    ) -> Result<[bool; 2], BatchError> {
+        let (members, times, levels, rows, cols) = bands.dim();
+        let band_rows = bounds.iter().map(Range::len).max().unwrap_or(0).max(1);
         let places: Vec<Place> = (0..members)
             .flat_map(|m| (0..times).map(move |t| (m, t)))
             .flat_map(|step| {
@@ -353,10 +372,11 @@ impl BandJob<'_> {
                 let q = band.q.as_mut().map(|q| &mut q[..len]);
                 bands.read_raw(place.step, place.rows.clone(), &mut band.t[..len], q)?;
                 band.place = place;
-                // A whole step read last leaves the reading thread only waiting for it (a
-                // band of a step still has the band before it to write): the global pool
-                // then. On the zlib-1 0.5° cycle (one step) the kernel took 55 ms on the
-                // one thread of the lowered pool while the reading thread waited.
+                // A whole step (compressed output) read last leaves the reading thread only
+                // waiting for it (a band of a step still has the band before it to write):
+                // the global pool then. On the zlib-1 0.5° cycle (one step) the kernel took
+                // 55 ms on the one thread of the lowered pool while the reading thread
+                // waited.
                 band.last_read = i + 1 == reads && bounds.len() == 1;
                 work_tx.send(band).map_err(|_| worker_gone(self.shell))?;
                 in_flight += 1;
@@ -373,13 +393,7 @@ impl BandJob<'_> {
             }
             Ok(())
         })?;
-        bands.finish(valid)?;
-        writer.commit()?;
-        Ok(BatchReport {
-            notes: self.shell.notes.clone(),
-            steps: total,
-            band_rows: Some(band_rows),
-        })
+        Ok(valid)
     }
 
     /// Every step of a cycle whose reads take whole steps (chunked input): each step read

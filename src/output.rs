@@ -608,7 +608,7 @@ impl ChunkSink {
             planes.push((2 + 2 * i, start(None), Plane::Values(&values[..plane])));
             planes.push((3 + 2 * i, start(None), Plane::Flags(&flags[..plane])));
         }
-        let stored: Vec<Option<Vec<u8>>> = planes
+        let stored: Vec<Vec<u8>> = planes
             .par_iter()
             .map_init(
                 || libdeflater::Compressor::new(self.level),
@@ -626,11 +626,9 @@ impl ChunkSink {
                     Some(stored)
                 },
             )
-            .collect();
+            .collect::<Option<_>>()
+            .ok_or_else(|| chunk_error(plan, &format!("deflating step ({m}, {t})")))?;
         for ((dataset, start, _), bytes) in planes.iter().zip(&stored) {
-            let Some(bytes) = bytes else {
-                return Err(chunk_error(plan, &format!("deflating step ({m}, {t})")));
-            };
             if !self.writer.write(*dataset, start, bytes) {
                 return Err(chunk_error(plan, &format!("step ({m}, {t})")));
             }

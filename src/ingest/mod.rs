@@ -395,10 +395,7 @@ where
         let file = open_quietly(path, label_ref)?;
         let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
         let mut cycle = reader.read(path)?;
-        let mut planned = reader.take_stepwise();
-        for (_, plan) in planned.iter_mut() {
-            plan.plan_chunk_reads(path, own.as_ref(), label_ref);
-        }
+        let planned = reader.take_stepwise(path, own.as_ref());
         let fields = Stepwise::of(label_ref, &planned);
         let names = [fields.temperature, fields.humidity].map(|p| p.map(|f| f.name()));
         let complete = fields.complete(&cycle);
@@ -648,10 +645,7 @@ pub fn read_cycle_in_bands<R>(
     let file = open_quietly(path, &label)?;
     let mut reader = reader::Reader::new(&file, label.clone(), config).stepwise();
     let mut cycle = reader.read(path)?;
-    let mut planned = reader.take_stepwise();
-    for (_, plan) in planned.iter_mut() {
-        plan.plan_chunk_reads(path, own.as_ref(), &label);
-    }
+    let planned = reader.take_stepwise(path, own.as_ref());
     let mut fields = Stepwise::of(&label, &planned);
     if fields.complete(&cycle) {
         let mut bands = true;

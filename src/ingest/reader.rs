@@ -173,9 +173,20 @@ impl<'f> Reader<'f> {
         self
     }
 
-    /// The fields planned for stepwise reading by the last [`Reader::read`].
-    pub(super) fn take_stepwise(&mut self) -> Vec<(Bulk, StepwiseField<'f>)> {
-        self.stepwise.take().unwrap_or_default()
+    /// The fields planned for stepwise reading by the last [`Reader::read`], each with its
+    /// whole steps read chunk by chunk where its storage allows
+    /// ([`StepwiseField::plan_chunk_reads`]; `own` is the file at `path`, opened before the
+    /// library opened it).
+    pub(super) fn take_stepwise(
+        &mut self,
+        path: &std::path::Path,
+        own: Option<&std::fs::File>,
+    ) -> Vec<(Bulk, StepwiseField<'f>)> {
+        let mut planned = self.stepwise.take().unwrap_or_default();
+        for (_, field) in planned.iter_mut() {
+            field.plan_chunk_reads(path, own, &self.label);
+        }
+        planned
     }
 
     fn var(&self, name: &str) -> Option<Variable<'f>> {
