@@ -612,6 +612,7 @@ async fn connect(addr: SocketAddr) -> anyhow::Result<Channel> {
         .tcp_nodelay(true)
         .initial_stream_window_size(hypsogrid::service::STREAM_WINDOW_BYTES)
         .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES)
+        .max_frame_size(hypsogrid::service::MAX_FRAME_BYTES)
         .connect()
         .await
         .with_context(|| format!("cannot connect to {addr}"))

@@ -72,7 +72,8 @@ pub(crate) async fn channel(args: &ConnectArgs) -> Result<Channel> {
         .connect_timeout(Duration::from_secs(5))
         .timeout(args.timeout)
         .initial_stream_window_size(hypsogrid::service::STREAM_WINDOW_BYTES)
-        .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES);
+        .initial_connection_window_size(hypsogrid::service::CONNECTION_WINDOW_BYTES)
+        .max_frame_size(hypsogrid::service::MAX_FRAME_BYTES);
     let read = |flag: &str, path: &std::path::Path| {
         std::fs::read(path).with_context(|| format!("{flag}: cannot read '{}'", path.display()))
     };
