@@ -26,6 +26,7 @@ pub mod vertical;
 
 use std::io::Read;
 use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::mpsc;
 
 use ndarray::ArrayView3;
@@ -321,9 +322,23 @@ pub struct FilledStep<'a> {
 /// The steps of a cycle in file order, each as soon as it has been read.
 pub struct StepFeed<'a> {
     steps: mpsc::Receiver<FilledStep<'a>>,
+    read_done: &'a AtomicBool,
 }
 
 impl<'a> StepFeed<'a> {
+    /// The feed of the steps sent into `steps`, the reading thread setting `read_done` once
+    /// it has read them all.
+    pub(crate) fn new(steps: mpsc::Receiver<FilledStep<'a>>, read_done: &'a AtomicBool) -> Self {
+        Self { steps, read_done }
+    }
+
+    /// A flag that turns true once the reading thread has read every step (or stopped
+    /// reading): the steps not yet taken are then all waiting in the feed. Work that only
+    /// pays while the file is still being read can check it and stop.
+    pub fn read_done(&self) -> &'a AtomicBool {
+        self.read_done
+    }
+
     /// The next step, doing `idle` work meanwhile: while no step is ready, `idle` is
     /// called again and again (each call a small piece of work) until it returns false,
     /// after which this waits. `None` once the feed has ended.
@@ -387,7 +402,9 @@ where
     let mut cycle_slot: Option<Cycle> = None;
     let mut t_slot = Field5::zeros((0, 0, 0, 0, 0));
     let mut q_slot: Option<Field5> = None;
+    let read_done = AtomicBool::new(false);
     let (cycle_ref, t_ref, q_ref, label_ref) = (&mut cycle_slot, &mut t_slot, &mut q_slot, &label);
+    let done_ref = &read_done;
     let outcome = std::thread::scope(move |scope| -> Result<Overlap<R>, IngestError> {
         let session = crate::netcdf_session::lock();
         // Opened before the library opens it: see `chunks::StepChunks::plan`.
@@ -414,11 +431,12 @@ where
             });
         };
         let (tx, rx) = mpsc::channel();
-        let worker = scope.spawn(move || work(state, shell, StepFeed { steps: rx }));
+        let worker = scope.spawn(move || work(state, shell, StepFeed::new(rx, done_ref)));
         let filled = fields.fill(t_ref, q_ref.as_mut(), |step| {
             // A worker that stopped early needs no more steps; reading goes on regardless.
             let _ = tx.send(step);
         });
+        done_ref.store(true, Ordering::Release);
         drop(tx);
         // Every value is in memory now: close the file (and free the library's chunk
         // caches) and let other reads in while the worker finishes.
