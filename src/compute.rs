@@ -207,7 +207,7 @@ pub fn read_for_serving(
                 .map(|i| (i + 1 < total).then(|| kernel.outputs((1, 1, levels, rows, cols))))
                 .collect(),
             finished: (0..total).map(|_| None).collect(),
-            at: (0, 0, 0),
+            at: (0, 0),
             partial: None,
         };
         Some((kernel, out, (members, times)))
@@ -434,34 +434,32 @@ struct EachStep {
     outs: Vec<Option<KernelOutput>>,
     /// Heights of the steps computed.
     finished: Vec<Option<StepHeights>>,
-    /// The step being faulted in, and how far its heights and flags are.
-    at: (usize, usize, usize),
+    /// The step being faulted in, and how far its heights are.
+    at: (usize, usize),
     /// The step left part-way when the read ended: its index and the rows computed.
     partial: Option<(usize, usize)>,
 }
 
 impl EachStep {
-    /// Faults in about [`TOUCH_BYTES`] of output pages not yet touched, of step `next` or a
-    /// later one; false when none are left.
+    /// Faults in about [`TOUCH_BYTES`] of height pages not yet touched, of step `next` or a
+    /// later one; false when none are left. The below-ground flags are left alone: the
+    /// kernel writes only the levels where some column of a row is below ground, and the
+    /// pages of the other levels are never needed.
     fn touch_ahead(&mut self, next: usize) -> bool {
         if self.at.0 < next {
-            self.at = (next, 0, 0);
+            self.at = (next, 0);
         }
         while let Some(slot) = self.outs.get_mut(self.at.0) {
-            let touched = slot.as_mut().is_some_and(|out| {
-                let (z, b) = (&mut out.geopotential_height, &mut out.below_ground);
-                let mut at = (self.at.1, self.at.2);
-                let more = match (z.as_slice_mut(), b.as_slice_mut()) {
-                    (Some(z), Some(b)) => touch_next(z, b, &mut at),
-                    _ => false,
-                };
-                (self.at.1, self.at.2) = at;
-                more
-            });
-            if touched {
+            let from = self.at.1;
+            let heights = slot
+                .as_mut()
+                .and_then(|out| out.geopotential_height.as_slice_mut())
+                .filter(|z| from < z.len());
+            if let Some(z) = heights {
+                self.at.1 = touch_pages(z, from, TOUCH_BYTES);
                 return true;
             }
-            self.at = (self.at.0 + 1, 0, 0);
+            self.at = (self.at.0 + 1, 0);
         }
         false
     }
@@ -495,19 +493,6 @@ impl EachStep {
         self.finished[index] = slot.take().map(step_heights);
         Ok(true)
     }
-}
-
-/// Faults in the next [`TOUCH_BYTES`] of `z` from `at.0`, or when `z` is done of `b` from
-/// `at.1`; false when both are done.
-fn touch_next(z: &mut [f32], b: &mut [u8], at: &mut (usize, usize)) -> bool {
-    if at.0 < z.len() {
-        at.0 = touch_pages(z, at.0, TOUCH_BYTES);
-    } else if at.1 < b.len() {
-        at.1 = touch_pages(b, at.1, TOUCH_BYTES);
-    } else {
-        return false;
-    }
-    true
 }
 
 /// The kernel's side of the serving read: runs `kernel` on each step of `steps` as it
@@ -1175,7 +1160,7 @@ mod tests {
                 .map(|_| Some(kernel.outputs((1, 1, levels, rows, cols))))
                 .collect(),
             finished: (0..total).map(|_| None).collect(),
-            at: (0, 0, 0),
+            at: (0, 0),
             partial: None,
         }
     }

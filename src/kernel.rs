@@ -1228,7 +1228,13 @@ impl IsobaricKernel {
             }
             if let Some(row) = b_row.as_mut() {
                 if !p.full {
-                    row.fill(0);
+                    // No column of the row is below ground at this level. Output fresh from
+                    // the system is zero already, and reading it maps no memory of its own
+                    // (writing would fault in and clear every page): most levels of a step
+                    // never touch their flags' pages. A reused buffer is cleared as before.
+                    if row.iter().any(|&b| b != 0) {
+                        row.fill(0);
+                    }
                 } else if !b_direct {
                     row.assign(&ArrayView1::from(&s.below8[..]));
                 }
