@@ -1086,13 +1086,24 @@ impl IsobaricKernel {
         // path: the surface virtual temperature is level k0's extrapolated to p_s at 6.5 K/km.
         // First, per column, what needs a gather; then the arithmetic in lanes.
         let mut k_max = 0usize;
+        // The previous column's count of levels below ground, where the next column's
+        // search starts.
+        let mut near = 0usize;
         for c in 0..cols {
             let ps = f64::from(v.ps[[r, c]]);
             let zs = f64::from(v.zs[[r, c]]);
             s.ps[c] = ps;
-            // Levels strictly decrease, so the levels below ground are a prefix: count them
-            // without branches.
-            let k0: usize = self.levels.iter().map(|&p| usize::from(p > ps)).sum();
+            // Levels strictly decrease, so the levels below ground are a prefix. Its length
+            // changes little from one column to the next: step from the previous column's.
+            // (A surface pressure that is not a number moves neither way; such a column is
+            // masked below, whatever the count.)
+            while near < all && self.levels[near] > ps {
+                near += 1;
+            }
+            while near > 0 && self.levels[near - 1] <= ps {
+                near -= 1;
+            }
+            let k0 = near;
             let surface_ok = ps.is_finite() && ps > 0.0 && zs.is_finite() && k0 < all;
             let tv0 = if surface_ok {
                 self.tv_at(v, k0, r, c)
