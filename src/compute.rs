@@ -291,9 +291,10 @@ impl PendingSteps {
         while let Some((m, t)) = heights.next_pending() {
             let index = m * times + t;
             let buffer = self.buffers.get_mut(index).and_then(Option::take);
-            // Rows already in this step's buffer, when the kernel left it part-way.
-            let from = match (self.resume, &buffer) {
-                (Some((i, rows)), Some(_)) if i == index => rows,
+            // Rows already in this step's buffer, when the kernel left it part-way (without
+            // the buffer, `run_one_step` starts from row 0).
+            let from = match self.resume {
+                Some((i, rows)) if i == index => rows,
                 _ => 0,
             };
             let step = match &self.kernel {
@@ -516,6 +517,10 @@ fn compute_while_reading(
         .then(|| background_pool(rayon::current_num_threads()))
         .flatten();
     let mut done = 0;
+    // Once the file is read, the steps left are computed after the cycle is listed
+    // (`PendingSteps`): stop at the next piece rather than hold the listing up.
+    let read_done = steps.read_done();
+    let stop = || read_done.load(Ordering::Acquire);
     // While no step is ready (above all while the first is read), fault in the output
     // pages of the steps not yet computed: work the kernel would otherwise do at its first
     // write, moved into idle time.
@@ -531,10 +536,6 @@ fn compute_while_reading(
             ps: surface.pressure_pa.slice(s![m, t, .., ..]),
             zs: surface.height_m.slice(s![m, t, .., ..]),
         };
-        // Once the file is read, the steps left are computed after the cycle is listed
-        // (`PendingSteps`): stop at the next piece rather than hold the listing up.
-        let read_done = steps.read_done();
-        let stop = || read_done.load(Ordering::Acquire);
         let computed = match pool.as_ref() {
             Some(pool) => pool.install(|| out.run(kernel, fields, done, &stop)),
             None => out.run(kernel, fields, done, &stop),

@@ -652,19 +652,25 @@ fn step_thickness(
         .collect()
 }
 
-/// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
-/// Row `r` of level `k` of a field of `dim` (`[level, lat, lon]`) stored in standard
-/// layout as `all`; `None` when the field is not in that layout.
-fn level_row_of(
-    all: Option<&[f32]>,
-    (_, rows, cols): (usize, usize, usize),
-    k: usize,
-    r: usize,
-) -> Option<&[f32]> {
+/// Row `r` of level `k` of `field` (`[level, lat, lon]`) as a contiguous lane: a sub-slice
+/// of `all`, the field's memory when it is in standard layout (as the reader makes fields;
+/// slicing the view for every level of every row took 3 % of the kernel's samples), else as
+/// [`lane`] gives it.
+fn level_lane<'b>(
+    field: &'b ArrayView3<'_, f32>,
+    all: Option<&'b [f32]>,
+    (k, r): (usize, usize),
+    buf: &'b mut Vec<f32>,
+) -> &'b [f32] {
+    let (_, rows, cols) = field.dim();
     let start = (k * rows + r) * cols;
-    all?.get(start..start + cols)
+    match all.and_then(|all| all.get(start..start + cols)) {
+        Some(row) => row,
+        None => lane(field.slice(s![k, r, ..]), buf),
+    }
 }
 
+/// A contiguous `f32` lane: the array's own memory when contiguous, else a copy in `buf`.
 fn lane<'b>(v: ArrayView1<'b, f32>, buf: &'b mut Vec<f32>) -> &'b [f32] {
     match v.to_slice() {
         Some(sl) => sl,
@@ -1091,14 +1097,7 @@ impl IsobaricKernel {
     ///
     /// Only levels `0..n` are integrated (all when heights are wanted; up to the highest
     /// level a layer needs otherwise).
-    fn row<'a>(
-        &self,
-        v: &StepFields<'a>,
-        r: usize,
-        n: usize,
-        s: &mut RowScratch,
-        mut out: RowOut<'_>,
-    ) {
+    fn row(&self, v: &StepFields<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
         let all = self.levels.len();
         let cols = s.ps.len();
         // The surface of every column and the lowest level above it (`k0`), as the column
@@ -1193,21 +1192,14 @@ impl IsobaricKernel {
             }
         }
 
-        // Fields in standard layout (as the reader makes them) give each level's row as a
-        // slice at a computed offset; slicing the views took 3 % of the kernel's samples.
         let (t_all, q_all) = (v.t.to_slice(), v.q.as_ref().and_then(|q| q.to_slice()));
-        let row_of = |all: Option<&'a [f32]>, k: usize| level_row_of(all, v.t.dim(), k, r);
         for k in 0..n {
             let m = self.moisture[k];
-            let t = match row_of(t_all, k) {
-                Some(row) => row,
-                None => lane(v.t.slice(s![k, r, ..]), &mut s.tbuf),
-            };
+            let t = level_lane(&v.t, t_all, (k, r), &mut s.tbuf);
             let q = match (&v.q, m) {
-                (Some(q3), Moisture::Specific | Moisture::Mixing) => match row_of(q_all, k) {
-                    Some(row) => row,
-                    None => lane(q3.slice(s![k, r, ..]), &mut s.qbuf),
-                },
+                (Some(q3), Moisture::Specific | Moisture::Mixing) => {
+                    level_lane(q3, q_all, (k, r), &mut s.qbuf)
+                }
                 _ => t,
             };
             let p = StepParams {
