@@ -863,9 +863,27 @@ impl<'a> StepColumns<'a> {
     /// Builds the column at (`row`, `col`) into `s`: level pressures, virtual temperatures,
     /// heights, below-ground flags, and the nodes for interpolation at any pressure.
     pub fn build(&self, row: usize, col: usize, s: &mut ColumnScratch) {
+        self.build_lowest(row, col, s, usize::MAX);
+    }
+
+    /// [`StepColumns::build`] for answers at pressures no lower than level `wanted − 1`'s
+    /// ([`ColumnNodes::levels_for_pressure`]): an isobaric column is built only as high as
+    /// they need ([`ColumnNodes::isobaric_lowest`]), with the same bits, and its levels above
+    /// are left masked. A hybrid column is built whole.
+    pub fn build_lowest(&self, row: usize, col: usize, s: &mut ColumnScratch, wanted: usize) {
         let c = &self.constants;
-        let levels = s.tv.len();
+        let all = s.tv.len();
         let surface = self.surface(row, col);
+        // Virtual temperatures are formed only for the levels the build reads: up to
+        // `wanted`, and at least up to the lowest level above ground when the column stands
+        // on the surface (its temperature gives the surface node's).
+        let levels = match (&self.cycle.vertical, self.reference, surface) {
+            (Vertical::Isobaric { pressure_pa }, Reference::Surface, Some((ps, _))) => {
+                let k0 = pressure_pa.partition_point(|&p| p > ps);
+                wanted.max(k0 + 1).min(all)
+            }
+            _ => all,
+        };
         match &self.cycle.vertical {
             Vertical::Isobaric { pressure_pa } => s.pressure.copy_from_slice(pressure_pa),
             Vertical::Hybrid { a_half_pa, b_half } => {
@@ -891,8 +909,15 @@ impl<'a> StepColumns<'a> {
         match &self.cycle.vertical {
             Vertical::Isobaric { pressure_pa } => {
                 let anchor = self.anchor(surface, row, col, pressure_pa);
-                s.nodes
-                    .isobaric(pressure_pa, &s.tv, anchor, c, &mut s.height, &mut s.below);
+                s.nodes.isobaric_lowest(
+                    pressure_pa,
+                    &s.tv,
+                    levels,
+                    anchor,
+                    c,
+                    &mut s.height,
+                    &mut s.below,
+                );
             }
             Vertical::Hybrid { a_half_pa, b_half } => {
                 let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));

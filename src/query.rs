@@ -686,6 +686,26 @@ impl Plan {
     }
 }
 
+/// How many of the lowest levels a rebuilt column needs to answer every plan (all of them
+/// on hybrid levels, whose columns are built whole): up to the level at or just above each
+/// pressure asked, every level when one lies above the top level.
+fn wanted_levels(plans: &[Plan], vertical: &Vertical) -> usize {
+    let Vertical::Isobaric { pressure_pa } = vertical else {
+        return vertical.levels();
+    };
+    let at = |p: f64| ColumnNodes::levels_for_pressure(pressure_pa, p);
+    plans
+        .iter()
+        .map(|plan| match *plan {
+            Plan::Level(k) => k + 1,
+            Plan::LevelThickness { bottom, top } => bottom.max(top) + 1,
+            Plan::ColumnHeight { p_pa } => at(p_pa),
+            Plan::ColumnThickness { bottom_pa, top_pa } => at(bottom_pa).max(at(top_pa)),
+        })
+        .max()
+        .unwrap_or(pressure_pa.len())
+}
+
 fn level_index(levels: &[f64], p: f64) -> Option<usize> {
     levels
         .iter()
@@ -970,6 +990,9 @@ struct Evaluator<'a> {
     stored: Option<(ArrayView3<'a, f32>, ArrayView3<'a, u8>)>,
     /// Column builder and its scratch, when some quantity needs a rebuilt column.
     columns: Option<(StepColumns<'a>, ColumnScratch)>,
+    /// How many of the lowest levels a rebuilt column needs for every quantity asked
+    /// ([`StepColumns::build_lowest`]).
+    wanted_levels: usize,
     /// The column held in the scratch.
     built: Option<(usize, usize)>,
 }
@@ -1001,6 +1024,7 @@ impl<'a> Evaluator<'a> {
             constants: lc.cycle.constants,
             stored,
             columns,
+            wanted_levels: wanted_levels(plans, &lc.cycle.vertical),
             built: None,
         })
     }
@@ -1019,7 +1043,7 @@ impl<'a> Evaluator<'a> {
     fn column(&mut self, row: usize, col: usize) -> Option<&ColumnScratch> {
         let (step, scratch) = self.columns.as_mut()?;
         if self.built != Some((row, col)) {
-            step.build(row, col, scratch);
+            step.build_lowest(row, col, scratch, self.wanted_levels);
             self.built = Some((row, col));
         }
         Some(scratch)

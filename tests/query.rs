@@ -274,6 +274,53 @@ fn off_level_pressures_match_a_column_built_the_batch_way() {
     }
 }
 
+/// Pressures near the ground need only the lowest levels of a column, and an area of them
+/// builds only those (`StepColumns::build_lowest`); over high ground the build must still
+/// reach the lowest level above the ground. Every column of the demo grid, against the
+/// whole column built the batch way.
+#[test]
+fn pressures_near_the_ground_match_whole_columns_even_over_high_ground() {
+    let lc = demo();
+    let whole = BoundingBox {
+        south: -90.0,
+        north: 90.0,
+        west: -180.0,
+        east: 180.0,
+    };
+    let q = AreaQuery {
+        allow_extrapolation: true,
+        ..area_query(vec![height(987.5), thickness(1012.0, 962.5)], whole)
+    };
+    let a = area(lc, &q, &Limits::default()).unwrap();
+    let step = StepColumns::new(&lc.cycle, &lc.config, 0, a.time_index).unwrap();
+    let mut scratch = ColumnScratch::new(DEMO_LEVELS_HPA.len());
+    let c = lc.cycle.constants;
+    let surface = lc.cycle.surface.as_ref().unwrap();
+    let mut high_ground = 0;
+    for (i, &lat) in a.latitudes.iter().enumerate() {
+        for (j, &lon) in a.longitudes.iter().enumerate() {
+            let (r, col) = (
+                index_of(&lc.cycle.grid.latitudes, lat),
+                index_of(&lc.cycle.grid.longitudes, lon),
+            );
+            step.build(r, col, &mut scratch);
+            let n = i * a.longitudes.len() + j;
+            let z = scratch.nodes.height_at_pressure(98_750.0, &c).unwrap();
+            assert_eq!(
+                a.fields[0].values[n].to_bits(),
+                (z.height_m as f32).to_bits()
+            );
+            let th = thickness_between(&scratch.nodes, 101_200.0, 96_250.0, &c).unwrap();
+            assert_eq!(a.fields[1].values[n].to_bits(), (th as f32).to_bits());
+            // Columns whose lowest level above ground is 850 hPa or higher.
+            if surface.pressure_pa[[0, 0, r, col]] < 90_000.0 {
+                high_ground += 1;
+            }
+        }
+    }
+    assert!(high_ground > 0, "the demo grid has no high ground");
+}
+
 /// A position query of many points (answered in runs on several threads) gives, point for
 /// point and in order, what each point gives asked alone (answered on the calling thread):
 /// heights on and between levels and a thickness rebuilt, two lead times, bilinear.

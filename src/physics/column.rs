@@ -226,6 +226,38 @@ impl ColumnNodes {
         z_out: &mut [f64],
         below_out: &mut [bool],
     ) {
+        self.isobaric_lowest(p_pa, tv_k, p_pa.len(), anchor, c, z_out, below_out);
+    }
+
+    /// [`ColumnNodes::isobaric`] for the lowest `wanted` levels only, for answers at
+    /// pressures no lower than level `wanted − 1`'s. The integration runs from the anchor
+    /// upward, so every node and output it gives is bit for bit the full build's; it stops
+    /// early and leaves the levels above it masked (`NaN`, not below ground) without reading
+    /// their `tv_k`.
+    ///
+    /// More levels are built where the answer depends on them: a surface anchor always
+    /// builds up to its lowest level above ground (the surface node's temperature comes from
+    /// it), and a level anchor at or above `wanted` builds the whole column.
+    ///
+    /// # Units
+    /// As [`ColumnNodes::isobaric`].
+    ///
+    /// # Method
+    /// As [`ColumnNodes::isobaric`], over levels `0..used`, `used` as above.
+    ///
+    /// # References
+    /// Wallace, J. M. and Hobbs, P. V. (2006), *Atmospheric Science*, 2nd ed., §3.2.
+    #[allow(clippy::too_many_arguments)]
+    pub fn isobaric_lowest(
+        &mut self,
+        p_pa: &[f64],
+        tv_k: &[f64],
+        wanted: usize,
+        anchor: ColumnAnchor,
+        c: &Constants,
+        z_out: &mut [f64],
+        below_out: &mut [bool],
+    ) {
         self.clear();
         let n = p_pa.len();
         if tv_k.len() != n || z_out.len() != n || below_out.len() != n || !self.prepare_levels(p_pa)
@@ -233,15 +265,35 @@ impl ColumnNodes {
             mask_outputs(z_out, below_out);
             return;
         }
+        let wanted = wanted.clamp(1, n);
         match anchor {
             ColumnAnchor::Surface {
                 pressure_pa,
                 height_m,
-            } => self.isobaric_from_surface(p_pa, tv_k, pressure_pa, height_m, c, z_out, below_out),
+            } => self.isobaric_from_surface(
+                p_pa,
+                tv_k,
+                wanted,
+                (pressure_pa, height_m),
+                c,
+                z_out,
+                below_out,
+            ),
             ColumnAnchor::LevelHeight { level, height_m } => {
-                self.isobaric_from_level(p_pa, tv_k, level, height_m, c, z_out, below_out)
+                let used = if level < wanted { wanted } else { n };
+                self.isobaric_from_level(p_pa, tv_k, used, level, height_m, c, z_out, below_out)
             }
         }
+    }
+
+    /// The lowest level an answer at pressure `p_pa` needs, plus one: the number of levels
+    /// [`ColumnNodes::isobaric_lowest`] must build for it (all of `p_pa` when `p_pa` lies
+    /// above the top level, where only the whole column answers).
+    pub fn levels_for_pressure(levels_pa: &[f64], p_pa: f64) -> usize {
+        levels_pa
+            .iter()
+            .position(|&l| l <= p_pa)
+            .map_or(levels_pa.len(), |i| i + 1)
     }
 
     #[allow(clippy::too_many_arguments)]
@@ -249,23 +301,27 @@ impl ColumnNodes {
         &mut self,
         p_pa: &[f64],
         tv_k: &[f64],
-        ps: f64,
-        zs: f64,
+        wanted: usize,
+        (ps, zs): (f64, f64),
         c: &Constants,
         z_out: &mut [f64],
         below_out: &mut [bool],
     ) {
-        let n = p_pa.len();
+        let all = p_pa.len();
         if !(ps.is_finite() && ps > 0.0 && zs.is_finite()) {
             mask_outputs(z_out, below_out);
             return;
         }
         // Levels are strictly decreasing: the first `k0` are below ground.
         let k0 = p_pa.partition_point(|&p| p > ps);
-        if k0 == n || !usable_tv(tv_k[k0]) {
+        if k0 == all || !usable_tv(tv_k[k0]) {
             mask_outputs(z_out, below_out);
             return;
         }
+        // Levels `n..` stay masked: not built.
+        let n = wanted.max(k0 + 1).min(all);
+        z_out[n..].fill(f64::NAN);
+        let (p_pa, tv_k, z_out) = (&p_pa[..n], &tv_k[..n], &mut z_out[..n]);
         let rd_g0 = c.rd_over_g0();
         let kappa = standard_kappa(c);
         self.prepare_powers(kappa);
@@ -360,14 +416,18 @@ impl ColumnNodes {
         &mut self,
         p_pa: &[f64],
         tv_k: &[f64],
+        used: usize,
         level: usize,
         z_level: f64,
         c: &Constants,
         z_out: &mut [f64],
         below_out: &mut [bool],
     ) {
-        let n = p_pa.len();
         below_out.fill(false);
+        z_out[used..].fill(f64::NAN);
+        // Levels `used..` stay masked: not built.
+        let (p_pa, tv_k, z_out) = (&p_pa[..used], &tv_k[..used], &mut z_out[..used]);
+        let n = used;
         if level >= n || !z_level.is_finite() || !usable_tv(tv_k[level]) {
             z_out.fill(f64::NAN);
             return;
@@ -927,6 +987,60 @@ mod tests {
             for i in first..LEVELS.len() {
                 prop_assert!((z_l[i] - z_s[i]).abs() < 1e-7, "level {}: {} vs {}", i, z_l[i], z_s[i]);
             }
+        }
+
+        #[test]
+        fn the_lowest_levels_alone_give_the_whole_columns_bits(
+            (mut tv, ps, zs) in column_strategy(),
+            wanted in 0usize..14,
+            masked in proptest::option::of(0usize..12),
+            level_anchor in proptest::option::of(0usize..12),
+            share in 0.0f64..1.0,
+        ) {
+            let c = Constants::default();
+            if let Some(k) = masked {
+                tv[k] = f64::NAN;
+            }
+            let anchor = match level_anchor {
+                Some(level) => ColumnAnchor::LevelHeight { level, height_m: zs },
+                None => ColumnAnchor::Surface { pressure_pa: ps, height_m: zs },
+            };
+            let (full, z_full, below_full) = build(&LEVELS, &tv, anchor, &c);
+            let mut part = ColumnNodes::with_capacity(LEVELS.len());
+            let (mut z, mut below) = (vec![0.0; LEVELS.len()], vec![true; LEVELS.len()]);
+            // Temperatures above what the build may read are poison: reading them would
+            // show in the heights.
+            let used = match anchor {
+                ColumnAnchor::Surface { .. } => {
+                    wanted.clamp(1, 12).max(LEVELS.partition_point(|&p| p > ps) + 1).min(12)
+                }
+                ColumnAnchor::LevelHeight { level, .. } if level < wanted.clamp(1, 12) => {
+                    wanted.clamp(1, 12)
+                }
+                ColumnAnchor::LevelHeight { .. } => 12,
+            };
+            let mut poisoned = tv.clone();
+            poisoned[used..].fill(-1.0);
+            part.isobaric_lowest(&LEVELS, &poisoned, wanted, anchor, &c, &mut z, &mut below);
+            for k in 0..used {
+                prop_assert_eq!(z[k].to_bits(), z_full[k].to_bits(), "level {}", k);
+                prop_assert_eq!(below[k], below_full[k], "level {}", k);
+            }
+            prop_assert!(z[used..].iter().all(|v| v.is_nan()));
+            prop_assert!(below[used..].iter().all(|b| !b));
+            // Any pressure from the top built level down, and below the lowest level,
+            // interpolates to the same bits.
+            let top = LEVELS[used - 1];
+            let p = top + share * (LEVELS[0] * 1.05 - top);
+            for q in [p, top, LEVELS[0] * 1.05] {
+                let (a, b) = (part.height_at_pressure(q, &c), full.height_at_pressure(q, &c));
+                prop_assert_eq!(
+                    a.map(|h| (h.height_m.to_bits(), h.below_ground)),
+                    b.map(|h| (h.height_m.to_bits(), h.below_ground)),
+                    "{} Pa", q
+                );
+            }
+            prop_assert_eq!(ColumnNodes::levels_for_pressure(&LEVELS, top), used.max(1));
         }
     }
 
