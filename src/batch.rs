@@ -23,7 +23,7 @@ use std::sync::mpsc;
 
 use ndarray::{s, ArrayView3, ArrayViewMut2, ArrayViewMut3};
 
-use crate::buffers::zeroed_field;
+use crate::buffers::{zeroed_field, HugeField};
 use crate::compute::{
     background_pool, check_layers, compute_heights, kernel_for, ComputeConfig, ComputeError,
 };
@@ -208,8 +208,8 @@ struct Band {
     /// Whether nothing is read while it is computed (see [`BandJob::run`]): then it takes
     /// every core.
     last_read: bool,
-    t: Vec<f32>,
-    q: Option<Vec<f32>>,
+    t: HugeField<f32>,
+    q: Option<HugeField<f32>>,
     /// The kernel's outputs, turned into the file's form in place.
     out: FileRows,
 }
@@ -225,8 +225,8 @@ impl Band {
             },
             valid: [false; 2],
             last_read: false,
-            t: zeroed_field(values),
-            q: humidity.then(|| zeroed_field(values)),
+            t: HugeField::zeroed(values),
+            q: humidity.then(|| HugeField::zeroed(values)),
             out: FileRows::new(dim, layers),
         }
     }

@@ -30,6 +30,53 @@ pub(crate) fn zeroed_field_array<T: Clone + Default>(
     Array5::from_shape_vec(dim, zeroed_field(len)).unwrap_or_else(|_| Array5::default(dim))
 }
 
+/// A zeroed field buffer of `len` elements backed by huge pages from its first element to
+/// its last, where the system gives them ([`advise_huge_pages`] covers only the 2 MiB-aligned
+/// interior of an allocation, and the allocator's large blocks start just past a page
+/// boundary, not a 2 MiB one: of a 4 MiB band buffer about half was left to 4 KiB pages,
+/// faulted in one by one on first touch). The allocation is one huge page longer than the
+/// whole huge pages the field needs, and the field starts at the first 2 MiB boundary in
+/// it; the spare memory around it is never touched, so it costs address space only.
+#[derive(Debug, Default)]
+pub(crate) struct HugeField<T> {
+    buffer: Vec<T>,
+    start: usize,
+    len: usize,
+}
+
+impl<T: Clone + Default> HugeField<T> {
+    /// A zeroed field of `len` elements (see [`zeroed_field`] for why zeroing costs nothing
+    /// here).
+    pub(crate) fn zeroed(len: usize) -> Self {
+        const HUGE_PAGE: usize = 2 << 20;
+        let size = std::mem::size_of::<T>().max(1);
+        let per_page = HUGE_PAGE / size;
+        let whole = len.div_ceil(per_page.max(1)) * per_page;
+        let mut buffer = vec![T::default(); whole + per_page];
+        let addr = buffer.as_ptr() as usize;
+        let gap = addr.next_multiple_of(HUGE_PAGE) - addr;
+        // A gap that is not a whole number of elements (a type whose size does not divide
+        // the allocator's alignment) leaves the field at the start, advised as before.
+        let start = if gap % size == 0 { gap / size } else { 0 };
+        let end = (start + whole).min(buffer.len());
+        advise_huge_pages(&mut buffer[start..end]);
+        Self { buffer, start, len }
+    }
+}
+
+impl<T> std::ops::Deref for HugeField<T> {
+    type Target = [T];
+    fn deref(&self) -> &[T] {
+        &self.buffer[self.start..self.start + self.len]
+    }
+}
+
+impl<T> std::ops::DerefMut for HugeField<T> {
+    fn deref_mut(&mut self) -> &mut [T] {
+        &mut self.buffer[self.start..self.start + self.len]
+    }
+}
+
 /// Writes the zero of `T` into the first element of every 4 KiB page of `buf[from..]` that
 /// starts within the next `bytes` bytes, so that those pages are faulted in now rather than
 /// at their first real write; returns the index reached (at most `buf.len()`).
@@ -92,6 +139,25 @@ mod tests {
         assert!(a.iter().all(|&x| x == 0.0));
         let empty: Vec<f32> = zeroed_field(0);
         assert!(empty.is_empty());
+    }
+
+    #[test]
+    fn huge_fields_start_on_a_huge_page_and_hold_zeros_of_their_length() {
+        for len in [0usize, 1, 1000, (2 << 20) / 4, (5 << 20) / 4 + 3] {
+            let mut f: HugeField<f32> = HugeField::zeroed(len);
+            assert_eq!(f.len(), len);
+            assert!(f.iter().all(|&x| x == 0.0));
+            assert_eq!(f.as_ptr() as usize % (2 << 20), 0, "{len} values");
+            if let Some(last) = f.last_mut() {
+                *last = 1.5;
+            }
+            assert_eq!(f.iter().filter(|&&x| x == 1.5).count(), len.min(1));
+        }
+        let bytes: HugeField<u8> = HugeField::zeroed(3 << 20);
+        assert_eq!(
+            (bytes.len(), bytes.as_ptr() as usize % (2 << 20)),
+            (3 << 20, 0)
+        );
     }
 
     #[test]
