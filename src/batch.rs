@@ -23,7 +23,7 @@ use std::sync::mpsc;
 
 use ndarray::{s, ArrayView3, ArrayViewMut2, ArrayViewMut3};
 
-use crate::buffers::{zeroed_field, HugeField};
+use crate::buffers::HugeField;
 use crate::compute::{
     background_pool, check_layers, compute_heights, kernel_for, ComputeConfig, ComputeError,
 };
@@ -656,8 +656,8 @@ struct StepInput {
     last_read: bool,
     /// Whether temperature and humidity hold a valid value, once decoded.
     valid: [bool; 2],
-    t: Vec<f32>,
-    q: Option<Vec<f32>>,
+    t: HugeField<f32>,
+    q: Option<HugeField<f32>>,
 }
 
 impl StepInput {
@@ -666,8 +666,8 @@ impl StepInput {
             step: (0, 0),
             last_read: false,
             valid: [false; 2],
-            t: zeroed_field(values),
-            q: humidity.then(|| zeroed_field(values)),
+            t: HugeField::zeroed(values),
+            q: humidity.then(|| HugeField::zeroed(values)),
         }
     }
 }
