@@ -973,8 +973,9 @@ fn isothermal_height_above_top(nodes: &ColumnNodes, p_pa: f64, c: &Constants) ->
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 enum WhilePending {
     /// Wait for the step: for queries over many columns (areas), where rebuilding every
-    /// column costs about as much as the wait (200 × 200 at 0.5°: 7 ms on two cores, 15 ms
-    /// on one; the computation of a whole step about 23 ms).
+    /// column costs a good part of the wait and takes the cores from the step being
+    /// computed (200 × 200 at 0.5°: 3 ms on two cores near the ground, 7 ms up to the top;
+    /// the computation of a whole step about 23 ms on one).
     Wait,
     /// Rebuild the columns asked for, as the batch does: for queries at a few points.
     Rebuild,
