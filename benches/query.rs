@@ -13,6 +13,8 @@
 //!   thickness whose top lies between levels (1000 hPa to between 550 and 500 hPa: rebuilt);
 //! - `position` of 1 and of 1000 points, bilinear, one time: the on-level 1000–500 hPa
 //!   thickness, and for 1000 points also the height between levels;
+//! - `trajectory` of a route of 1000 waypoints at the one valid time, bilinear: the same
+//!   on-level thickness and height between levels;
 //! - one bilinear `profile`;
 //! - precipitation-type guidance on a 50 x 50 area (`guidance_on`, what `GetGuidanceArea`
 //!   computes).
@@ -35,8 +37,8 @@ use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::{Layer, Vertical};
 use hypsogrid::products::guidance::{guidance_on, GuidanceSettings};
 use hypsogrid::query::{
-    area, area_shape, position, profile, AreaQuery, BoundingBox, Interpolation, Limits,
-    LoadedCycle, PositionQuery, ProfileQuery, Quantity, TimeSelector,
+    area, area_shape, position, profile, trajectory, AreaQuery, BoundingBox, Interpolation, Limits,
+    LoadedCycle, PositionQuery, ProfileQuery, Quantity, TimeSelector, TrajectoryQuery, Waypoint,
 };
 
 /// Grid of the synthetic cycle: 0.5° global, the size of a common global product.
@@ -307,6 +309,68 @@ fn position_benches(c: &mut Criterion) {
     });
 }
 
+/// A route of 1000 waypoints (a flight or a drifting buoy, one a minute) at the cycle's one
+/// valid time, bilinear: the on-level thickness (stored heights) and the height between
+/// levels (every waypoint's columns rebuilt, in runs of waypoints on every core).
+fn trajectory_benches(c: &mut Criterion) {
+    with_fixture(|fx| {
+        let lc = &fx.cycle;
+        let limits = Limits::default();
+        let valid = lc
+            .reference_time_unix_s()
+            .expect("the synthetic cycle has a reference time")
+            + lc.cycle.lead_times_s[0];
+        let waypoints: Vec<Waypoint> = points(MANY_POINTS)
+            .into_iter()
+            .map(|(latitude, longitude)| Waypoint {
+                latitude,
+                longitude,
+                valid_time_unix_s: valid,
+            })
+            .collect();
+        let on = fx.layer_on_levels;
+        let cases = [
+            (
+                format!(
+                    "thickness_on_levels_{:.0}_{:.0}hPa",
+                    on.bottom_pa / 100.0,
+                    on.top_pa / 100.0
+                ),
+                Quantity::Thickness(on),
+            ),
+            (
+                format!("height_between_levels_{:.1}hPa", fx.p_between / 100.0),
+                Quantity::GeopotentialHeight {
+                    pressure_pa: fx.p_between,
+                },
+            ),
+        ];
+        let mut group = c.benchmark_group("query_trajectory_bilinear");
+        group
+            .sample_size(10)
+            .warm_up_time(Duration::from_millis(500))
+            .measurement_time(Duration::from_secs(3));
+        for (name, quantity) in cases {
+            let q = TrajectoryQuery {
+                waypoints: waypoints.clone(),
+                quantities: vec![quantity],
+                member: 0,
+                interpolation: Interpolation::Bilinear,
+                allow_extrapolation: false,
+            };
+            let answer = trajectory(lc, &q, &limits).expect("answering the trajectory query");
+            let finite = answer.iter().filter(|s| s.values[0].is_finite()).count();
+            assert_eq!(finite, MANY_POINTS, "{name}: missing values");
+            group.throughput(Throughput::Elements(MANY_POINTS as u64));
+            group.bench_function(
+                BenchmarkId::new(format!("{name}/waypoints"), MANY_POINTS),
+                |b| b.iter(|| trajectory(lc, &q, &limits).expect("answering the trajectory query")),
+            );
+        }
+        group.finish();
+    });
+}
+
 fn profile_benches(c: &mut Criterion) {
     with_fixture(|fx| {
         let lc = &fx.cycle;
@@ -393,6 +457,7 @@ criterion_group!(
     benches,
     area_benches,
     position_benches,
+    trajectory_benches,
     profile_benches,
     guidance_benches,
     cleanup

@@ -1992,47 +1992,72 @@ pub fn trajectory(
         let columns = steps.iter().flat_map(|(c, _)| c.columns());
         check_hybrid_range(lc, &plans, q.member, t, columns, q.allow_extrapolation)?;
     }
-    let evaluators: Result<Vec<Option<Evaluator<'_>>>, QueryError> = used
-        .iter()
-        .enumerate()
-        .map(|(t, &u)| {
-            u.then(|| Evaluator::at_points(lc, &plans, (q.member, t), q.allow_extrapolation))
-                .transpose()
-        })
-        .collect();
-    let mut evaluators = evaluators?;
+    // One evaluator per lead time a waypoint falls on or between, `None` for the others.
+    let evaluators = || -> Result<Vec<Option<Evaluator<'_>>>, QueryError> {
+        used.iter()
+            .enumerate()
+            .map(|(t, &u)| {
+                u.then(|| Evaluator::at_points(lc, &plans, (q.member, t), q.allow_extrapolation))
+                    .transpose()
+            })
+            .collect()
+    };
     let nq = plans.len();
-    let mut later_values = vec![0.0; nq];
-    let mut later_flags = vec![0u8; nq];
-    let mut out = Vec::with_capacity(steps.len());
-    for (waypoint, (corners, (t0, t1, w))) in q.waypoints.iter().zip(&steps) {
-        let mut values = vec![0.0; nq];
-        let mut flags = vec![0u8; nq];
-        if let Some(ev) = evaluators[*t0].as_mut() {
-            ev.sample(corners, &mut values, &mut flags);
-        }
-        if *w > 0.0 {
-            if let Some(ev) = evaluators[*t1].as_mut() {
-                ev.sample(corners, &mut later_values, &mut later_flags);
+    let samples = |evaluators: &mut [Option<Evaluator<'_>>],
+                   waypoints: &[Waypoint],
+                   steps: &[(Corners, (usize, usize, f64))]| {
+        let mut later_values = vec![0.0; nq];
+        let mut later_flags = vec![0u8; nq];
+        let mut out = Vec::with_capacity(steps.len());
+        for (waypoint, (corners, (t0, t1, w))) in waypoints.iter().zip(steps) {
+            let mut values = vec![0.0; nq];
+            let mut flags = vec![0u8; nq];
+            if let Some(ev) = evaluators[*t0].as_mut() {
+                ev.sample(corners, &mut values, &mut flags);
             }
-            for qi in 0..nq {
-                let f = flags[qi] | later_flags[qi];
-                if f & FLAG_MISSING != 0 {
-                    values[qi] = f64::NAN;
-                    flags[qi] = FLAG_MISSING;
-                } else {
-                    values[qi] = (1.0 - w) * values[qi] + w * later_values[qi];
-                    flags[qi] = f;
+            if *w > 0.0 {
+                if let Some(ev) = evaluators[*t1].as_mut() {
+                    ev.sample(corners, &mut later_values, &mut later_flags);
+                }
+                for qi in 0..nq {
+                    let f = flags[qi] | later_flags[qi];
+                    if f & FLAG_MISSING != 0 {
+                        values[qi] = f64::NAN;
+                        flags[qi] = FLAG_MISSING;
+                    } else {
+                        values[qi] = (1.0 - w) * values[qi] + w * later_values[qi];
+                        flags[qi] = f;
+                    }
                 }
             }
+            out.push(TrajectorySample {
+                waypoint: *waypoint,
+                values,
+                flags,
+            });
         }
-        out.push(TrajectorySample {
-            waypoint: *waypoint,
-            values,
-            flags,
-        });
+        out
+    };
+    // As for positions: long routes whose columns are rebuilt (pressures between levels,
+    // or steps whose heights are not in yet) in runs of waypoints on every core, each
+    // thread with its own evaluators; everything else on this thread.
+    let rebuilt = || {
+        plans.iter().any(Plan::rebuilds_column)
+            || (0..ntimes).any(|t| used[t] && lc.heights.ready(q.member, t).is_none())
+    };
+    if steps.len() < 2 * POINTS_A_TASK || !rebuilt() {
+        return Ok(samples(&mut evaluators()?, &q.waypoints, &steps));
     }
-    Ok(out)
+    let runs: Vec<Vec<TrajectorySample>> = q
+        .waypoints
+        .par_chunks(POINTS_A_TASK)
+        .zip(steps.par_chunks(POINTS_A_TASK))
+        .map_init(evaluators, |evaluators, (waypoints, steps)| {
+            let evaluators = evaluators.as_mut().map_err(|e| e.clone())?;
+            Ok(samples(evaluators, waypoints, steps))
+        })
+        .collect::<Result<_, QueryError>>()?;
+    Ok(runs.concat())
 }
 
 #[cfg(test)]

@@ -720,6 +720,46 @@ fn a_trajectory_interpolates_linearly_in_time() {
 
 // ----- physics against the standard atmosphere -----
 
+/// A long route whose columns are rebuilt (a height between levels) is answered in runs of
+/// waypoints on several threads: waypoint for waypoint, and in order, what each waypoint
+/// gives as a route of its own (answered on the calling thread), bit for bit.
+#[test]
+fn a_long_route_answers_as_each_waypoint_alone() {
+    let lc = demo();
+    let t0 = lc.reference_time_unix_s().unwrap();
+    let n = 700;
+    let waypoints: Vec<Waypoint> = (0..n)
+        .map(|i| Waypoint {
+            latitude: 52.0 + 6.0 * i as f64 / n as f64,
+            longitude: -40.0 + 10.0 * ((i * 37) % n) as f64 / n as f64,
+            valid_time_unix_s: t0 + 12 * 3600 + (i as i64) * 60,
+        })
+        .collect();
+    let q = TrajectoryQuery {
+        waypoints: waypoints.clone(),
+        quantities: vec![height(433.0), thickness(1000.0, 500.0)],
+        member: 0,
+        interpolation: Interpolation::Bilinear,
+        allow_extrapolation: false,
+    };
+    let all = trajectory(lc, &q, &Limits::default()).unwrap();
+    assert_eq!(all.len(), n);
+    for (i, (sample, w)) in all.iter().zip(&waypoints).enumerate().step_by(7) {
+        let alone = TrajectoryQuery {
+            waypoints: vec![*w],
+            ..q.clone()
+        };
+        let one = trajectory(lc, &alone, &Limits::default()).unwrap();
+        assert_eq!(sample.waypoint, *w, "waypoint {i}");
+        let bits = |s: &hypsogrid::query::TrajectorySample| {
+            s.values.iter().map(|v| v.to_bits()).collect::<Vec<_>>()
+        };
+        assert_eq!(bits(sample), bits(&one[0]), "waypoint {i}");
+        assert_eq!(sample.flags, one[0].flags, "waypoint {i}");
+        assert!(sample.values.iter().all(|v| v.is_finite()), "waypoint {i}");
+    }
+}
+
 /// Temperature of the U.S. Standard Atmosphere 1976 at a pressure in its lowest two layers:
 /// `T = 288.15 (p / 101325)^(R* L / (g0 M0))` below 11 km' (L = 6.5 K/km', exponent
 /// 0.190263), 216.65 K from 11 to 20 km' (22632 Pa to 5474.9 Pa) (NOAA/NASA/USAF 1976,
