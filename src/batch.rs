@@ -115,7 +115,7 @@ pub fn compute_file(
 }
 
 /// [`compute_file`] with bands of `band_rows` latitude rows (at least one; `None`: about
-/// [`BAND_BYTES`] a field), for tests and measurements. Where the cycle must go through whole
+/// 4 MiB a field), for tests and measurements. Where the cycle must go through whole
 /// steps (compressed output) or whole (see the module documentation), it does, whatever
 /// `band_rows` says; chunked input is read a whole step at a time and computed and written
 /// in bands. The report says what was done.

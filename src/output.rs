@@ -674,7 +674,8 @@ pub struct BandFields<'a> {
 
 impl FileRows {
     /// Buffers for bands of up to `rows` rows of `levels` levels and `cols` longitudes, and
-    /// `layers` layers, allocated as large fields ([`crate::buffers::zeroed_field`]).
+    /// `layers` layers. Heights and flags are fresh zeroed memory on huge pages from their
+    /// first byte to their last (`buffers::HugeField`), so that their first touch is cheap.
     pub fn new((levels, rows, cols): (usize, usize, usize), layers: usize) -> Self {
         let plane = rows * cols;
         Self {
