@@ -4,7 +4,7 @@
 //!
 //! The loops that use this ([`crate::kernel`]'s level and surface steps, the decoding pass of
 //! [`crate::ingest`]) are written without a branch on the data, so that the compiler turns
-//! them into SIMD lanes of whatever width the build allows; [`lane_builds!`] compiles one
+//! them into SIMD lanes of whatever width the build allows; `lane_builds!` compiles one
 //! such body three times and dispatches on a [`Lanes`]. Every build does the same IEEE
 //! operations in the same order (no fused multiply-add is enabled), so all three give the
 //! same bits; `tests/kernel.rs` checks that on the builds this processor has.

@@ -42,7 +42,7 @@ pub struct IngestConfig {
     pub names: NameMap,
     /// Phase convention of relative humidity in the file (WMO default: water).
     pub rh_phase: crate::physics::humidity::RelativeHumidityPhase,
-    /// Constants to compute with: the dataset's own (from the config file's [constants]) or the default.
+    /// Constants to compute with: the dataset's own (from the config file's \[constants\]) or the default.
     pub constants: crate::physics::Constants,
 }
 

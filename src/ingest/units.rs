@@ -8,6 +8,8 @@
 //! Spellings follow UDUNITS-2 and the CF conventions (`K`, `degC`, `Pa`, `hPa`, `kg kg-1`,
 //! `m2 s-2`, `1`), plus the spellings real producers write (`Celsius`, `mbar`, `millibar`,
 //! `g/kg`, `%`, `gpm`, `m^2/s^2`).
+//!
+//! [`Quantity::accepted`]: crate::ingest::units::Quantity::accepted
 
 /// A linear conversion `si = value * scale + offset`.
 #[derive(Clone, Copy, Debug, PartialEq)]

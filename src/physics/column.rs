@@ -6,6 +6,8 @@
 //! known; between two nodes the virtual temperature is taken to vary linearly with height
 //! (a polytropic layer), which is the assumption of the layer integration itself, so that
 //! interpolating a column and integrating it are one and the same model.
+//!
+//! [`ColumnNodes`]: crate::physics::column::ColumnNodes
 
 use std::ops::Range;
 

@@ -13,6 +13,10 @@
 //! [`specific_humidity_from_vapour_pressure`] return `NaN` rather than capping `e` at an
 //! arbitrary fraction of `p`: a capped value would look like data. The column code then
 //! masks the level, which is the honest answer.
+//!
+//! [`RelativeHumidityPhase::IceBelowFreezing`]: crate::physics::humidity::RelativeHumidityPhase::IceBelowFreezing
+//! [`mixing_ratio_from_vapour_pressure`]: crate::physics::humidity::mixing_ratio_from_vapour_pressure
+//! [`specific_humidity_from_vapour_pressure`]: crate::physics::humidity::specific_humidity_from_vapour_pressure
 
 /// 0 °C in kelvin (the ice point; ITS-90).
 const ZERO_CELSIUS_K: f64 = 273.15;

@@ -38,6 +38,11 @@
 //! hundred kelvin), inside a bracket `[T − 120 K, T + 20 K]` that each step narrows; a step
 //! that would leave the bracket is replaced by bisection. Iteration stops when the step is
 //! below [`WET_BULB_TOLERANCE_K`].
+//!
+//! [`WetBulbPhase::Water`]: crate::physics::wetbulb::WetBulbPhase::Water
+//! [`WetBulbPhase::IceBelowFreezing`]: crate::physics::wetbulb::WetBulbPhase::IceBelowFreezing
+//! [`wet_bulb_exceeds_freezing`]: crate::physics::wetbulb::wet_bulb_exceeds_freezing
+//! [`WET_BULB_TOLERANCE_K`]: crate::physics::wetbulb::WET_BULB_TOLERANCE_K
 
 use super::humidity::{
     saturation_vapour_pressure_ice, saturation_vapour_pressure_water,

@@ -17,6 +17,11 @@
 //!   line key.
 //! - An optional **caution** block, wrapped to the width, on a pale amber ground with an amber
 //!   bar: the guidance products put their caution here.
+//!
+//! [`super::font`]: crate::products::font
+//! [`TitleBlock`]: crate::products::chart::TitleBlock
+//! [`ramp_colour`]: crate::products::chart::ramp_colour
+//! [`ChartFill::Categories`]: crate::products::chart::ChartFill::Categories
 
 use ndarray::ArrayView2;
 

@@ -9,6 +9,8 @@
 //! a masked (`NaN`) source corner with a non-zero weight masks the value, while a corner with
 //! zero weight is left out, so that a target point exactly on a source point copies it even
 //! when a neighbour is missing.
+//!
+//! [`RegridPlan::new`]: crate::products::field::RegridPlan::new
 
 use ndarray::{Array2, ArrayView2};
 

@@ -11,6 +11,8 @@
 //! `units` (`"m"`), `closed`, and `valid_time` (RFC 3339) and `cycle` when known. A ring split
 //! at the antimeridian keeps `closed: true`: its parts join end to end, across the
 //! antimeridian, into the ring.
+//!
+//! [`Isoline`]: crate::products::isolines::Isoline
 
 use serde_json::{json, Map, Value};
 

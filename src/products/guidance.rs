@@ -75,6 +75,37 @@
 //! height of the wet-bulb 0 °C level above the ground (common practice). The category says
 //! which kind of precipitation the fields favour *if* precipitation falls; it does not say
 //! whether any will.
+//!
+//! [`CAUTION`]: crate::products::guidance::CAUTION
+//! [`thickness_between`]: crate::physics::column::thickness_between
+//! [`StepColumns`]: crate::compute::StepColumns
+//! [`FLAG_BELOW_GROUND`]: crate::query::FLAG_BELOW_GROUND
+//! [`FLAG_MISSING`]: crate::query::FLAG_MISSING
+//! [`GuidanceSettings::search_top_hpa`]: crate::products::guidance::GuidanceSettings::search_top_hpa
+//! [`ColumnNodes::height_at_pressure`]: crate::physics::column::ColumnNodes::height_at_pressure
+//! [`LEVEL_AT_SURFACE`]: crate::products::guidance::LEVEL_AT_SURFACE
+//! [`LEVEL_NOT_FOUND`]: crate::products::guidance::LEVEL_NOT_FOUND
+//! [`LEVEL_MULTIPLE`]: crate::products::guidance::LEVEL_MULTIPLE
+//! [`LEVEL_INCOMPLETE`]: crate::products::guidance::LEVEL_INCOMPLETE
+//! [`LEVEL_MISSING`]: crate::products::guidance::LEVEL_MISSING
+//! [`LEVEL_NO_HUMIDITY`]: crate::products::guidance::LEVEL_NO_HUMIDITY
+//! [`wet_bulb_exceeds_freezing`]: crate::physics::wetbulb::wet_bulb_exceeds_freezing
+//! [`Rule`]: crate::products::guidance::Rule
+//! [`GuidanceSettings::critical_gain_m_per_km`]: crate::products::guidance::GuidanceSettings::critical_gain_m_per_km
+//! [`Rule::MissingTemperature`]: crate::products::guidance::Rule::MissingTemperature
+//! [`Rule::WarmLayerAloft`]: crate::products::guidance::Rule::WarmLayerAloft
+//! [`Rule::ColumnBelowFreezing`]: crate::products::guidance::Rule::ColumnBelowFreezing
+//! [`Rule::LowGroundMissingThickness`]: crate::products::guidance::Rule::LowGroundMissingThickness
+//! [`Rule::LowGroundBothCold`]: crate::products::guidance::Rule::LowGroundBothCold
+//! [`Rule::LowGroundBothWarm`]: crate::products::guidance::Rule::LowGroundBothWarm
+//! [`Rule::LowGroundMarginal`]: crate::products::guidance::Rule::LowGroundMarginal
+//! [`Rule::NoWetBulbZero`]: crate::products::guidance::Rule::NoWetBulbZero
+//! [`Rule::RaisedGroundBothCold`]: crate::products::guidance::Rule::RaisedGroundBothCold
+//! [`Rule::RaisedGroundBothWarm`]: crate::products::guidance::Rule::RaisedGroundBothWarm
+//! [`Rule::RaisedGroundMarginal`]: crate::products::guidance::Rule::RaisedGroundMarginal
+//! [`Rule::HighGroundCold`]: crate::products::guidance::Rule::HighGroundCold
+//! [`Rule::HighGroundWarm`]: crate::products::guidance::Rule::HighGroundWarm
+//! [`Rule::HighGroundMarginal`]: crate::products::guidance::Rule::HighGroundMarginal
 
 use ndarray::{s, Array2, ArrayView3};
 use rayon::prelude::*;

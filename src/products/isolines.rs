@@ -37,6 +37,8 @@
 //! Longitudes along a line are kept continuous (consecutive points within 180°), so a line
 //! crossing the seam runs past the grid's last longitude, and a ring round the pole ends at its
 //! first point shifted by ±360°.
+//!
+//! [`IsolineOptions::wrap_longitude`]: crate::products::isolines::IsolineOptions::wrap_longitude
 
 use ndarray::ArrayView2;
 

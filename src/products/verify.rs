@@ -37,6 +37,11 @@
 //! Values at levels below the model surface are a convention (an extrapolation), not physics.
 //! By default a point is left out when either side is flagged below ground there; the count
 //! left out is in each row, and [`VerifyRequest::include_below_ground`] keeps them.
+//!
+//! [`verify`]: crate::products::verify::verify
+//! [`TruthSource`]: crate::products::verify::TruthSource
+//! [`RegridPlan`]: crate::products::field::RegridPlan
+//! [`VerifyRequest::include_below_ground`]: crate::products::verify::VerifyRequest::include_below_ground
 
 use ndarray::{s, Array2, ArrayView2, Axis};
 use rayon::prelude::*;

@@ -5,6 +5,8 @@
 //! [`FieldError`] that names the request field as a dotted path. Range checks (latitudes,
 //! pressures, layer order, stride, member) are the query module's: it validates every
 //! request the same way whichever door it came in by. Domain to wire is `From`.
+//!
+//! [`FieldError`]: crate::service::convert::FieldError
 
 use std::time::{SystemTime, UNIX_EPOCH};
 
