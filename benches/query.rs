@@ -69,6 +69,28 @@ struct Fixture {
     layer_rebuilt: Layer,
 }
 
+impl Fixture {
+    /// The thickness between levels (a difference of stored heights), named with its levels.
+    fn on_levels(&self) -> (String, Quantity) {
+        let on = self.layer_on_levels;
+        let name = format!(
+            "thickness_on_levels_{:.0}_{:.0}hPa",
+            on.bottom_pa / 100.0,
+            on.top_pa / 100.0
+        );
+        (name, Quantity::Thickness(on))
+    }
+
+    /// The height between levels (rebuilt columns), named with its pressure.
+    fn between_levels(&self) -> (String, Quantity) {
+        let name = format!("height_between_levels_{:.1}hPa", self.p_between / 100.0);
+        let quantity = Quantity::GeopotentialHeight {
+            pressure_pa: self.p_between,
+        };
+        (name, quantity)
+    }
+}
+
 static FIXTURE: OnceLock<std::sync::Mutex<Option<Fixture>>> = OnceLock::new();
 
 fn with_fixture<R>(f: impl FnOnce(&Fixture) -> R) -> R {
@@ -205,22 +227,9 @@ fn position_query(points: Vec<(f64, f64)>, quantity: Quantity) -> PositionQuery 
 fn area_benches(c: &mut Criterion) {
     with_fixture(|fx| {
         let lc = &fx.cycle;
-        let on = fx.layer_on_levels;
         let cases = [
-            (
-                format!(
-                    "thickness_on_levels_{:.0}_{:.0}hPa",
-                    on.bottom_pa / 100.0,
-                    on.top_pa / 100.0
-                ),
-                Quantity::Thickness(on),
-            ),
-            (
-                format!("height_between_levels_{:.1}hPa", fx.p_between / 100.0),
-                Quantity::GeopotentialHeight {
-                    pressure_pa: fx.p_between,
-                },
-            ),
+            fx.on_levels(),
+            fx.between_levels(),
             (
                 format!(
                     "thickness_rebuilt_{:.0}_{:.1}hPa",
@@ -268,24 +277,11 @@ fn position_benches(c: &mut Criterion) {
     with_fixture(|fx| {
         let lc = &fx.cycle;
         let limits = Limits::default();
-        let on = fx.layer_on_levels;
-        let thickness = Quantity::Thickness(on);
-        let between = Quantity::GeopotentialHeight {
-            pressure_pa: fx.p_between,
-        };
-        let on_name = format!(
-            "thickness_on_levels_{:.0}_{:.0}hPa",
-            on.bottom_pa / 100.0,
-            on.top_pa / 100.0
-        );
+        let ((on_name, thickness), (between_name, between)) = (fx.on_levels(), fx.between_levels());
         let cases = [
             (on_name.clone(), 1, thickness),
-            (on_name.clone(), MANY_POINTS, thickness),
-            (
-                format!("height_between_levels_{:.1}hPa", fx.p_between / 100.0),
-                MANY_POINTS,
-                between,
-            ),
+            (on_name, MANY_POINTS, thickness),
+            (between_name, MANY_POINTS, between),
         ];
         let mut group = c.benchmark_group("query_position_bilinear");
         group
@@ -328,23 +324,7 @@ fn trajectory_benches(c: &mut Criterion) {
                 valid_time_unix_s: valid,
             })
             .collect();
-        let on = fx.layer_on_levels;
-        let cases = [
-            (
-                format!(
-                    "thickness_on_levels_{:.0}_{:.0}hPa",
-                    on.bottom_pa / 100.0,
-                    on.top_pa / 100.0
-                ),
-                Quantity::Thickness(on),
-            ),
-            (
-                format!("height_between_levels_{:.1}hPa", fx.p_between / 100.0),
-                Quantity::GeopotentialHeight {
-                    pressure_pa: fx.p_between,
-                },
-            ),
-        ];
+        let cases = [fx.on_levels(), fx.between_levels()];
         let mut group = c.benchmark_group("query_trajectory_bilinear");
         group
             .sample_size(10)

@@ -874,16 +874,16 @@ impl<'a> StepColumns<'a> {
         let c = &self.constants;
         let all = s.tv.len();
         let surface = self.surface(row, col);
-        // Virtual temperatures are formed only for the levels the build reads: up to
-        // `wanted`, and at least up to the lowest level above ground when the column stands
-        // on the surface (its temperature gives the surface node's).
-        let levels = match (&self.cycle.vertical, self.reference, surface) {
-            (Vertical::Isobaric { pressure_pa }, Reference::Surface, Some((ps, _))) => {
-                let k0 = pressure_pa.partition_point(|&p| p > ps);
-                wanted.max(k0 + 1).min(all)
+        let isobaric = match &self.cycle.vertical {
+            Vertical::Isobaric { pressure_pa } => {
+                Some((pressure_pa, self.anchor(surface, row, col, pressure_pa)))
             }
-            _ => all,
+            Vertical::Hybrid { .. } => None,
         };
+        // Virtual temperatures are formed only for the levels the build reads.
+        let levels = isobaric.map_or(all, |(pressure_pa, anchor)| {
+            ColumnNodes::levels_built(pressure_pa, wanted, anchor)
+        });
         match &self.cycle.vertical {
             Vertical::Isobaric { pressure_pa } => s.pressure.copy_from_slice(pressure_pa),
             Vertical::Hybrid { a_half_pa, b_half } => {
@@ -906,33 +906,29 @@ impl<'a> StepColumns<'a> {
                 }
             };
         }
-        match &self.cycle.vertical {
-            Vertical::Isobaric { pressure_pa } => {
-                let anchor = self.anchor(surface, row, col, pressure_pa);
-                s.nodes.isobaric_lowest(
-                    pressure_pa,
-                    &s.tv,
-                    levels,
-                    anchor,
-                    c,
-                    &mut s.height,
-                    &mut s.below,
-                );
-            }
-            Vertical::Hybrid { a_half_pa, b_half } => {
-                let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));
-                s.nodes.hybrid(
-                    a_half_pa,
-                    b_half,
-                    &s.tv,
-                    ps,
-                    zs,
-                    c,
-                    &mut s.height,
-                    &mut s.height_half,
-                );
-                s.below.iter_mut().for_each(|b| *b = false);
-            }
+        if let Some((pressure_pa, anchor)) = isobaric {
+            s.nodes.isobaric_lowest(
+                pressure_pa,
+                &s.tv,
+                levels,
+                anchor,
+                c,
+                &mut s.height,
+                &mut s.below,
+            );
+        } else if let Vertical::Hybrid { a_half_pa, b_half } = &self.cycle.vertical {
+            let (ps, zs) = surface.unwrap_or((f64::NAN, f64::NAN));
+            s.nodes.hybrid(
+                a_half_pa,
+                b_half,
+                &s.tv,
+                ps,
+                zs,
+                c,
+                &mut s.height,
+                &mut s.height_half,
+            );
+            s.below.iter_mut().for_each(|b| *b = false);
         }
     }
     /// The full-level heights of row `row` of a hybrid cycle into `z` (`[level, lon]`,

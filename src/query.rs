@@ -1809,23 +1809,41 @@ pub fn position(
                 .iter()
                 .any(|&t| lc.heights.ready(q.member, t).is_none())
     };
-    if q.points.len() < 2 * POINTS_A_TASK || !rebuilt() {
-        return Ok(series(&mut evaluators()?, &q.points, &corners));
+    answer_in_runs(
+        (&q.points, &corners),
+        rebuilt,
+        evaluators,
+        |e: &mut Vec<_>, p, c| series(e, p, c),
+    )
+}
+
+/// Answers `points` (each with its `with`) by `answer`, given evaluators from `evaluators`:
+/// on the calling thread, unless there are at least twice [`POINTS_A_TASK`] of them and
+/// `rebuilt` says their columns are rebuilt (quantities between levels, or steps whose
+/// heights are not in yet); then in runs of [`POINTS_A_TASK`] on every core, each thread
+/// with its own evaluators (column scratch), the answers in order. Nothing here waits:
+/// points rebuild what is not stored yet. Rebuilding takes about 2 µs a point; values
+/// copied from the stored heights (0.2 µs a point) stay on the calling thread: in runs they
+/// took twice as long (criterion, 1000 points).
+fn answer_in_runs<P: Sync, W: Sync, E, R: Send>(
+    (points, with): (&[P], &[W]),
+    rebuilt: impl FnOnce() -> bool,
+    evaluators: impl Fn() -> Result<E, QueryError> + Sync + Send,
+    answer: impl Fn(&mut E, &[P], &[W]) -> Vec<R> + Sync + Send,
+) -> Result<Vec<R>, QueryError> {
+    if points.len() < 2 * POINTS_A_TASK || !rebuilt() {
+        return Ok(answer(&mut evaluators()?, points, with));
     }
-    // Thousands of points whose columns are rebuilt (about 2 µs a point): runs of points on
-    // every core, each thread with its own evaluators (column scratch). Nothing here waits:
-    // points rebuild what is not stored yet. Values copied from the stored heights (0.2 µs a
-    // point) stay on this thread: in runs they took twice as long (criterion, 1000 points).
-    let runs: Vec<Vec<PointSeries>> = q
-        .points
+    let runs: Vec<Vec<R>> = points
         .par_chunks(POINTS_A_TASK)
-        .zip(corners.par_chunks(POINTS_A_TASK))
-        .map_init(evaluators, |evaluators, (points, corners)| {
+        .zip(with.par_chunks(POINTS_A_TASK))
+        .map_init(evaluators, |evaluators, (points, with)| {
             let evaluators = evaluators.as_mut().map_err(|e| e.clone())?;
-            Ok(series(evaluators, points, corners))
+            Ok(answer(evaluators, points, with))
         })
         .collect::<Result<_, QueryError>>()?;
-    Ok(runs.concat())
+    // Moved out in order (`concat` would clone every answer).
+    Ok(runs.into_iter().flatten().collect())
 }
 
 /// Points a task of a large position query takes; fewer than twice this many are answered
@@ -2038,26 +2056,17 @@ pub fn trajectory(
         }
         out
     };
-    // As for positions: long routes whose columns are rebuilt (pressures between levels,
-    // or steps whose heights are not in yet) in runs of waypoints on every core, each
-    // thread with its own evaluators; everything else on this thread.
+    // As for positions: long routes whose columns are rebuilt go in runs of waypoints.
     let rebuilt = || {
         plans.iter().any(Plan::rebuilds_column)
             || (0..ntimes).any(|t| used[t] && lc.heights.ready(q.member, t).is_none())
     };
-    if steps.len() < 2 * POINTS_A_TASK || !rebuilt() {
-        return Ok(samples(&mut evaluators()?, &q.waypoints, &steps));
-    }
-    let runs: Vec<Vec<TrajectorySample>> = q
-        .waypoints
-        .par_chunks(POINTS_A_TASK)
-        .zip(steps.par_chunks(POINTS_A_TASK))
-        .map_init(evaluators, |evaluators, (waypoints, steps)| {
-            let evaluators = evaluators.as_mut().map_err(|e| e.clone())?;
-            Ok(samples(evaluators, waypoints, steps))
-        })
-        .collect::<Result<_, QueryError>>()?;
-    Ok(runs.concat())
+    answer_in_runs(
+        (&q.waypoints, &steps),
+        rebuilt,
+        evaluators,
+        |e: &mut Vec<_>, w, s| samples(e, w, s),
+    )
 }
 
 #[cfg(test)]

@@ -267,7 +267,7 @@ impl ColumnNodes {
             mask_outputs(z_out, below_out);
             return;
         }
-        let wanted = wanted.clamp(1, n);
+        let used = Self::levels_built(p_pa, wanted, anchor);
         match anchor {
             ColumnAnchor::Surface {
                 pressure_pa,
@@ -275,16 +275,35 @@ impl ColumnNodes {
             } => self.isobaric_from_surface(
                 p_pa,
                 tv_k,
-                wanted,
+                used,
                 (pressure_pa, height_m),
                 c,
                 z_out,
                 below_out,
             ),
             ColumnAnchor::LevelHeight { level, height_m } => {
-                let used = if level < wanted { wanted } else { n };
                 self.isobaric_from_level(p_pa, tv_k, used, level, height_m, c, z_out, below_out)
             }
+        }
+    }
+
+    /// How many of the lowest levels of `p_pa` [`ColumnNodes::isobaric_lowest`] builds, and
+    /// reads the virtual temperatures of, for `wanted` levels asked from `anchor`: at least
+    /// one, at least up to the lowest level above the ground for a surface anchor, all of
+    /// them for a level anchor at or above `wanted`.
+    pub fn levels_built(p_pa: &[f64], wanted: usize, anchor: ColumnAnchor) -> usize {
+        let n = p_pa.len();
+        if n == 0 {
+            return 0;
+        }
+        let wanted = wanted.clamp(1, n);
+        match anchor {
+            ColumnAnchor::Surface { pressure_pa, .. } => {
+                let below_ground = p_pa.partition_point(|&p| p > pressure_pa);
+                wanted.max(below_ground + 1).min(n)
+            }
+            ColumnAnchor::LevelHeight { level, .. } if level < wanted => wanted,
+            ColumnAnchor::LevelHeight { .. } => n,
         }
     }
 
@@ -303,7 +322,7 @@ impl ColumnNodes {
         &mut self,
         p_pa: &[f64],
         tv_k: &[f64],
-        wanted: usize,
+        used: usize,
         (ps, zs): (f64, f64),
         c: &Constants,
         z_out: &mut [f64],
@@ -320,8 +339,8 @@ impl ColumnNodes {
             mask_outputs(z_out, below_out);
             return;
         }
-        // Levels `n..` stay masked: not built.
-        let n = wanted.max(k0 + 1).min(all);
+        // Levels `used..` stay masked: not built (`used > k0`: see `levels_built`).
+        let n = used;
         z_out[n..].fill(f64::NAN);
         let (p_pa, tv_k, z_out) = (&p_pa[..n], &tv_k[..n], &mut z_out[..n]);
         let rd_g0 = c.rd_over_g0();
