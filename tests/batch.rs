@@ -309,6 +309,22 @@ fn expected_bands(
     }
 }
 
+/// The blocks the file system holds for `path` end with the file: the writer reserves an
+/// uncompressed output's data blocks ahead of its writes (`fallocate`, keeping the size), and
+/// a reservation past the finished file would stay allocated, unseen, as long as the file.
+/// 64 KiB of slack covers the file system's own extent blocks on a fragmented disk.
+fn assert_no_blocks_past_the_end(what: &str, path: &Path) {
+    use std::os::unix::fs::MetadataExt;
+    let meta = std::fs::metadata(path).unwrap_or_else(|e| panic!("{what}: {e}"));
+    let held = meta.blocks() * 512;
+    let limit = meta.len().div_ceil(4096) * 4096 + (64 << 10);
+    assert!(
+        held <= limit,
+        "{what}: {held} bytes of blocks held for a file of {} bytes",
+        meta.len()
+    );
+}
+
 /// Runs the batch on `input` with each of `band_rows` and compares each output with the
 /// reference file; returns the reports.
 fn compare_variant(
@@ -321,6 +337,7 @@ fn compare_variant(
 ) -> Vec<BatchReport> {
     let want = dir.join(format!("{label}-reference.out.nc"));
     let cycle = reference(input, &want, config, options);
+    assert_no_blocks_past_the_end(&format!("{label}, whole cycle"), &want);
     let steps = cycle.members * cycle.lead_times_s.len();
     let deflate = options.deflate_level.is_some();
     band_rows
@@ -330,6 +347,7 @@ fn compare_variant(
             let got = dir.join(format!("{label}-bands-{asked:?}.out.nc"));
             let report = batch(input, &got, config, options, asked);
             assert_same_file(&what, &got, &want);
+            assert_no_blocks_past_the_end(&what, &got);
             let want = expected_bands(input, config, deflate, asked);
             let (_, _, levels, rows, cols) = cycle.temperature.dim();
             assert!(
