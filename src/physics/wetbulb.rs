@@ -9,7 +9,10 @@
 //!
 //! with `t_w` in °C, `e_w` / `e_i` the saturation vapour pressures over water / ice
 //! ([`crate::physics::humidity`]). The coefficients are quoted from memory of WMO-No. 8
-//! (2008 and 2018 editions, Part I, chapter 4, Annex 4.B). For comparison, the AMS *Glossary of
+//! (2008 and 2018 editions, Part I, chapter 4, Annex 4.B); the water form,
+//! `6.53·10⁻⁴ (1 + 9.44·10⁻⁴ t_w)`, is also how a public calculator quotes the 2012 (seventh)
+//! edition (rechneronline.de, "Psychrometrische Luftfeuchte"), while the ice coefficient
+//! `5.75·10⁻⁴` rests on memory alone. For comparison, the AMS *Glossary of
 //! Meteorology* ("psychrometric formula") gives the older Smithsonian values
 //! 6.60·10⁻⁴ (1 + 0.00115 t_w) and, for an iced bulb, about 5.82·10⁻⁴.
 //!
@@ -58,11 +61,13 @@ const ZERO_CELSIUS_K: f64 = 273.15;
 const SATURATION_AT_ZERO_CELSIUS_PA: f64 = 611.2;
 
 /// Psychrometer coefficient of an aspirated (Assmann) psychrometer with a wet bulb not iced,
-/// K⁻¹ (WMO-No. 8, Annex 4.B; from memory).
+/// K⁻¹ (WMO-No. 8, Annex 4.B; from memory, and as a public calculator quotes the 2012
+/// edition: see the module notes).
 pub const PSYCHROMETER_COEFFICIENT_WATER: f64 = 6.53e-4;
 
 /// Temperature dependence of [`PSYCHROMETER_COEFFICIENT_WATER`], per °C of the wet bulb:
-/// `A = 6.53·10⁻⁴ (1 + 0.000944 t_w)` (WMO-No. 8, Annex 4.B; from memory).
+/// `A = 6.53·10⁻⁴ (1 + 0.000944 t_w)` (WMO-No. 8, Annex 4.B; from memory, and as quoted for
+/// the 2012 edition: see the module notes).
 pub const PSYCHROMETER_TEMPERATURE_FACTOR: f64 = 0.000944;
 
 /// Psychrometer coefficient with the bulb iced, K⁻¹ (WMO-No. 8, Annex 4.B; from memory).
