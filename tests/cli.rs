@@ -117,6 +117,70 @@ fn compute_writes_heights_and_the_requested_layers() {
     assert!(history.contains("compute"), "{history}");
 }
 
+/// `--heights-only`: the heights and flags of the default run, value for value, and no
+/// thickness; asking for layers as well is refused before anything is read.
+#[test]
+fn compute_heights_only_writes_the_same_heights_and_no_thickness() {
+    let dir = tempfile::tempdir().unwrap();
+    let input = write_demo_cycle(dir.path()).unwrap();
+    let (full, only) = (dir.path().join("full.nc"), dir.path().join("only.nc"));
+    for (output, extra) in [(&full, None), (&only, Some("--heights-only"))] {
+        let mut args = vec![
+            os("compute"),
+            input.as_os_str(),
+            os("--output"),
+            output.as_os_str(),
+        ];
+        args.extend(extra.map(os));
+        let out = hypsogrid(&args);
+        assert!(
+            out.status.success(),
+            "compute {extra:?} failed: {}",
+            stderr(&out)
+        );
+    }
+    let (a, b) = (netcdf::open(&full).unwrap(), netcdf::open(&only).unwrap());
+    let names = |f: &netcdf::File| -> Vec<String> { f.variables().map(|v| v.name()).collect() };
+    assert!(names(&a).iter().any(|n| n.starts_with("thickness_")));
+    assert!(
+        !names(&b).iter().any(|n| n.starts_with("thickness_")),
+        "{:?}",
+        names(&b)
+    );
+    let z = |f: &netcdf::File| {
+        f.variable("geopotential_height")
+            .unwrap()
+            .get_values::<f32, _>(..)
+            .unwrap()
+    };
+    let flags = |f: &netcdf::File| {
+        f.variable("below_ground")
+            .unwrap()
+            .get_values::<i8, _>(..)
+            .unwrap()
+    };
+    let (za, zb) = (z(&a), z(&b));
+    assert_eq!(za.len(), zb.len());
+    assert!(
+        za.iter().zip(&zb).all(|(x, y)| x.to_bits() == y.to_bits()),
+        "heights differ"
+    );
+    assert_eq!(flags(&a), flags(&b));
+
+    let out = hypsogrid(&[
+        os("compute"),
+        input.as_os_str(),
+        os("--output"),
+        dir.path().join("both.nc").as_os_str(),
+        os("--heights-only"),
+        os("--layers"),
+        os("1000:500"),
+    ]);
+    assert_eq!(out.status.code(), Some(2), "{}", stderr(&out));
+    assert!(stderr(&out).contains("--layers"), "{}", stderr(&out));
+    assert!(!dir.path().join("both.nc").exists());
+}
+
 #[test]
 fn compute_on_a_file_that_is_not_netcdf_fails_with_one_line_and_leaves_nothing() {
     let dir = tempfile::tempdir().unwrap();

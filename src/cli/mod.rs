@@ -72,6 +72,11 @@ pub(crate) struct ReadArgs {
     /// Layers for thickness, as BOTTOM:TOP in hPa, comma separated.
     #[arg(long, value_delimiter = ',', default_value = "1000:500,1000:850,850:700", value_parser = parse_layer)]
     layers: Vec<Layer>,
+    /// Geopotential height on every level and its below-ground flag only, no thickness (for
+    /// verification against analyses, or hybrid-level input, whose heights alone are computed
+    /// level by level along the rows instead of column by column).
+    #[arg(long, conflicts_with = "layers")]
+    heights_only: bool,
 }
 
 /// How to read a cycle from a file and compute its heights; shared by every command that
@@ -107,7 +112,11 @@ impl ReadArgs {
 
     fn compute_config(&self, ingest: &IngestConfig) -> ComputeConfig {
         ComputeConfig {
-            layers: self.layers.clone(),
+            layers: if self.heights_only {
+                Vec::new()
+            } else {
+                self.layers.clone()
+            },
             ..self.dataset.compute_config(ingest)
         }
     }
