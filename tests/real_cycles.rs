@@ -168,6 +168,33 @@ fn gfs_1deg_virtual_temperature_reduces_the_low_level_residual() {
     );
 }
 
+/// The GFS 2.5° +120 h file, read, and its heights computed (relative humidity turned into
+/// vapour pressure with Bolton's saturation pressure), as the two tests below use them.
+struct Gfs2p5 {
+    path: PathBuf,
+    cycle: Cycle,
+    config: ComputeConfig,
+    heights: hypsogrid::model::Heights,
+}
+
+fn gfs_2p5deg() -> Option<Gfs2p5> {
+    let path = shared_data(
+        "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
+    )?;
+    let cycle = read_cycle(&path, &IngestConfig::default()).expect("reading the GFS file");
+    let config = ComputeConfig {
+        saturation_formula: SaturationFormula::Bolton,
+        ..ComputeConfig::default()
+    };
+    let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
+    Some(Gfs2p5 {
+        path,
+        cycle,
+        config,
+        heights,
+    })
+}
+
 /// GFS 2.5° global +120 h (PROVENANCE.md in the folder): this file has surface pressure and
 /// orography, so heights are integrated from the ground, and every level above the ground is
 /// compared with NCEP's own height there. The surface start adds the uncertainty of the
@@ -175,21 +202,13 @@ fn gfs_1deg_virtual_temperature_reduces_the_low_level_residual() {
 /// level above; the limits are set a little above what this implementation measured.
 #[test]
 fn gfs_2p5deg_heights_from_the_surface_match_the_files_own_heights() {
-    let Some(path) = shared_data(
-        "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
-    ) else {
+    let Some(Gfs2p5 { cycle, heights, .. }) = gfs_2p5deg() else {
         return;
     };
-    let cycle = read_cycle(&path, &IngestConfig::default()).expect("reading the GFS file");
     assert!(
         cycle.surface.is_some(),
         "surface pressure and orography found"
     );
-    let config = ComputeConfig {
-        saturation_formula: SaturationFormula::Bolton,
-        ..ComputeConfig::default()
-    };
-    let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
     let file_z = cycle
         .file_heights
         .as_ref()
@@ -255,17 +274,15 @@ fn gfs_2p5deg_surface_layer_from_the_level_above_fits_ncep_better_than_2m_values
         virtual_temperature_from_specific_humidity,
     };
     use hypsogrid::physics::hypsometric::logarithmic_mean_temperature;
-    let Some(path) = shared_data(
-        "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
-    ) else {
+    let Some(Gfs2p5 {
+        path,
+        cycle,
+        config,
+        heights,
+    }) = gfs_2p5deg()
+    else {
         return;
     };
-    let cycle = read_cycle(&path, &IngestConfig::default()).expect("reading the GFS file");
-    let config = ComputeConfig {
-        saturation_formula: SaturationFormula::Bolton,
-        ..ComputeConfig::default()
-    };
-    let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
     let file_z = cycle
         .file_heights
         .as_ref()
