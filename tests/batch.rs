@@ -312,9 +312,16 @@ fn expected_bands(
 /// The blocks the file system holds for `path` end with the file: the writer reserves an
 /// uncompressed output's data blocks ahead of its writes (`fallocate`, keeping the size), and
 /// a reservation past the finished file would stay allocated, unseen, as long as the file.
-/// 64 KiB of slack covers the file system's own extent blocks on a fragmented disk.
+/// 64 KiB of slack covers the file system's own extent blocks on a fragmented disk. Checked
+/// on ext4 and tmpfs (CI's), which keep no blocks past a closed file's end of their own
+/// accord; XFS, for one, may keep its speculative preallocation there for a while whatever
+/// the writer did, so elsewhere the check is skipped with a message.
 fn assert_no_blocks_past_the_end(what: &str, path: &Path) {
     use std::os::unix::fs::MetadataExt;
+    if !blocks_end_with_the_file(path) {
+        eprintln!("{what}: blocks past the end not checked on this file system");
+        return;
+    }
     let meta = std::fs::metadata(path).unwrap_or_else(|e| panic!("{what}: {e}"));
     let held = meta.blocks() * 512;
     let limit = meta.len().div_ceil(4096) * 4096 + (64 << 10);
@@ -323,6 +330,25 @@ fn assert_no_blocks_past_the_end(what: &str, path: &Path) {
         "{what}: {held} bytes of blocks held for a file of {} bytes",
         meta.len()
     );
+}
+
+/// Whether `path` lies on ext4 or tmpfs (`statfs`'s file system magic numbers, from
+/// linux/magic.h).
+fn blocks_end_with_the_file(path: &Path) -> bool {
+    use std::os::unix::ffi::OsStrExt;
+    const EXT4_SUPER_MAGIC: u64 = 0xEF53;
+    const TMPFS_MAGIC: u64 = 0x0102_1994;
+    let Ok(c_path) = std::ffi::CString::new(path.as_os_str().as_bytes()) else {
+        return false;
+    };
+    // SAFETY: `c_path` is a valid C string and `st` a properly sized, writable statfs for
+    // the duration of the call.
+    let mut st: libc::statfs = unsafe { std::mem::zeroed() };
+    if unsafe { libc::statfs(c_path.as_ptr(), &mut st) } != 0 {
+        return false;
+    }
+    let magic = u64::try_from(st.f_type).unwrap_or(0);
+    magic == EXT4_SUPER_MAGIC || magic == TMPFS_MAGIC
 }
 
 /// Runs the batch on `input` with each of `band_rows` and compares each output with the
