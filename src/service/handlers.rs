@@ -130,6 +130,28 @@ impl HeightServiceHandlers {
         &self.settings
     }
 
+    /// A unary call whose request is taken whole: admitted ([`Self::begin`]), answered by
+    /// `work` with the call and the request's message, and its end recorded on the span
+    /// ([`finish`]), refused or not.
+    pub(super) async fn answer<Q, A, F, Fut>(
+        &self,
+        request: Request<Q>,
+        work: F,
+    ) -> Result<Response<A>, Status>
+    where
+        A: Message,
+        F: FnOnce(Call, Q) -> Fut,
+        Fut: std::future::Future<Output = Result<A, Status>>,
+    {
+        let started = Instant::now();
+        let result = async {
+            let call = self.begin(request.metadata())?;
+            work(call, request.into_inner()).await
+        }
+        .await;
+        finish(started, result)
+    }
+
     /// The common start of every call.
     pub(super) fn begin(&self, metadata: &MetadataMap) -> Result<Call, Status> {
         if let Some(tokens) = &self.settings.tokens {
@@ -170,10 +192,8 @@ impl HeightServiceHandlers {
         &self,
         request: Request<pb::PositionRequest>,
     ) -> Result<Response<pb::PositionResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.get_ref();
+        self.answer(request, |call, r| async move {
+            let r = &r;
             let query = Arc::new(PositionQuery::try_from(r)?);
             let lc = find_cycle(&call.snapshot, &r.cycle_id)?;
             let limits = self.settings.limits;
@@ -196,9 +216,8 @@ impl HeightServiceHandlers {
                 &query.quantities,
                 &series,
             ))
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "QueryProfile", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -206,10 +225,8 @@ impl HeightServiceHandlers {
         &self,
         request: Request<pb::ProfileRequest>,
     ) -> Result<Response<pb::ProfileResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.get_ref();
+        self.answer(request, |call, r| async move {
+            let r = &r;
             let query = ProfileQuery::try_from(r)?;
             let lc = find_cycle(&call.snapshot, &r.cycle_id)?;
             let lc2 = Arc::clone(&lc);
@@ -218,9 +235,8 @@ impl HeightServiceHandlers {
                 .await?
                 .map_err(|e| status::query_error(e, Rpc::Profile))?;
             Ok(convert::profile_response(&lc.id, &answer))
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "QueryTrajectory", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -228,10 +244,8 @@ impl HeightServiceHandlers {
         &self,
         request: Request<pb::TrajectoryRequest>,
     ) -> Result<Response<pb::TrajectoryResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.get_ref();
+        self.answer(request, |call, r| async move {
+            let r = &r;
             let query = Arc::new(TrajectoryQuery::try_from(r)?);
             let lc = find_cycle(&call.snapshot, &r.cycle_id)?;
             let limits = self.settings.limits;
@@ -244,9 +258,8 @@ impl HeightServiceHandlers {
                 &query.quantities,
                 &samples,
             ))
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "QueryArea", cycle_id = Empty, rows = Empty, chunks = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]

@@ -6,13 +6,11 @@
 //! same library functions as the command line (`crate::products::orders` and friends), so a
 //! chart from `RenderChart` and one from `hypsogrid chart` on the same file are the same bytes.
 
-use std::time::Instant;
-
 use tonic::{Request, Response, Status};
 use tracing::field::Empty;
 
 use super::convert::{missing, rfc3339, FieldError};
-use super::handlers::{blocking, find_cycle, finish, HeightServiceHandlers};
+use super::handlers::{blocking, find_cycle, HeightServiceHandlers};
 use super::status;
 use crate::pb;
 use crate::pb::product_service_server::ProductService;
@@ -298,10 +296,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::IsolinesRequest>,
     ) -> Result<Response<pb::IsolinesResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let choice = selection.choice()?;
             let levels = match (r.interval, r.values.is_empty()) {
@@ -357,9 +352,8 @@ impl ProductService for HeightServiceHandlers {
                     .collect(),
                 geojson,
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "RenderChart", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -367,10 +361,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::ChartRequest>,
     ) -> Result<Response<pb::ChartResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let kind = pb::ChartKind::try_from(r.kind)
                 .map_err(|_| FieldError::new("kind", format!("unknown chart kind {}", r.kind)))?;
@@ -418,9 +409,8 @@ impl ProductService for HeightServiceHandlers {
                 png: chart.png,
                 caution: chart.caution.unwrap_or_default().to_string(),
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "GetGuidanceArea", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -428,10 +418,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::GuidanceAreaRequest>,
     ) -> Result<Response<pb::GuidanceAreaResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let bbox = crate::query::BoundingBox::from(r.bbox.as_ref().ok_or_else(|| missing("bbox"))?);
             let stride = r.stride.unwrap_or(1) as usize;
@@ -487,9 +474,8 @@ impl ProductService for HeightServiceHandlers {
                 thresholds: Some(thresholds(&settings)),
                 caution: CAUTION.to_string(),
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "GetGuidancePoints", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -497,10 +483,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::GuidancePointsRequest>,
     ) -> Result<Response<pb::GuidancePointsResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let pts = points(&r.points)?;
             let settings = self.guidance_for(r.thresholds.as_ref())?;
@@ -535,9 +518,8 @@ impl ProductService for HeightServiceHandlers {
                 thresholds: Some(thresholds(&settings)),
                 caution: CAUTION.to_string(),
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "GetEnsembleArea", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -545,10 +527,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::EnsembleAreaRequest>,
     ) -> Result<Response<pb::EnsembleAreaResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let quantity = selection.choice()?.quantity;
             let stat = statistic(r.statistic.as_ref(), "statistic")?;
@@ -580,9 +559,8 @@ impl ProductService for HeightServiceHandlers {
                 values,
                 caution: probability_caution(std::slice::from_ref(&stat)),
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "GetEnsemblePoints", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -590,10 +568,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::EnsemblePointsRequest>,
     ) -> Result<Response<pb::EnsemblePointsResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let selection = Selection::from_wire(r.field.as_ref())?;
             let quantity = selection.choice()?.quantity;
             let pts = points(&r.points)?;
@@ -630,9 +605,8 @@ impl ProductService for HeightServiceHandlers {
                     })
                     .collect(),
             })
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 
     #[tracing::instrument(skip_all, fields(method = "Verify", cycle_id = Empty, latency_ms = Empty, response_bytes = Empty, code = Empty))]
@@ -640,10 +614,7 @@ impl ProductService for HeightServiceHandlers {
         &self,
         request: Request<pb::VerifyRequest>,
     ) -> Result<Response<pb::VerifyResponse>, Status> {
-        let started = Instant::now();
-        let result = async {
-            let call = self.begin(request.metadata())?;
-            let r = request.into_inner();
+        self.answer(request, |call, r| async move {
             let items = r
                 .quantities
                 .iter()
@@ -689,9 +660,8 @@ impl ProductService for HeightServiceHandlers {
                 .await?
             };
             Ok(verify_response(&report))
-        }
-        .await;
-        finish(started, result)
+        })
+        .await
     }
 }
 
