@@ -473,3 +473,111 @@ fn hybrid_heights_alone_are_the_full_columns_bits() {
         assert_eq!(bits(&alone), bits(&full), "{label}");
     }
 }
+
+/// Hybrid layers are found along each row as its heights go up the levels; they must be what
+/// each column's nodes, built whole and interpolated (`ColumnNodes::height_at_pressure`,
+/// the path queries use), give, bit for bit: bounds below the ground, between levels, on a
+/// level exactly (a pure-pressure level, whose full-level pressure is the same everywhere),
+/// above the model top, and above a column whose temperature is missing part-way up. A table
+/// whose lowest half level is not the surface itself goes through the nodes.
+#[test]
+fn hybrid_layers_found_along_the_rows_are_those_of_each_columns_nodes() {
+    use hypsogrid::compute::{ColumnScratch, StepColumns};
+    use hypsogrid::model::Vertical;
+    use hypsogrid::physics::column::thickness_between;
+
+    let dir = tempfile::tempdir().unwrap();
+    let (_, spec) = hybrid_variants()
+        .into_iter()
+        .next()
+        .expect("a hybrid fixture");
+    let (mut cycle, _) = run(&spec, dir.path(), "hybrid-rows");
+    let Vertical::Hybrid { a_half_pa, b_half } = &mut cycle.vertical else {
+        panic!("a hybrid fixture");
+    };
+    // The top two half levels pure pressure: the top full level at 0.5 (5000 + 2000) Pa.
+    let n = a_half_pa.len();
+    assert_eq!(
+        (a_half_pa[0], b_half[0]),
+        (0.0, 1.0),
+        "the fixture starts at the surface"
+    );
+    a_half_pa[n - 2] = 5000.0;
+    b_half[n - 2] = 0.0;
+    a_half_pa[n - 1] = 2000.0;
+    b_half[n - 1] = 0.0;
+    let top_full_pa = 3500.0;
+    // A column missing its temperature from the fourth level up, and one from the ground.
+    let (_, _, levels, rows, cols) = cycle.temperature.dim();
+    assert!(levels >= 4 && rows >= 2 && cols >= 3);
+    for k in 3..levels {
+        cycle.temperature[[0, 0, k, 1, 2]] = f32::NAN;
+    }
+    cycle.temperature[[0, 0, 0, 0, 1]] = f32::NAN;
+    let pairs = [
+        (105_000.0, 100_000.0),  // both below the ground everywhere or nearly
+        (100_000.0, 50_000.0),   // from below or above the ground, between levels
+        (97_000.0, top_full_pa), // to a level exactly
+        (50_000.0, 1_000.0),     // above the model top: none
+        (80_000.0, 20_000.0),
+    ];
+    let config = ComputeConfig {
+        layers: pairs
+            .iter()
+            .map(|&(bottom_pa, top_pa)| Layer { bottom_pa, top_pa })
+            .collect(),
+        ..ComputeConfig::default()
+    };
+    for surface_first in [true, false] {
+        let mut cycle = cycle.clone();
+        if !surface_first {
+            // A lowest half level 1 Pa above the surface: the nodes' path.
+            if let Vertical::Hybrid { a_half_pa, .. } = &mut cycle.vertical {
+                a_half_pa[0] = -1.0;
+            }
+        }
+        let heights = compute_heights(&cycle, &config, &|_| {}).expect("computing");
+        let step = StepColumns::new(&cycle, &config, 0, 0).expect("the step's columns");
+        let mut scratch = ColumnScratch::new(levels);
+        let (mut on_a_level, mut found, mut none) = (0, 0, 0);
+        for row in 0..rows {
+            for col in 0..cols {
+                step.build(row, col, &mut scratch);
+                for (k, &z) in scratch.height.iter().enumerate() {
+                    let ours = heights.geopotential_height[[0, 0, k, row, col]];
+                    assert_eq!(
+                        ours.to_bits(),
+                        (z as f32).to_bits(),
+                        "height ({row}, {col}, {k})"
+                    );
+                }
+                for (l, layer) in config.layers.iter().enumerate() {
+                    let want = thickness_between(
+                        &scratch.nodes,
+                        layer.bottom_pa,
+                        layer.top_pa,
+                        &cycle.constants,
+                    )
+                    .map_or(f32::NAN, |v| v as f32);
+                    let got = heights.thickness[l].values[[0, 0, row, col]];
+                    assert_eq!(
+                        got.to_bits(),
+                        want.to_bits(),
+                        "surface first {surface_first}, layer {layer:?} at ({row}, {col}): {got} against {want}"
+                    );
+                    if want.is_nan() {
+                        none += 1;
+                    } else {
+                        found += 1;
+                        on_a_level += usize::from(layer.top_pa == top_full_pa);
+                    }
+                }
+            }
+        }
+        // Each kind of case was met.
+        assert!(
+            on_a_level > 0 && found > 0 && none > 0,
+            "{on_a_level} {found} {none}"
+        );
+    }
+}

@@ -73,8 +73,7 @@ pub(crate) struct ReadArgs {
     #[arg(long, value_delimiter = ',', default_value = "1000:500,1000:850,850:700", value_parser = parse_layer)]
     layers: Vec<Layer>,
     /// Geopotential height on every level and its below-ground flag only, no thickness (for
-    /// verification against analyses, or hybrid-level input, whose heights alone are computed
-    /// level by level along the rows instead of column by column).
+    /// verification against analyses, which needs none; a little faster on hybrid levels).
     #[arg(long, conflicts_with = "layers")]
     heights_only: bool,
 }

@@ -101,6 +101,36 @@ fn mask_outputs(z_out: &mut [f64], below_out: &mut [bool]) {
     below_out.fill(false);
 }
 
+/// Height (gpm) at `p_pa` above the surface pressure, on the 6.5 K/km polytrope through
+/// the surface node `(p_s, T_v,s, Z_s)`: what [`ColumnNodes::height_at_pressure`] gives below
+/// the ground.
+#[inline]
+pub(crate) fn height_below_surface(
+    p_pa: f64,
+    (ps, tv_s, zs): (f64, f64, f64),
+    c: &Constants,
+) -> f64 {
+    let tv = tv_s * (standard_kappa(c) * (p_pa / ps).ln()).exp();
+    zs - (tv - tv_s) / STANDARD_LAPSE_RATE
+}
+
+/// Height (gpm) at `p_pa` strictly between the nodes `(p1, T_v1, Z1)` below and
+/// `(p2, T_v2, Z2)` above: what [`ColumnNodes::height_at_pressure`] gives there (its method).
+#[inline]
+pub(crate) fn height_between_nodes(
+    p_pa: f64,
+    (p1, t1, z1): (f64, f64, f64),
+    (p2, t2, z2): (f64, f64, f64),
+) -> f64 {
+    let big_x = (p1 / p2).ln();
+    let x = (p1 / p_pa).ln();
+    // Tv(x) = t1 e^{-κx}: κ > 0 where Tv falls with height.
+    let kappa = (t1 / t2).ln() / big_x;
+    let frac =
+        x * one_minus_exp_neg_over(kappa * x) / (big_x * one_minus_exp_neg_over(kappa * big_x));
+    z1 + (z2 - z1) * frac
+}
+
 impl ColumnNodes {
     /// An empty buffer with room for a column of `levels` levels (plus the surface node).
     pub fn with_capacity(levels: usize) -> Self {
@@ -527,10 +557,9 @@ impl ColumnNodes {
         let lo = self.valid.start;
         let hi = self.valid.end - 1;
         if p_pa > self.pressure_pa[lo] {
-            let (ps, tv_s, zs) = self.surface()?;
-            let tv = tv_s * (standard_kappa(c) * (p_pa / ps).ln()).exp();
+            let surface = self.surface()?;
             return Some(HeightAtPressure {
-                height_m: zs - (tv - tv_s) / STANDARD_LAPSE_RATE,
+                height_m: height_below_surface(p_pa, surface, c),
                 below_ground,
             });
         }
@@ -544,17 +573,9 @@ impl ColumnNodes {
                 below_ground: self.below_ground[j],
             });
         }
-        let (p1, p2) = (self.pressure_pa[j], self.pressure_pa[j + 1]);
-        let (t1, t2) = (self.tv_k[j], self.tv_k[j + 1]);
-        let (z1, z2) = (self.height_m[j], self.height_m[j + 1]);
-        let big_x = (p1 / p2).ln();
-        let x = (p1 / p_pa).ln();
-        // Tv(x) = t1 e^{-κx}: κ > 0 where Tv falls with height.
-        let kappa = (t1 / t2).ln() / big_x;
-        let frac =
-            x * one_minus_exp_neg_over(kappa * x) / (big_x * one_minus_exp_neg_over(kappa * big_x));
+        let node = |i: usize| (self.pressure_pa[i], self.tv_k[i], self.height_m[i]);
         Some(HeightAtPressure {
-            height_m: z1 + (z2 - z1) * frac,
+            height_m: height_between_nodes(p_pa, node(j), node(j + 1)),
             below_ground,
         })
     }
