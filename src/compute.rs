@@ -954,14 +954,21 @@ impl<'a> StepColumns<'a> {
     /// Builds the column at (`row`, `col`) into `s`: level pressures, virtual temperatures,
     /// heights, below-ground flags, and the nodes for interpolation at any pressure.
     pub fn build(&self, row: usize, col: usize, s: &mut ColumnScratch) {
-        self.build_lowest(row, col, s, usize::MAX);
+        let _ = self.build_lowest(row, col, s, usize::MAX);
     }
 
     /// [`StepColumns::build`] for answers at pressures no lower than level `wanted − 1`'s
     /// ([`ColumnNodes::levels_for_pressure`]): an isobaric column is built only as high as
     /// they need ([`ColumnNodes::isobaric_lowest`]), with the same bits, and its levels above
-    /// are left masked. A hybrid column is built whole.
-    pub fn build_lowest(&self, row: usize, col: usize, s: &mut ColumnScratch, wanted: usize) {
+    /// are left masked. A hybrid column is built whole. Returns how many of the lowest levels
+    /// were built (their pressures, virtual temperatures and heights are in `s`).
+    pub fn build_lowest(
+        &self,
+        row: usize,
+        col: usize,
+        s: &mut ColumnScratch,
+        wanted: usize,
+    ) -> usize {
         let c = &self.constants;
         let all = s.tv.len();
         let surface = self.surface(row, col);
@@ -1021,6 +1028,7 @@ impl<'a> StepColumns<'a> {
             );
             s.below.iter_mut().for_each(|b| *b = false);
         }
+        levels
     }
     /// The full-level heights of row `row` of a hybrid cycle into `z` (`[level, lon]`,
     /// `NaN` where masked): the values [`ColumnNodes::hybrid`] gives, bit for bit (the same

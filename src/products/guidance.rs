@@ -1189,6 +1189,11 @@ struct StepGuidance<'a> {
     rh_phase: RelativeHumidityPhase,
     constants: Constants,
     settings: &'a GuidanceSettings,
+    /// Levels a column needs, counted from the ground ([`StepColumns::build_lowest`]): up to
+    /// the lowest one at or above the highest pressure the guidance reads, the search top
+    /// or the 500 hPa of the 1000–500 hPa thickness. Nothing above is read: the 0 °C
+    /// searches stop below the search top, and the thicknesses' bounds lie below 500 hPa.
+    wanted: usize,
 }
 
 /// Per-thread buffers for [`StepGuidance::column`].
@@ -1224,6 +1229,16 @@ impl<'a> StepGuidance<'a> {
         }
         let step = StepColumns::new(cycle, &lc.config, member, time_index)?;
         let levels = cycle.vertical.levels();
+        let highest_read_pa = [LAYER_1000_500, LAYER_1000_850, LAYER_850_700]
+            .iter()
+            .map(|&(_, top)| top)
+            .fold(settings.search_top_hpa * 100.0, f64::min);
+        let wanted = match &cycle.vertical {
+            Vertical::Isobaric { pressure_pa } => {
+                ColumnNodes::levels_for_pressure(pressure_pa, highest_read_pa)
+            }
+            Vertical::Hybrid { .. } => levels,
+        };
         let mut missing_humidity = vec![false; levels];
         if let Some(h) = &cycle.humidity {
             for &k in &h.missing_levels {
@@ -1244,6 +1259,7 @@ impl<'a> StepGuidance<'a> {
             rh_phase: lc.config.rh_phase,
             constants: cycle.constants,
             settings,
+            wanted,
         })
     }
 
@@ -1257,10 +1273,14 @@ impl<'a> StepGuidance<'a> {
     }
 
     fn column(&self, row: usize, col: usize, b: &mut Buffers) -> ColumnGuidance {
-        self.step.build(row, col, &mut b.scratch);
-        let levels = b.t.len();
+        let built = self
+            .step
+            .build_lowest(row, col, &mut b.scratch, self.wanted);
+        // Levels above those built are never read (see `wanted`); `NaN` there all the same.
+        b.t[built..].fill(f64::NAN);
+        b.e[built..].fill(f64::NAN);
         let eps = self.constants.molar_mass_ratio;
-        for k in 0..levels {
+        for k in 0..built {
             let t = f64::from(self.temperature[[k, row, col]]);
             b.t[k] = t;
             let p = b.scratch.pressure[k];
@@ -1515,6 +1535,60 @@ pub fn guidance_at_point(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Columns built only as high as the guidance reads (`StepGuidance::wanted`) give what
+    /// whole columns give, bit for bit (compared in their `Debug` form, which spells every
+    /// `f64` exactly), over every column of the demo cycle at two lead times, for search
+    /// tops from 200 to 700 hPa.
+    #[test]
+    fn columns_built_as_high_as_read_give_the_whole_columns_guidance() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = crate::demo::write_demo_cycle(dir.path()).unwrap();
+        let lc = LoadedCycle::load(
+            &path,
+            &crate::ingest::IngestConfig::default(),
+            &crate::compute::ComputeConfig::default(),
+        )
+        .unwrap();
+        let (levels, rows, cols) = {
+            let (_, _, k, r, c) = lc.cycle.temperature.dim();
+            (k, r, c)
+        };
+        for search_top_hpa in [200.0, 500.0, 700.0] {
+            let settings = GuidanceSettings {
+                search_top_hpa,
+                ..GuidanceSettings::default()
+            };
+            for time in [0, 4] {
+                let built = StepGuidance::new(&lc, time, 0, &settings).unwrap();
+                let mut whole = StepGuidance::new(&lc, time, 0, &settings).unwrap();
+                whole.wanted = usize::MAX;
+                assert!(
+                    built.wanted < levels,
+                    "{search_top_hpa} hPa: {}",
+                    built.wanted
+                );
+                let (mut a, mut b) = (built.buffers(), whole.buffers());
+                let mut found = 0;
+                for row in 0..rows {
+                    for col in 0..cols {
+                        let (x, y) = (
+                            built.column(row, col, &mut a),
+                            whole.column(row, col, &mut b),
+                        );
+                        assert_eq!(
+                            format!("{x:?}"),
+                            format!("{y:?}"),
+                            "{search_top_hpa} hPa, time {time}, ({row}, {col})"
+                        );
+                        found +=
+                            usize::from(x.inputs.freezing_level.kind == ZeroLevelKind::Crossing);
+                    }
+                }
+                assert!(found > 0, "some freezing levels are crossings");
+            }
+        }
+    }
 
     #[test]
     fn the_one_line_form_names_every_setting_once_and_reads_back() {
