@@ -1185,10 +1185,10 @@ impl<'a> StepColumns<'a> {
             hybrid.filter(|&ab| self.config.layers.is_empty() || from_the_surface(ab))
         {
             // Level by level along the row, with no nodes to build (every level of a hybrid
-            // column lies above the ground); the layers' bounds are found on the way. A
-            // synthetic 1° cycle on 137 levels, whole process: 0.116 s with the three default
-            // layers found so, 0.137 s with each column's nodes built for them, 0.101 s for
-            // the heights alone (15 alternate runs).
+            // column lies above the ground); the layers' bounds are found on the way. A 1°
+            // cycle on 137 levels (`benches/hybrid_cycle.py`), whole process: 0.116 s with
+            // the three default layers found so, 0.137 s with each column's nodes built for
+            // them, 0.101 s for the heights alone (15 alternate runs).
             b_row.fill(0);
             if self.config.layers.is_empty() {
                 self.hybrid_heights_row((a_half_pa, b_half), row, &mut z_row, &mut s.row, None);
