@@ -801,20 +801,33 @@ struct RowBounds {
 }
 
 impl RowBounds {
-    /// Nothing found yet on a row of `cols` columns.
-    fn reset(&mut self, cols: usize) {
+    /// The bounds of `layers` (bottom then top of each, in turn: pressure `2 l` and
+    /// `2 l + 1`), nothing found yet on a row of `cols` columns. The order they are found in
+    /// is worked out again only when the layers change.
+    fn reset(&mut self, layers: &[Layer], cols: usize) {
+        let same = self.pressures.len() == 2 * layers.len()
+            && layers
+                .iter()
+                .zip(self.pressures.chunks_exact(2))
+                .all(|(l, p)| p == [l.bottom_pa, l.top_pa]);
+        if !same {
+            self.pressures.clear();
+            self.pressures
+                .extend(layers.iter().flat_map(|l| [l.bottom_pa, l.top_pa]));
+            let n = self.pressures.len();
+            self.order.clear();
+            self.order.extend(0..n);
+            let pressures = &self.pressures;
+            self.order
+                .sort_by(|&a, &b| pressures[b].total_cmp(&pressures[a]));
+            self.rank.clear();
+            self.rank.resize(n, 0);
+            for (place, &b) in self.order.iter().enumerate() {
+                self.rank[b] = place;
+            }
+        }
         let n = self.pressures.len();
         self.cols = cols;
-        self.order.clear();
-        self.order.extend(0..n);
-        let pressures = &self.pressures;
-        self.order
-            .sort_by(|&a, &b| pressures[b].total_cmp(&pressures[a]));
-        self.rank.clear();
-        self.rank.resize(n, 0);
-        for (place, &b) in self.order.iter().enumerate() {
-            self.rank[b] = place;
-        }
         self.heights.clear();
         self.heights.resize(n * cols, f64::NAN);
         self.next.clear();
@@ -1036,7 +1049,8 @@ impl<'a> StepColumns<'a> {
     /// only layers and queries between levels need, and level by level along the row rather
     /// than column by column: the heights a served cycle stores.
     ///
-    /// With `bounds`, also the heights at its pressures, for every column ([`RowBounds`]).
+    /// With `bounds`, also the heights at the bounds of the layers of the settings, for every
+    /// column ([`RowBounds`]).
     fn hybrid_heights_row(
         &self,
         (a_half, b_half): (&[f64], &[f64]),
@@ -1048,7 +1062,7 @@ impl<'a> StepColumns<'a> {
         let (levels, cols) = z.dim();
         z.fill(f32::NAN);
         if let Some(bounds) = bounds.as_deref_mut() {
-            bounds.reset(cols);
+            bounds.reset(&self.config.layers, cols);
         }
         if a_half.len() != levels + 1 || b_half.len() != levels + 1 || levels == 0 {
             return;
@@ -1097,15 +1111,13 @@ impl<'a> StepColumns<'a> {
                     continue;
                 }
                 let (lower, upper) = (half[k * cols + c], half[(k + 1) * cols + c]);
+                let p_full = 0.5 * (lower + upper);
                 let t = f64::from(t_row[c]);
                 let tv = match &h_row {
                     None => t,
-                    Some((kind, values)) => self.virtual_temperature(
-                        *kind,
-                        t,
-                        f64::from(values[c]),
-                        0.5 * (lower + upper),
-                    ),
+                    Some((kind, values)) => {
+                        self.virtual_temperature(*kind, t, f64::from(values[c]), p_full)
+                    }
                 };
                 if !usable_tv(tv) {
                     // Masks this level and every one above, as the column does.
@@ -1120,15 +1132,14 @@ impl<'a> StepColumns<'a> {
                         let ps = f64::from(ps_row[c]);
                         let tv_s = standard_lapse_extrapolated_temperature(
                             tv,
-                            0.5 * (lower + upper),
+                            p_full,
                             ps,
                             &self.constants,
                         );
                         bounds.pass(c, (ps, tv_s, z_lower[c]), true, &self.constants);
                     }
                     if bounds.pending(c) {
-                        let node = (0.5 * (lower + upper), tv, z_full);
-                        bounds.pass(c, node, false, &self.constants);
+                        bounds.pass(c, (p_full, tv, z_full), false, &self.constants);
                     }
                 }
                 z[[k, c]] = z_full as f32;
@@ -1194,31 +1205,23 @@ impl<'a> StepColumns<'a> {
                 self.hybrid_heights_row((a_half_pa, b_half), row, &mut z_row, &mut s.row, None);
                 return;
             }
-            s.bounds.pressures.clear();
-            for layer in &self.config.layers {
-                s.bounds.pressures.extend([layer.bottom_pa, layer.top_pa]);
-            }
-            let mut bounds = std::mem::take(&mut s.bounds);
             self.hybrid_heights_row(
                 (a_half_pa, b_half),
                 row,
                 &mut z_row,
                 &mut s.row,
-                Some(&mut bounds),
+                Some(&mut s.bounds),
             );
             for col in 0..cols {
-                let surface = self.surface(row, col);
-                for (l, layer) in self.config.layers.iter().enumerate() {
+                for l in 0..self.config.layers.len() {
                     th_row[[l, col]] =
-                        match (bounds.height(2 * l, col), bounds.height(2 * l + 1, col)) {
+                        match (s.bounds.height(2 * l, col), s.bounds.height(2 * l + 1, col)) {
                             (Some(bottom), Some(top)) => (top - bottom) as f32,
                             _ => f32::NAN,
                         };
-                    tb_row[[l, col]] =
-                        u8::from(surface.is_some_and(|(ps, _)| layer.bottom_pa > ps));
                 }
+                self.layer_flags(row, col, &mut tb_row);
             }
-            s.bounds = bounds;
             return;
         }
         for col in 0..cols {
@@ -1227,12 +1230,20 @@ impl<'a> StepColumns<'a> {
                 z_row[[k, col]] = z as f32;
                 b_row[[k, col]] = u8::from(b);
             }
-            let surface = self.surface(row, col);
             for (l, layer) in self.config.layers.iter().enumerate() {
                 th_row[[l, col]] = thickness_between(&s.nodes, layer.bottom_pa, layer.top_pa, &c)
                     .map_or(f32::NAN, |v| v as f32);
-                tb_row[[l, col]] = u8::from(surface.is_some_and(|(ps, _)| layer.bottom_pa > ps));
             }
+            self.layer_flags(row, col, &mut tb_row);
+        }
+    }
+
+    /// The below-ground flag of every layer of the settings at (`row`, `col`) into
+    /// `tb_row[[layer, col]]`: 1 where the layer's bottom lies below the surface pressure.
+    fn layer_flags(&self, row: usize, col: usize, tb_row: &mut ArrayViewMut2<'_, u8>) {
+        let surface = self.surface(row, col);
+        for (l, layer) in self.config.layers.iter().enumerate() {
+            tb_row[[l, col]] = u8::from(surface.is_some_and(|(ps, _)| layer.bottom_pa > ps));
         }
     }
 

@@ -163,9 +163,6 @@ pub fn write_heights(
         layers: &layers,
     };
     let mut file = create_defined(&plan, cycle, &about, options, partial.path(), &session)?;
-    if options.deflate_level.is_none() {
-        reserve_blocks(partial.path(), plan.data_bytes());
-    }
     if let Some(level) = options.deflate_level {
         match Sink::for_compressed(file, &plan, partial.path(), level)? {
             Sink::Chunks(chunks) => {
@@ -288,10 +285,7 @@ impl HeightsWriter {
         let file = create_defined(&plan, cycle, about, options, partial.path(), session)?;
         let sink = match options.deflate_level {
             Some(level) => Sink::for_compressed(file, &plan, partial.path(), level)?,
-            None => {
-                reserve_blocks(partial.path(), plan.data_bytes());
-                Sink::Library(file)
-            }
+            None => Sink::Library(file),
         };
         let steps = plan.members * plan.times;
         Ok(Self {
@@ -1137,7 +1131,8 @@ pub struct HeightsAbout<'a> {
 
 /// Creates `partial` and defines everything in it: global attributes, dimensions and
 /// coordinates (with their values), the data variables with their attributes and storage,
-/// no data yet. The caller holds the NetCDF session (`_session`).
+/// no data yet; for uncompressed output, the data's blocks reserved ([`reserve_blocks`]).
+/// The caller holds the NetCDF session (`_session`).
 fn create_defined(
     plan: &Plan,
     cycle: &Cycle,
@@ -1264,6 +1259,9 @@ fn create_defined(
                 ),
             )?;
         }
+    }
+    if options.deflate_level.is_none() {
+        reserve_blocks(partial, plan.data_bytes());
     }
     Ok(file)
 }
