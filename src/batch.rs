@@ -1,19 +1,22 @@
 //! The batch: one cycle file in, heights and thicknesses out ([`compute_file`]).
 //!
-//! Where the row kernel takes the cycle and the file holds temperature and humidity step by
-//! step (the common case), the cycle is never held whole: each (member, time) step is read,
-//! computed and written a band of latitude rows at a time, every column on its own as
-//! always. One thread reads and writes (the NetCDF library is serialised) while the band
-//! before is decoded (fill values, scaling, plausibility) and computed on the other cores,
-//! at a lower priority, and a few band buffers go round, so the
-//! process touches a few tens of megabytes of memory instead of the whole cycle and its
-//! heights (fresh memory, whose first touch cost about a third of the whole batch on these
-//! virtual machines). Chunked (compressed) input is read a whole step at a time, the chunks
-//! inflated on every core, then computed and written in bands the same way; compressed
-//! output takes whole steps. The file written is the one [`read_and_compute`] and
-//! [`write_heights`] give, value for value (`tests/batch.rs`). Every other cycle is read
-//! whole, once ([`read_cycle_in_bands`] goes on to the whole cycle), computed by
-//! [`compute_heights`] and written by [`write_heights`].
+//! Where the file holds temperature and humidity step by step (the common case), the cycle
+//! is never held whole: each (member, time) step is read, computed and written a band of
+//! latitude rows at a time, every column on its own as always. One thread reads and writes
+//! (the NetCDF library is serialised) while the band before is decoded (fill values,
+//! scaling, plausibility) and computed on the other cores, and a few band buffers go round,
+//! so the process touches a few tens of megabytes of memory instead of the whole cycle and
+//! its heights (fresh memory, whose first touch cost about a third of the whole batch on
+//! these virtual machines). Bands go to the row kernel where it takes the cycle, at a lower
+//! priority since reading and writing pace the run; every other cycle the settings can
+//! compute (hybrid levels, relative humidity, dewpoint, no surface fields) goes column by
+//! column ([`StepColumns`], each band's columns from its own rows) on every core, since
+//! there computing paces it. Chunked (compressed) input is read a whole step at a time, the
+//! chunks inflated on every core, then computed and written in bands the same way;
+//! compressed output takes whole steps. The file written is the one [`read_and_compute`]
+//! and [`write_heights`] give, value for value (`tests/batch.rs`). A file whose layout
+//! needs whole-variable reads is read whole, once ([`read_cycle_in_bands`] goes on to the
+//! whole cycle), computed by [`compute_heights`] and written by [`write_heights`].
 //!
 //! [`read_and_compute`]: crate::compute::read_and_compute
 
@@ -21,11 +24,12 @@ use std::ops::Range;
 use std::path::Path;
 use std::sync::mpsc;
 
-use ndarray::{s, ArrayView3, ArrayViewMut2, ArrayViewMut3};
+use ndarray::{s, Array3, ArrayView3, ArrayViewMut2, ArrayViewMut3};
 
 use crate::buffers::HugeField;
 use crate::compute::{
-    background_pool, check_layers, compute_heights, kernel_for, ComputeConfig, ComputeError,
+    background_pool, check_layers, compute_heights, heights_method, kernel_for, ComputeConfig,
+    ComputeError, StepColumns,
 };
 use crate::ingest::{
     read_cycle_in_bands, BadValue, BandDecode, BandReader, InBands, IngestConfig, IngestError,
@@ -134,12 +138,19 @@ pub fn compute_file_in_bands(
     };
     check_layers(config).map_err(compute_error)?;
     let streamed = read_cycle_in_bands(input, ingest, |shell, bands| {
-        let (kernel, method) = kernel_for(shell, config)?;
-        let surface = shell.surface.as_ref()?;
+        let kernel = kernel_for(shell, config);
+        let (how, method) = match &kernel {
+            Some((kernel, method)) => {
+                let surface = shell.surface.as_ref()?;
+                (How::Kernel { kernel, surface }, method.clone())
+            }
+            // A cycle the settings cannot compute is declined: the whole read then gives
+            // the error `compute_heights` gives.
+            None => (How::Columns, heights_method(shell, config).ok()?),
+        };
         let job = BandJob {
             shell,
-            surface,
-            kernel: &kernel,
+            how,
             method: &method,
             config,
             band_rows,
@@ -181,11 +192,23 @@ fn even_bands(rows: usize, band_rows: usize, least: usize) -> Vec<Range<usize>> 
         .collect()
 }
 
+/// How a band is computed.
+#[derive(Clone, Copy)]
+enum How<'a> {
+    /// The row kernel ([`IsobaricKernel`]), for the cycles it takes.
+    Kernel {
+        kernel: &'a IsobaricKernel,
+        surface: &'a Surface,
+    },
+    /// Column by column ([`StepColumns`]): hybrid levels, relative humidity, dewpoint,
+    /// cycles without surface fields, as [`compute_heights`] does them.
+    Columns,
+}
+
 /// One cycle going through band by band.
 struct BandJob<'a> {
     shell: &'a Cycle,
-    surface: &'a Surface,
-    kernel: &'a IsobaricKernel,
+    how: How<'a>,
     method: &'a str,
     config: &'a ComputeConfig,
     /// Rows per band asked for; `None`: [`rows_per_band`].
@@ -321,7 +344,7 @@ impl BandJob<'_> {
             let decode = bands.decoding();
             // The reading and writing thread is the critical path: the kernel takes what it
             // leaves, on threads of lower priority (see `background_pool`).
-            let pool = background_pool(compute_threads(rayon::current_num_threads()));
+            let pool = self.band_pool();
             scope.spawn(move || {
                 for mut band in work_rx {
                     let lowered = pool.as_ref().filter(|_| !band.last_read);
@@ -429,7 +452,7 @@ impl BandJob<'_> {
             let (done_tx, done_rx) = mpsc::channel::<Streamed>();
             let (free_tx, mut free_rx) = mpsc::channel::<FileRows>();
             let decode = bands.decoding();
-            let pool = background_pool(compute_threads(rayon::current_num_threads()));
+            let pool = self.band_pool();
             scope.spawn(move || {
                 let mut outs = OutBuffers {
                     free: &mut free_rx,
@@ -568,6 +591,18 @@ impl BandJob<'_> {
         true
     }
 
+    /// The threads that compute bands while this thread reads and writes: with the row
+    /// kernel, fewer threads at a lower priority ([`background_pool`]), since reading and
+    /// writing pace the run; `None` for the column path, whose computing paces it (a hybrid
+    /// 1° cycle on 137 levels computes in about twice the time its read and write take), so
+    /// it takes rayon's global pool, every core.
+    fn band_pool(&self) -> Option<rayon::ThreadPool> {
+        match self.how {
+            How::Kernel { .. } => background_pool(compute_threads(rayon::current_num_threads())),
+            How::Columns => None,
+        }
+    }
+
     /// The error for a band the computing thread gave back unfinished.
     fn failure_error(&self, failure: Failure, bands: &BandReader<'_, '_>) -> BatchError {
         match failure {
@@ -603,9 +638,9 @@ impl BandJob<'_> {
         self.kernel_into((m, t), rows, t_band, q_band, &mut band.out, reverse)
     }
 
-    /// The kernel on rows `rows` of step (`m`, `t`), whose decoded temperature and humidity
-    /// are `t_band` and `q_band` (`[level, row, lon]`), into `out`, then `out` as the file
-    /// holds it.
+    /// Rows `rows` of step (`m`, `t`), whose decoded temperature and humidity are `t_band`
+    /// and `q_band` (`[level, row, lon]`), computed into `out`, then `out` as the file holds
+    /// it.
     fn kernel_into(
         &self,
         (m, t): (usize, usize),
@@ -617,29 +652,58 @@ impl BandJob<'_> {
     ) -> Result<(), Failure> {
         let shape3 = t_band.dim();
         let (_, n, cols) = shape3;
-        let fields = StepFields {
-            t: t_band,
-            q: q_band,
-            ps: self.surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
-            zs: self.surface.height_m.slice(s![m, t, rows, ..]),
-        };
         let file_rows = out;
         let out = file_rows.fields_mut(shape3).ok_or_else(|| {
             Failure::Kernel(format!("a band of {shape3:?} does not fit its buffers"))
         })?;
-        let mut thickness = Vec::with_capacity(out.thickness.len());
-        for (v, f) in out.thickness {
-            thickness.push((
-                ArrayViewMut2::from_shape((n, cols), v)?,
-                ArrayViewMut2::from_shape((n, cols), f)?,
-            ));
+        let heights = ArrayViewMut3::from_shape(shape3, out.heights)?;
+        let flags = ArrayViewMut3::from_shape(shape3, out.flags)?;
+        match self.how {
+            How::Kernel { kernel, surface } => {
+                let fields = StepFields {
+                    t: t_band,
+                    q: q_band,
+                    ps: surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
+                    zs: surface.height_m.slice(s![m, t, rows, ..]),
+                };
+                let mut thickness = Vec::with_capacity(out.thickness.len());
+                for (v, f) in out.thickness {
+                    thickness.push((
+                        ArrayViewMut2::from_shape((n, cols), v)?,
+                        ArrayViewMut2::from_shape((n, cols), f)?,
+                    ));
+                }
+                let outputs = StepOutputs {
+                    geopotential_height: heights,
+                    below_ground: flags,
+                    thickness,
+                };
+                kernel.run_into(fields, outputs)?;
+            }
+            How::Columns => {
+                let columns =
+                    StepColumns::for_rows(self.shell, self.config, (m, t), rows, t_band, q_band)
+                        .map_err(|e| Failure::Kernel(e.to_string()))?;
+                // The column path fills a `[layer, row, lon]` array; the band keeps a plane
+                // per layer (a few hundred kilobytes a band at most).
+                let layers = out.thickness.len();
+                let mut th = Array3::<f32>::zeros((layers, n, cols));
+                let mut tb = Array3::<u8>::zeros((layers, n, cols));
+                columns.fill(heights, flags, th.view_mut(), tb.view_mut());
+                for ((v, f), (th, tb)) in out
+                    .thickness
+                    .into_iter()
+                    .zip(th.outer_iter().zip(tb.outer_iter()))
+                {
+                    for (to, from) in v.iter_mut().zip(th) {
+                        *to = *from;
+                    }
+                    for (to, from) in f.iter_mut().zip(tb) {
+                        *to = *from;
+                    }
+                }
+            }
         }
-        let outputs = StepOutputs {
-            geopotential_height: ArrayViewMut3::from_shape(shape3, out.heights)?,
-            below_ground: ArrayViewMut3::from_shape(shape3, out.flags)?,
-            thickness,
-        };
-        self.kernel.run_into(fields, outputs)?;
         file_rows.to_file_form(reverse);
         Ok(())
     }

@@ -913,6 +913,45 @@ impl<'a> StepColumns<'a> {
         member: usize,
         time: usize,
     ) -> Result<Self, ComputeError> {
+        let (m, t) = (member, time);
+        Self::with_fields(
+            cycle,
+            config,
+            (m, t),
+            0..cycle.temperature.dim().3,
+            cycle.temperature.slice(s![m, t, .., .., ..]),
+            cycle
+                .humidity
+                .as_ref()
+                .map(|h| h.values.slice(s![m, t, .., .., ..])),
+        )
+    }
+
+    /// The columns of latitude rows `rows` of step (`member`, `time`) of `shell`, from
+    /// `temperature` and `humidity` of those rows alone (`[level, row, lon]`, bottom-up, the
+    /// values the cycle would hold there) instead of the cycle's own arrays, which may be
+    /// left unread: a band of the batch. Everything else (levels, surface fields, file
+    /// heights, constants) comes from `shell`. Rows count from `rows.start` in every method,
+    /// and each column gives the same bits as in [`StepColumns::new`] on the whole cycle.
+    pub(crate) fn for_rows(
+        shell: &'a Cycle,
+        config: &'a ComputeConfig,
+        (member, time): (usize, usize),
+        rows: std::ops::Range<usize>,
+        temperature: ArrayView3<'a, f32>,
+        humidity: Option<ArrayView3<'a, f32>>,
+    ) -> Result<Self, ComputeError> {
+        Self::with_fields(shell, config, (member, time), rows, temperature, humidity)
+    }
+
+    fn with_fields(
+        cycle: &'a Cycle,
+        config: &'a ComputeConfig,
+        (m, t): (usize, usize),
+        rows: std::ops::Range<usize>,
+        temperature: ArrayView3<'a, f32>,
+        humidity: Option<ArrayView3<'a, f32>>,
+    ) -> Result<Self, ComputeError> {
         if matches!(cycle.vertical, Vertical::Hybrid { .. }) && cycle.surface.is_none() {
             return Err(ComputeError::HybridWithoutSurface {
                 file: cycle.source.display().to_string(),
@@ -928,27 +967,23 @@ impl<'a> StepColumns<'a> {
                 }
             }
         }
-        let (m, t) = (member, time);
         Ok(Self {
             cycle,
             config,
             reference,
-            temperature: cycle.temperature.slice(s![m, t, .., .., ..]),
-            humidity: cycle
-                .humidity
-                .as_ref()
-                .map(|h| (h.kind, h.values.slice(s![m, t, .., .., ..]))),
+            temperature,
+            humidity: cycle.humidity.as_ref().map(|h| h.kind).zip(humidity),
             dry_levels,
             surface: cycle.surface.as_ref().map(|sf| {
                 (
-                    sf.pressure_pa.slice(s![m, t, .., ..]),
-                    sf.height_m.slice(s![m, t, .., ..]),
+                    sf.pressure_pa.slice(s![m, t, rows.clone(), ..]),
+                    sf.height_m.slice(s![m, t, rows.clone(), ..]),
                 )
             }),
             file_heights: cycle
                 .file_heights
                 .as_ref()
-                .map(|z| z.slice(s![m, t, .., .., ..])),
+                .map(|z| z.slice(s![m, t, .., rows.clone(), ..])),
             constants: cycle.constants,
         })
     }
@@ -1148,9 +1183,10 @@ impl<'a> StepColumns<'a> {
         }
     }
 
-    /// Every column of the step, rows in parallel: heights and flags `[level, lat, lon]`,
-    /// thickness and its flags `[layer, lat, lon]` (one per layer of the settings).
-    fn fill(
+    /// Every column of the step (of its rows, from [`StepColumns::for_rows`]), rows in
+    /// parallel: heights and flags `[level, lat, lon]`, thickness and its flags
+    /// `[layer, lat, lon]` (one per layer of the settings). Every value is written.
+    pub(crate) fn fill(
         &self,
         mut z: ArrayViewMut3<'_, f32>,
         mut b: ArrayViewMut3<'_, u8>,

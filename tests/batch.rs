@@ -23,9 +23,8 @@ use common::fixtures::{
 };
 use common::hdf5::quiet_hdf5_on_this_thread;
 use hypsogrid::batch::{compute_file, compute_file_in_bands, BatchError, BatchReport};
-use hypsogrid::compute::{read_and_compute, ComputeConfig, ComputeError};
+use hypsogrid::compute::{heights_method, read_and_compute, ComputeConfig, ComputeError};
 use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
-use hypsogrid::kernel::IsobaricKernel;
 use hypsogrid::model::{Cycle, Layer};
 use hypsogrid::output::{write_heights, OutputOptions};
 use netcdf::types::{FloatType, IntType, NcVariableType};
@@ -283,8 +282,9 @@ impl Bands {
 
 /// What the report should say for `input` when `asked` rows are asked for, derived from the
 /// promises of the library's public parts, not from the variant's label: the whole cycle
-/// unless the file is read step by step (as [`read_cycle_overlapped`] reports) and the row
-/// kernel takes the cycle ([`IsobaricKernel::new`]); whole steps where the output is
+/// unless the file is read step by step (as [`read_cycle_overlapped`] reports) and the
+/// settings can compute the cycle ([`heights_method`]: on the row kernel or column by
+/// column); whole steps where the output is
 /// compressed; else the rows asked for (at least one, at most the grid's), or without a
 /// request the batch's own choice (whatever the input's storage: input stored in chunks is
 /// read a whole step at a time, then computed and written in bands).
@@ -298,7 +298,7 @@ fn expected_bands(
     let (cycle, fed) =
         read_cycle_overlapped(input, &ingest, |_| Some(()), |(), _, steps| steps.count())
             .unwrap_or_else(|e| panic!("{}: {e}", input.display()));
-    if fed.is_none() || IsobaricKernel::new(&cycle, &config.layers).is_err() {
+    if fed.is_none() || heights_method(&cycle, config).is_err() {
         return Bands::Whole;
     }
     let rows = cycle.grid.rows();
@@ -499,8 +499,9 @@ fn the_report_gives_the_rows_asked_for() {
 }
 
 /// Humidity kinds, masks and layouts beyond the encoding list: mixing ratio and dry air go
-/// band by band; relative humidity and dewpoint (the column path), humidity on its own
-/// level axis, no surface fields, fall back; a member axis of one member goes band by band;
+/// band by band on the row kernel; relative humidity, dewpoint and no surface fields go band
+/// by band on the column path; humidity on its own level axis falls back (whole-variable
+/// reads); a member axis of one member goes band by band;
 /// masked points (fill values in the output) in the last rows come out the same; chunks
 /// across steps are read whole.
 #[test]
@@ -612,10 +613,10 @@ fn humidity_kinds_masks_and_layouts_write_the_reference_file() {
     assert_eq!(outcome["dry"], Some(1), "{outcome:?}");
     assert_eq!(outcome["masked"], Some(1), "{outcome:?}");
     assert_eq!(outcome["one-member-axis"], Some(1), "{outcome:?}");
-    assert_eq!(outcome["relative-percent"], None, "{outcome:?}");
-    assert_eq!(outcome["dewpoint"], None, "{outcome:?}");
+    assert_eq!(outcome["relative-percent"], Some(1), "{outcome:?}");
+    assert_eq!(outcome["dewpoint"], Some(1), "{outcome:?}");
+    assert_eq!(outcome["no-surface"], Some(1), "{outcome:?}");
     assert_eq!(outcome["humidity-missing-level"], None, "{outcome:?}");
-    assert_eq!(outcome["no-surface"], None, "{outcome:?}");
     // Chunks that hold every step are read whole (see tests/overlapped.rs).
     assert_eq!(outcome["chunked-across-steps"], None, "{outcome:?}");
     // The masks reached the output as fill values.
@@ -683,10 +684,11 @@ fn demo_and_synthetic_global_cycles_write_the_reference_file() {
     assert_eq!(reports[1].band_rows, Some(50));
 }
 
-/// Hybrid levels take the column path: the batch falls back to the whole cycle and writes
-/// the same file whatever band size is asked for.
+/// Hybrid levels go band by band on the column path (each band's columns built from its
+/// own rows) and write the same file whatever band size is asked for, levels listed either
+/// way in the file.
 #[test]
-fn hybrid_variants_fall_back_and_write_the_reference_file() {
+fn hybrid_variants_go_band_by_band_and_write_the_reference_file() {
     let dir = tempfile::tempdir().expect("tempdir");
     let config = config();
     let options = options(None);
@@ -694,7 +696,8 @@ fn hybrid_variants_fall_back_and_write_the_reference_file() {
         let input = write(dir.path(), &label, &spec);
         let reports = compare_variant(dir.path(), &label, &input, &config, &options, &BAND_ROWS);
         for (asked, report) in BAND_ROWS.iter().zip(&reports) {
-            assert_eq!(report.band_rows, None, "{label}, bands {asked:?}");
+            let want = asked.map_or(FIXTURE_ROWS, |n| n.min(FIXTURE_ROWS));
+            assert_eq!(report.band_rows, Some(want), "{label}, bands {asked:?}");
         }
     }
 }
@@ -860,7 +863,15 @@ fn chunked_input_in_bands_of_whole_steps_writes_the_reference_file() {
     let dir = tempfile::tempdir().expect("tempdir");
     let config = config();
     let options = options(None);
+    // Hybrid levels and relative humidity: the column path, a whole step read at a time.
+    let (_, hybrid) = hybrid_variants().swap_remove(0);
+    let hybrid = FixtureSpec {
+        time_steps: Some(2),
+        humidity: HumidityEncoding::RelativePercent,
+        ..hybrid
+    };
     for (label, spec) in [
+        ("chunked-hybrid-relative-humidity", hybrid),
         (
             "chunked-steps",
             FixtureSpec {
@@ -1271,6 +1282,16 @@ fn progress_counts_the_steps_up_to_the_total() {
             "column-path",
             FixtureSpec {
                 humidity: HumidityEncoding::RelativePercent,
+                ..members_and_steps.clone()
+            },
+            Some(1),
+            true,
+        ),
+        // Humidity on its own level axis is read whole: the whole cycle's progress.
+        (
+            "whole-cycle",
+            FixtureSpec {
+                humidity_missing_level: Some(7),
                 ..members_and_steps.clone()
             },
             Some(1),
