@@ -4,7 +4,8 @@
 analytic fields, not model output, and not a forecast.
 
 The file follows the CF conventions for `atmosphere_hybrid_sigma_pressure_coordinate`
-(formula terms `ap: ap b: b ps: ps`, half levels in `ap_half` and `b_half`): one time step,
+(formula terms `ap: ap b: b ps: ps`, half levels in `ap_half` and `b_half`): one time step
+(or `--times` lead times six hours apart, each step 0.5 K warmer than the one before),
 levels listed top-down, latitudes north to south. The coefficients put the model top at
 p = 0, make the upper levels pure pressure (b = 0) and the lowest ones terrain-following,
 and bring the lowest half level to the surface (a = 0, b = 1). The terrain is a few invented
@@ -12,7 +13,7 @@ ridges up to 1500 m; the temperature is a 0.19-power profile of pressure with a 
 latitude, floored at 210 K; the specific humidity falls with the cube of pressure.
 
     target/python-venv/bin/python benches/hybrid_cycle.py OUT.nc [--levels 137]
-        [--rows 181] [--cols 360]
+        [--rows 181] [--cols 360] [--times 1]
     target/release/hypsogrid compute OUT.nc --output heights.nc            # three layers
     target/release/hypsogrid compute OUT.nc --output heights.nc --heights-only
 """
@@ -39,6 +40,7 @@ def main():
     parser.add_argument("--levels", type=int, default=137)
     parser.add_argument("--rows", type=int, default=181)
     parser.add_argument("--cols", type=int, default=360)
+    parser.add_argument("--times", type=int, default=1)
     args = parser.parse_args()
     nlev, ny, nx = args.levels, args.rows, args.cols
     a, b = coefficients(nlev)
@@ -47,7 +49,7 @@ def main():
     f = netCDF4.Dataset(args.output, "w")
     f.Conventions = "CF-1.8"
     f.title = "invented global cycle on hybrid levels (hypsogrid benches, not model output)"
-    f.createDimension("time", 1)
+    f.createDimension("time", args.times)
     f.createDimension("lev", nlev)
     f.createDimension("ilev", nlev + 1)
     f.createDimension("lat", ny)
@@ -63,7 +65,7 @@ def main():
         v[:] = values
     t = f.createVariable("time", "f8", ("time",))
     t.units, t.standard_name = "hours since 2031-01-01 00:00:00", "time"
-    t[:] = [0.0]
+    t[:] = 6.0 * np.arange(args.times)
     lev = f.createVariable("lev", "f8", ("lev",))
     lev.standard_name = "atmosphere_hybrid_sigma_pressure_coordinate"
     lev.units, lev.positive = "1", "down"
@@ -94,7 +96,8 @@ def main():
     ]:
         v = f.createVariable(name, "f4", dims)
         v.units, v.standard_name = units, std
-        v[0] = values
+        for step in range(args.times):
+            v[step] = values + 0.5 * step if name == "t" else values
     f.close()
 
 
