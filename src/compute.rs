@@ -179,12 +179,12 @@ pub fn read_and_compute(
     Ok((cycle, heights))
 }
 
-/// Reads the cycle in `path` for serving: the kernel works on each step while later ones
-/// are read ([`read_cycle_overlapped`]), but the last step is left to compute, and so is
-/// whatever the kernel has not done when the read ends (from the next piece of rows of the
-/// step it is on), as are all steps of a cycle the kernel does not take, so that the cycle
-/// can be served the moment its file has been read. [`PendingSteps::finish`] computes the
-/// rest.
+/// Reads the cycle in `path` for serving: each step is computed while later ones are read
+/// ([`read_cycle_overlapped`]), by the row kernel where it takes the cycle and column by
+/// column otherwise, but the last step is left to compute, and so is whatever is not done
+/// when the read ends (the kernel from the next piece of rows of the step it is on, the
+/// column path from the start of that step), so that the cycle can be served the moment
+/// its file has been read. [`PendingSteps::finish`] computes the rest.
 ///
 /// The heights are those of [`compute_heights`], step for step, bit for bit.
 ///
@@ -198,10 +198,16 @@ pub fn read_for_serving(
 ) -> Result<(Cycle, ServedHeights, PendingSteps), LoadError> {
     check_layers(config)?;
     let prepare = |cycle: &Cycle| {
-        let kernel = IsobaricKernel::new(cycle, &config.layers).ok()?;
         StepColumns::new(cycle, config, 0, 0).ok()?;
         let (members, times, levels, rows, cols) = cycle.temperature.dim();
         let total = members * times;
+        let Ok(kernel) = IsobaricKernel::new(cycle, &config.layers) else {
+            // Nothing to do while a one-step cycle is read.
+            return (total > 1).then_some(WhileReading {
+                steps: (members, times),
+                kernel: None,
+            });
+        };
         // No buffer is prepared (and faulted in while reading) for the last step, which is
         // computed after the read: faulting its pages in competes with the read for memory
         // and made a one-step 0.5° cycle servable later (1.09-1.17 times its read against
@@ -214,35 +220,54 @@ pub fn read_for_serving(
             at: (0, 0),
             partial: None,
         };
-        Some((kernel, out, (members, times)))
+        Some(WhileReading {
+            steps: (members, times),
+            kernel: Some((kernel, out)),
+        })
     };
-    let work = |(kernel, mut out, steps_shape): (IsobaricKernel, EachStep, (usize, usize)),
-                shell: &Cycle,
-                steps: crate::ingest::StepFeed<'_>| {
-        compute_while_reading(&kernel, shell, steps, &mut out, steps_shape);
-        (kernel, out)
-    };
+    let work =
+        |prepared: WhileReading, shell: &Cycle, steps: crate::ingest::StepFeed<'_>| match prepared
+            .kernel
+        {
+            Some((kernel, mut out)) => {
+                compute_while_reading(&kernel, shell, steps, &mut out, prepared.steps);
+                (Some(kernel), out.outs, out.finished, out.partial)
+            }
+            None => {
+                let finished = columns_while_reading(shell, config, steps, prepared.steps);
+                (None, Vec::new(), finished, None)
+            }
+        };
     let (cycle, overlapped) = read_cycle_overlapped(path, ingest, prepare, work)?;
     // The same validation as compute_heights, before the cycle is served.
     let method = heights_method(&cycle, config)?;
     let (members, times, ..) = cycle.temperature.dim();
     let heights = ServedHeights::pending(members, times, method);
     let pending = match overlapped {
-        Some((kernel, out)) => {
-            for (i, step) in out.finished.into_iter().enumerate() {
+        Some((kernel, buffers, finished, resume)) => {
+            for (i, step) in finished.into_iter().enumerate() {
                 if let Some(step) = step {
                     heights.set(i / times, i % times, step);
                 }
             }
             PendingSteps {
-                kernel: Some(kernel),
-                buffers: out.outs,
-                resume: out.partial,
+                kernel,
+                buffers,
+                resume,
             }
         }
         None => PendingSteps::for_cycle(&cycle, config),
     };
     Ok((cycle, heights, pending))
+}
+
+/// What computes the steps of a cycle while it is read for serving.
+struct WhileReading {
+    /// The cycle's `(members, times)`.
+    steps: (usize, usize),
+    /// The row kernel, with an output per step, where it takes the cycle; the column path
+    /// otherwise.
+    kernel: Option<(IsobaricKernel, EachStep)>,
 }
 
 /// The steps of a cycle read by [`read_for_serving`] whose heights are still to compute.
@@ -419,18 +444,99 @@ fn columns_step(
     config: &ComputeConfig,
     (m, t): (usize, usize),
 ) -> Result<StepHeights, ComputeError> {
-    let step = StepColumns::new(cycle, config, m, t)?;
-    let (_, _, levels, rows, cols) = cycle.temperature.dim();
+    let fields = (
+        cycle.temperature.slice(s![m, t, .., .., ..]),
+        cycle
+            .humidity
+            .as_ref()
+            .map(|h| h.values.slice(s![m, t, .., .., ..])),
+    );
+    columns_step_of(cycle, config, (m, t), fields, &|| false)
+        .unwrap_or_else(|| unreachable!("never asked to stop"))
+}
+
+/// One step of `shell` on the column path from its temperature and humidity `(t, q)`
+/// (`[level, lat, lon]`, as the cycle holds them at that step), in [`PIECES_PER_STEP`]
+/// pieces of rows, asking `stop` before each: `None` where `stop` said so first (the step's
+/// work so far is dropped). Each column is computed on its own, so the pieces give the
+/// step computed whole, bit for bit.
+fn columns_step_of(
+    shell: &Cycle,
+    config: &ComputeConfig,
+    (m, t): (usize, usize),
+    (t_step, q_step): (ArrayView3<'_, f32>, Option<ArrayView3<'_, f32>>),
+    stop: &dyn Fn() -> bool,
+) -> Option<Result<StepHeights, ComputeError>> {
+    let (levels, rows, cols) = t_step.dim();
     let layers = config.layers.len();
     let mut z = Array3::<f32>::from_elem((levels, rows, cols), f32::NAN);
     let mut b = Array3::<u8>::zeros((levels, rows, cols));
     let mut th = Array3::<f32>::from_elem((layers, rows, cols), f32::NAN);
     let mut tb = Array3::<u8>::zeros((layers, rows, cols));
-    step.fill(z.view_mut(), b.view_mut(), th.view_mut(), tb.view_mut());
-    Ok(StepHeights {
+    let piece = rows.div_ceil(PIECES_PER_STEP).max(1);
+    for from in (0..rows).step_by(piece) {
+        if stop() {
+            return None;
+        }
+        let r = from..(from + piece).min(rows);
+        let step = StepColumns::for_rows(
+            shell,
+            config,
+            (m, t),
+            r.clone(),
+            t_step.slice_move(s![.., r.clone(), ..]),
+            q_step.map(|q| q.slice_move(s![.., r.clone(), ..])),
+        );
+        let step = match step {
+            Ok(step) => step,
+            Err(e) => return Some(Err(e)),
+        };
+        step.fill(
+            z.slice_mut(s![.., r.clone(), ..]),
+            b.slice_mut(s![.., r.clone(), ..]),
+            th.slice_mut(s![.., r.clone(), ..]),
+            tb.slice_mut(s![.., r, ..]),
+        );
+    }
+    Some(Ok(StepHeights {
         geopotential_height: z,
         below_ground: b,
-    })
+    }))
+}
+
+/// The column path's side of the serving read: computes each step of `steps` as it arrives
+/// (on threads of lower priority than the reading one, see [`background_pool`]), leaving
+/// the last step of the file to the caller, and the step it is on once the read has ended.
+/// Returns the heights of the steps computed, by step index. Steps must come in file order;
+/// the feed breaking the order stops the work (the steps not computed are computed after
+/// the read).
+fn columns_while_reading(
+    shell: &Cycle,
+    config: &ComputeConfig,
+    steps: crate::ingest::StepFeed<'_>,
+    (members, times): (usize, usize),
+) -> Vec<Option<StepHeights>> {
+    let total = members * times;
+    let mut finished: Vec<Option<StepHeights>> = (0..total).map(|_| None).collect();
+    let pool = background_pool(rayon::current_num_threads());
+    let read_done = steps.read_done();
+    let stop = || read_done.load(Ordering::Acquire);
+    for (done, step) in steps.enumerate() {
+        if step.member * times + step.time != done || done + 1 >= total {
+            break;
+        }
+        let fields = (step.temperature, step.humidity);
+        let run = || columns_step_of(shell, config, (step.member, step.time), fields, &stop);
+        let computed = match pool.as_ref() {
+            Some(pool) => pool.install(run),
+            None => run(),
+        };
+        match computed {
+            Some(Ok(heights)) => finished[done] = Some(heights),
+            _ => break,
+        }
+    }
+    finished
 }
 
 /// One output per step, as a served cycle holds them.
@@ -1435,6 +1541,61 @@ mod tests {
                 assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
             }
         }
+    }
+
+    /// The column path's side of the serving read, on a feed that holds every step: while
+    /// the read goes on, every step but the last is computed in pieces of rows, to the bits
+    /// of the column path on the whole cycle (`compute_heights_by_columns`, checked against
+    /// published values in tests/compute.rs); once the read has ended, nothing is kept. A
+    /// stop part-way through a step gives nothing for it.
+    #[test]
+    fn the_column_path_computes_while_the_read_goes_on_and_stops_when_it_ends() {
+        let (cycle, ..) = three_steps();
+        let config = ComputeConfig::default();
+        let reference = compute_heights_by_columns(&cycle, &config, &|_| {}).expect("columns");
+        let (members, times, ..) = cycle.temperature.dim();
+        let humidity = cycle.humidity.as_ref().expect("humidity");
+        for read_ended in [false, true] {
+            let flag = AtomicBool::new(read_ended);
+            let (tx, rx) = mpsc::channel();
+            for t in 0..times {
+                tx.send(FilledStep {
+                    member: 0,
+                    time: t,
+                    temperature: cycle.temperature.slice(s![0, t, .., .., ..]),
+                    humidity: Some(humidity.values.slice(s![0, t, .., .., ..])),
+                })
+                .expect("feed");
+            }
+            drop(tx);
+            let feed = StepFeed::new(rx, &flag);
+            let finished = columns_while_reading(&cycle, &config, feed, (members, times));
+            assert_eq!(finished.len(), times);
+            if read_ended {
+                assert!(finished.iter().all(Option::is_none));
+                continue;
+            }
+            assert!(finished[times - 1].is_none(), "the last step is left");
+            for (t, step) in finished.iter().take(times - 1).enumerate() {
+                let got = step.as_ref().expect("computed while reading");
+                let want = reference.geopotential_height.slice(s![0, t, .., .., ..]);
+                assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
+                let want = reference.below_ground.slice(s![0, t, .., .., ..]);
+                assert!(got.below_ground == want, "below-ground flags, step {t}");
+            }
+        }
+        let asked = AtomicUsize::new(0);
+        let stop = || asked.fetch_add(1, Ordering::Relaxed) >= 3;
+        let fields = (
+            cycle.temperature.slice(s![0, 1, .., .., ..]),
+            Some(humidity.values.slice(s![0, 1, .., .., ..])),
+        );
+        assert!(columns_step_of(&cycle, &config, (0, 1), fields, &stop).is_none());
+        assert_eq!(
+            asked.load(Ordering::Relaxed),
+            4,
+            "stopped at the fourth piece"
+        );
     }
 
     /// The serving read stops the kernel between two pieces of rows once the file is read

@@ -97,10 +97,27 @@ fn same_heights(label: &str, a: &Heights, b: &Heights) {
     assert_eq!(a.method, b.method, "{label}");
 }
 
-/// Every isobaric and hybrid variant, plus several steps and members with levels both ways.
+/// Every isobaric and hybrid variant, plus several steps and members with levels both ways,
+/// and several steps on the column path (hybrid levels, relative humidity).
 fn variants() -> Vec<(String, FixtureSpec)> {
     let mut v = isobaric_variants();
-    v.extend(hybrid_variants());
+    let hybrid = hybrid_variants();
+    v.push((
+        "hybrid-steps".into(),
+        FixtureSpec {
+            time_steps: Some(3),
+            ..hybrid[0].1.clone()
+        },
+    ));
+    v.extend(hybrid);
+    v.push((
+        "relative-humidity-steps".into(),
+        FixtureSpec {
+            time_steps: Some(3),
+            humidity: HumidityEncoding::RelativePercent,
+            ..FixtureSpec::default()
+        },
+    ));
     for top_down in [false, true] {
         v.push((
             format!("members-and-steps-top-down-{top_down}"),
