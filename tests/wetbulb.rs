@@ -11,6 +11,7 @@ use hypsogrid::physics::humidity::{
 use hypsogrid::physics::wetbulb::{
     psychrometric_vapour_pressure, psychrometric_wet_bulb_temperature, wet_bulb_exceeds_freezing,
     wet_bulb_temperature_from_dewpoint, wet_bulb_temperature_from_relative_humidity, WetBulbPhase,
+    PSYCHROMETER_COEFFICIENT_ICE, PSYCHROMETER_COEFFICIENT_WATER,
 };
 use hypsogrid::physics::Constants;
 
@@ -236,4 +237,36 @@ fn nan_and_out_of_range_inputs_give_nan() {
     );
     assert!(wet_bulb_exceeds_freezing(f64::NAN, P0, 100.0).is_none());
     assert!(wet_bulb_exceeds_freezing(290.0, P0, -1.0).is_none());
+}
+
+/// The ice-bulb coefficient, quoted from memory of WMO-No. 8, checked against physics and a
+/// second source. The psychrometer coefficient is `A = c_p / (ε L)`: the heat the passing air
+/// gives the bulb over the latent heat the water takes as it evaporates (liquid bulb, `L_v`)
+/// or sublimes (iced bulb, `L_s = L_v + L_f`). So at 0 °C the iced bulb's coefficient is the
+/// liquid one's times `L_v / L_s`. Latent heats at 0 °C: `L_v = 2.501·10⁶` and
+/// `L_f = 0.334·10⁶ J kg⁻¹` (standard values, e.g. Wallace and Hobbs 2006, §3.7; from
+/// memory), so `L_v / L_s = 0.8825`. The AMS *Glossary of Meteorology* ("psychrometric
+/// formula", glossary.ametsoc.org) gives the older pair 6.60·10⁻⁴ and, iced, about
+/// 5.82·10⁻⁴: a ratio of 0.8818. The crate's pair (6.53 and 5.75·10⁻⁴) must give the same
+/// ratio to within 0.5 %, and its ice value must lie within 0.5 % of the glossary's iced
+/// value scaled to the WMO water coefficient (the two sources' water values differ by 1.1 %).
+#[test]
+fn the_ice_bulb_coefficient_is_the_water_one_scaled_by_the_latent_heats() {
+    let (l_v, l_f) = (2.501e6, 0.334e6);
+    let physics = l_v / (l_v + l_f);
+    let ratio = PSYCHROMETER_COEFFICIENT_ICE / PSYCHROMETER_COEFFICIENT_WATER;
+    assert!(
+        (ratio / physics - 1.0).abs() < 0.005,
+        "ice / water coefficient {ratio:.4} against L_v / L_s {physics:.4}"
+    );
+    let glossary = 5.82e-4 / 6.60e-4;
+    assert!(
+        (glossary / physics - 1.0).abs() < 0.005,
+        "the glossary's pair {glossary:.4} against L_v / L_s {physics:.4}"
+    );
+    let scaled = glossary * PSYCHROMETER_COEFFICIENT_WATER;
+    assert!(
+        (PSYCHROMETER_COEFFICIENT_ICE / scaled - 1.0).abs() < 0.005,
+        "ice coefficient {PSYCHROMETER_COEFFICIENT_ICE:e} against the glossary's scaled {scaled:e}"
+    );
 }

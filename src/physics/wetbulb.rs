@@ -12,9 +12,11 @@
 //! (2008 and 2018 editions, Part I, chapter 4, Annex 4.B); the water form,
 //! `6.53·10⁻⁴ (1 + 9.44·10⁻⁴ t_w)`, is also how a public calculator quotes the 2012 (seventh)
 //! edition (rechneronline.de, "Psychrometrische Luftfeuchte"), while the ice coefficient
-//! `5.75·10⁻⁴` rests on memory alone. For comparison, the AMS *Glossary of
-//! Meteorology* ("psychrometric formula") gives the older Smithsonian values
-//! 6.60·10⁻⁴ (1 + 0.00115 t_w) and, for an iced bulb, about 5.82·10⁻⁴.
+//! `5.75·10⁻⁴` rests on memory. The AMS *Glossary of Meteorology* ("psychrometric formula")
+//! gives the older Smithsonian values 6.60·10⁻⁴ (1 + 0.00115 t_w) and, for an iced bulb,
+//! about 5.82·10⁻⁴; `tests/wetbulb.rs` checks the ice value against the ratio of the latent
+//! heats of vaporization and sublimation (the coefficient goes as `1 / L`) and against the
+//! glossary's pair.
 //!
 //! # Conventions
 //! - The enhancement factor `f(p)` of Annex 4.B (about 1.004 near 1000 hPa) multiplies both
