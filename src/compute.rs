@@ -101,17 +101,17 @@ pub enum ComputeError {
 /// [`ColumnNodes::hybrid`] (constant-lapse-rate layers; Simmons & Burridge 1981 on hybrid
 /// levels), and thickness by [`thickness_between`] on the same column.
 ///
-/// Isobaric cycles with surface fields and specific humidity, mixing ratio or no humidity
-/// (the common case) run the row-wise [`crate::kernel::IsobaricKernel`], which gives the
-/// same answers as the column path to well within a millimetre and several times faster;
-/// everything else runs [`compute_heights_by_columns`].
+/// Isobaric cycles with surface fields (the common case, whatever their humidity) run the
+/// row-wise [`crate::kernel::IsobaricKernel`], which gives the same answers as the column
+/// path to well within a millimetre and several times faster; everything else (hybrid
+/// levels, no surface fields) runs [`compute_heights_by_columns`].
 pub fn compute_heights(
     cycle: &Cycle,
     config: &ComputeConfig,
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<Heights, ComputeError> {
     check_layers(config)?;
-    let kernel = match IsobaricKernel::new(cycle, &config.layers) {
+    let kernel = match row_kernel(cycle, config) {
         Ok(kernel) => kernel,
         Err(_) => return compute_heights_by_columns(cycle, config, progress),
     };
@@ -124,13 +124,27 @@ pub fn compute_heights(
     }
 }
 
+/// The row kernel for `cycle` with the layers and saturation settings of `config`, or why
+/// the cycle takes the column path.
+pub(crate) fn row_kernel(
+    cycle: &Cycle,
+    config: &ComputeConfig,
+) -> Result<IsobaricKernel, crate::kernel::NotApplicable> {
+    IsobaricKernel::with_saturation(
+        cycle,
+        &config.layers,
+        config.saturation_formula,
+        config.rh_phase,
+    )
+}
+
 /// The row kernel for `cycle` and the method sentence its heights carry, when the kernel
 /// takes the cycle (as [`compute_heights`] decides); `None` otherwise.
 pub(crate) fn kernel_for(
     cycle: &Cycle,
     config: &ComputeConfig,
 ) -> Option<(IsobaricKernel, String)> {
-    let kernel = IsobaricKernel::new(cycle, &config.layers).ok()?;
+    let kernel = row_kernel(cycle, config).ok()?;
     let reference = StepColumns::new(cycle, config, 0, 0).ok()?.reference;
     Some((kernel, method_sentence(cycle, reference)))
 }
@@ -201,7 +215,7 @@ pub fn read_for_serving(
         StepColumns::new(cycle, config, 0, 0).ok()?;
         let (members, times, levels, rows, cols) = cycle.temperature.dim();
         let total = members * times;
-        let Ok(kernel) = IsobaricKernel::new(cycle, &config.layers) else {
+        let Ok(kernel) = row_kernel(cycle, config) else {
             // Nothing to do while a one-step cycle is read.
             return (total > 1).then_some(WhileReading {
                 steps: (members, times),
@@ -286,7 +300,7 @@ impl PendingSteps {
     /// No buffers prepared: every pending step of `cycle` is computed from scratch.
     pub fn for_cycle(cycle: &Cycle, config: &ComputeConfig) -> Self {
         Self {
-            kernel: IsobaricKernel::new(cycle, &config.layers).ok(),
+            kernel: row_kernel(cycle, config).ok(),
             buffers: Vec::new(),
             resume: None,
         }
@@ -724,8 +738,8 @@ pub(crate) fn check_layers(config: &ComputeConfig) -> Result<(), ComputeError> {
 
 /// [`compute_heights`] on the column path for every cycle: each column is gathered, built
 /// with [`StepColumns::build`] and interpolated with [`thickness_between`]. It is the
-/// reference the fast kernel is tested against, and the path for hybrid levels, relative
-/// humidity, dewpoint and cycles without surface fields.
+/// reference the fast kernel is tested against, and the path for hybrid levels and cycles
+/// without surface fields.
 pub fn compute_heights_by_columns(
     cycle: &Cycle,
     config: &ComputeConfig,

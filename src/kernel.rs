@@ -1,9 +1,12 @@
 //! The fast batch kernel for the common case: isobaric levels, heights tied to the surface,
-//! humidity as specific humidity, mixing ratio or none.
+//! humidity as specific humidity, mixing ratio, relative humidity, dewpoint or none.
 //!
-//! [`crate::compute::compute_heights`] dispatches here when [`IsobaricKernel::new`] accepts
-//! the cycle; everything else (hybrid levels, relative humidity, dewpoint, cycles without
-//! surface fields) stays on the column path of [`crate::physics::column::ColumnNodes`].
+//! [`crate::compute::compute_heights`] dispatches here when
+//! [`IsobaricKernel::with_saturation`] accepts the cycle; everything else (hybrid levels,
+//! cycles without surface fields) stays on the column path of
+//! [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint are made specific
+//! humidity a level's row at a time, with the column path's own functions, before the level
+//! step.
 //!
 //! # Why it is fast
 //! The column path gathers one column at a time across 37 level planes that lie megabytes
@@ -45,6 +48,10 @@ use crate::buffers::zeroed_field_array;
 use crate::lanes::{lane_builds, Lanes};
 use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Surface, Vertical};
 use crate::physics::constants::STANDARD_LAPSE_RATE;
+use crate::physics::humidity::{
+    saturation_vapour_pressure, specific_humidity_from_vapour_pressure,
+    vapour_pressure_from_dewpoint, RelativeHumidityPhase, SaturationFormula,
+};
 use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
 
 /// Largest `|u| = |Tv1 − Tv2| / (Tv1 + Tv2)` for which the kernel trusts
@@ -189,9 +196,10 @@ pub enum NotApplicable {
     /// No surface pressure and height to tie the columns to.
     #[error("the cycle has no surface pressure and surface height")]
     NoSurface,
-    /// Humidity that needs a saturation formula per point.
+    /// Humidity that needs a saturation formula per point, where none was given
+    /// ([`IsobaricKernel::new`]; [`IsobaricKernel::with_saturation`] takes it).
     #[error(
-        "humidity is given as {kind}: only specific humidity and mixing ratio are converted here"
+        "humidity is given as {kind}: without a saturation formula only specific humidity and mixing ratio are converted"
     )]
     Humidity {
         /// The CF standard name of the humidity the cycle carries.
@@ -267,6 +275,22 @@ enum Moisture {
     Specific,
     /// Mixing ratio, kg kg⁻¹.
     Mixing,
+    /// Relative humidity (a fraction), made specific humidity row by row before the level
+    /// step ([`IsobaricKernel::specific_humidity`]).
+    Relative,
+    /// Dewpoint, K, made specific humidity the same way.
+    DewPoint,
+}
+
+impl Moisture {
+    /// The moisture the level step sees: relative humidity and dewpoint arrive there as
+    /// specific humidity.
+    fn in_step(self) -> Moisture {
+        match self {
+            Moisture::Relative | Moisture::DewPoint => Moisture::Specific,
+            other => other,
+        }
+    }
 }
 
 /// Where one layer bound sits on the levels (fixed for the whole grid).
@@ -425,10 +449,14 @@ fn level_lanes<const M: u8, const FULL: bool>(
 fn level_step_body(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
     match (m, p.full) {
         (Moisture::Dry, true) => level_lanes::<MOIST_DRY, true>(p, i, o),
-        (Moisture::Specific, true) => level_lanes::<MOIST_SPECIFIC, true>(p, i, o),
+        (Moisture::Specific | Moisture::Relative | Moisture::DewPoint, true) => {
+            level_lanes::<MOIST_SPECIFIC, true>(p, i, o)
+        }
         (Moisture::Mixing, true) => level_lanes::<MOIST_MIXING, true>(p, i, o),
         (Moisture::Dry, false) => level_lanes::<MOIST_DRY, false>(p, i, o),
-        (Moisture::Specific, false) => level_lanes::<MOIST_SPECIFIC, false>(p, i, o),
+        (Moisture::Specific | Moisture::Relative | Moisture::DewPoint, false) => {
+            level_lanes::<MOIST_SPECIFIC, false>(p, i, o)
+        }
         (Moisture::Mixing, false) => level_lanes::<MOIST_MIXING, false>(p, i, o),
     }
 }
@@ -514,6 +542,11 @@ pub struct IsobaricKernel {
     /// `1/ε − 1` and `1/ε`.
     kq: f64,
     inv_eps: f64,
+    /// `ε`, for specific humidity from a vapour pressure.
+    eps: f64,
+    /// The saturation formula and phase relative humidity and dewpoint are converted with,
+    /// where the kernel takes them ([`IsobaricKernel::with_saturation`]).
+    saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
     /// How each level's virtual temperature is formed.
     moisture: Vec<Moisture>,
     /// The layers, with their bounds placed on the levels.
@@ -557,6 +590,8 @@ struct RowScratch {
     cap_tv: Vec<Vec<f64>>,
     tbuf: Vec<f32>,
     qbuf: Vec<f32>,
+    /// A level's relative humidity or dewpoint made specific humidity.
+    qconv: Vec<f32>,
 }
 
 impl RowScratch {
@@ -582,6 +617,7 @@ impl RowScratch {
             cap_tv: (0..captures).map(|_| v()).collect(),
             tbuf: Vec::with_capacity(cols),
             qbuf: Vec::with_capacity(cols),
+            qconv: Vec::with_capacity(cols),
         }
     }
 }
@@ -716,8 +752,34 @@ fn place_bound(levels: &[f64], p: f64, captures: &mut Vec<usize>) -> Bound {
 impl IsobaricKernel {
     /// Prepares the kernel for `cycle` and `layers`, or says why the cycle must take the
     /// column path. Layer bounds may be anywhere (on a level or between levels); their
-    /// order is checked by the caller.
+    /// order is checked by the caller. Relative humidity and dewpoint need a saturation
+    /// formula, and are refused here: see [`IsobaricKernel::with_saturation`].
     pub fn new(cycle: &Cycle, layers: &[Layer]) -> Result<Self, NotApplicable> {
+        Self::prepare(cycle, layers, None)
+    }
+
+    /// [`IsobaricKernel::new`], also for relative humidity and dewpoint: each level's row is
+    /// made specific humidity with `formula` and `phase` before the level step, with the
+    /// column path's own functions
+    /// ([`crate::physics::humidity::saturation_vapour_pressure`],
+    /// [`crate::physics::humidity::vapour_pressure_from_dewpoint`],
+    /// [`crate::physics::humidity::specific_humidity_from_vapour_pressure`]), stored as
+    /// `f32` (a relative difference of at most 6·10⁻⁸ in the specific humidity, some
+    /// 10⁻⁵ m in a height at 30 km).
+    pub fn with_saturation(
+        cycle: &Cycle,
+        layers: &[Layer],
+        formula: SaturationFormula,
+        phase: RelativeHumidityPhase,
+    ) -> Result<Self, NotApplicable> {
+        Self::prepare(cycle, layers, Some((formula, phase)))
+    }
+
+    fn prepare(
+        cycle: &Cycle,
+        layers: &[Layer],
+        saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
+    ) -> Result<Self, NotApplicable> {
         let levels = match &cycle.vertical {
             Vertical::Isobaric { pressure_pa } => pressure_pa.clone(),
             Vertical::Hybrid { .. } => return Err(NotApplicable::HybridLevels),
@@ -753,10 +815,12 @@ impl IsobaricKernel {
         }
         let mut moisture = vec![Moisture::Dry; n];
         if let Some(h) = &cycle.humidity {
-            let kind = match h.kind {
-                HumidityKind::SpecificHumidity => Moisture::Specific,
-                HumidityKind::MixingRatio => Moisture::Mixing,
-                other => {
+            let kind = match (h.kind, saturation) {
+                (HumidityKind::SpecificHumidity, _) => Moisture::Specific,
+                (HumidityKind::MixingRatio, _) => Moisture::Mixing,
+                (HumidityKind::RelativeHumidity, Some(_)) => Moisture::Relative,
+                (HumidityKind::DewPoint, Some(_)) => Moisture::DewPoint,
+                (other, None) => {
                     return Err(NotApplicable::Humidity {
                         kind: other.standard_name(),
                     })
@@ -817,6 +881,8 @@ impl IsobaricKernel {
             rd_g0,
             kq: 1.0 / eps - 1.0,
             inv_eps: 1.0 / eps,
+            eps,
+            saturation,
             moisture,
             layers: placed,
             captures,
@@ -830,6 +896,15 @@ impl IsobaricKernel {
     pub fn with_lanes(mut self, wanted: Lanes) -> Self {
         self.lanes = Lanes::widest_up_to(wanted);
         self
+    }
+
+    /// Whether some level's humidity is made specific humidity before the level step
+    /// (relative humidity or dewpoint): a saturation vapour pressure per point-level, which
+    /// costs more than the rest of the step.
+    pub fn converts_humidity(&self) -> bool {
+        self.moisture
+            .iter()
+            .any(|m| matches!(m, Moisture::Relative | Moisture::DewPoint))
     }
 
     /// Which build of the inner loops runs.
@@ -879,7 +954,7 @@ impl IsobaricKernel {
 
     /// Refuses a cycle other than the one the kernel was prepared for.
     fn check_cycle(&self, cycle: &Cycle) -> Result<(), NotApplicable> {
-        let fresh = Self::new(cycle, &[])?;
+        let fresh = Self::prepare(cycle, &[], self.saturation)?;
         if fresh.levels != self.levels || fresh.moisture != self.moisture {
             return Err(NotApplicable::OtherCycle {
                 file: cycle.source.display().to_string(),
@@ -1082,14 +1157,37 @@ impl IsobaricKernel {
     /// Virtual temperature at level `k` of column (`r`, `c`), `NaN` where not usable.
     fn tv_at(&self, v: &StepFields<'_>, k: usize, r: usize, c: usize) -> f64 {
         let t = v.t[[k, r, c]];
-        let q = v.q.as_ref().map_or(0.0, |q| q[[k, r, c]]);
-        match self.moisture[k] {
-            Moisture::Dry => virtual_temperature::<MOIST_DRY>(t, q, self.kq, self.inv_eps),
-            Moisture::Specific => {
-                virtual_temperature::<MOIST_SPECIFIC>(t, q, self.kq, self.inv_eps)
+        let h = v.q.as_ref().map_or(0.0, |q| q[[k, r, c]]);
+        let m = self.moisture[k];
+        let q = match m {
+            Moisture::Relative | Moisture::DewPoint => {
+                self.specific_humidity(m, t, h, self.levels[k])
             }
+            _ => h,
+        };
+        match m.in_step() {
             Moisture::Mixing => virtual_temperature::<MOIST_MIXING>(t, q, self.kq, self.inv_eps),
+            Moisture::Dry => virtual_temperature::<MOIST_DRY>(t, q, self.kq, self.inv_eps),
+            _ => virtual_temperature::<MOIST_SPECIFIC>(t, q, self.kq, self.inv_eps),
         }
+    }
+
+    /// Specific humidity (kg kg⁻¹, as `f32`) at pressure `p` (Pa) from temperature `t` (K)
+    /// and relative humidity (a fraction) or dewpoint (K) `h`, as the column path forms it
+    /// on its way to the virtual temperature; `NaN` where it cannot be formed. Dry and
+    /// specific levels pass `h` through.
+    fn specific_humidity(&self, m: Moisture, t: f32, h: f32, p: f64) -> f32 {
+        let (t, h) = (f64::from(t), f64::from(h));
+        let e = match (m, self.saturation) {
+            (Moisture::Relative, Some((formula, phase))) => {
+                h * saturation_vapour_pressure(t, formula, phase)
+            }
+            (Moisture::DewPoint, Some((formula, _))) => vapour_pressure_from_dewpoint(h, formula),
+            // Not reached: these kinds are taken only with a saturation formula.
+            (Moisture::Relative | Moisture::DewPoint, None) => f64::NAN,
+            _ => return h as f32,
+        };
+        specific_humidity_from_vapour_pressure(e, p, self.eps) as f32
     }
 
     /// One latitude row: surface set-up per column, then the levels bottom-up, then the
@@ -1199,6 +1297,17 @@ impl IsobaricKernel {
             let q = match (&v.q, m) {
                 (Some(q3), Moisture::Specific | Moisture::Mixing) => {
                     level_lane(q3, q_all, (k, r), &mut s.qbuf)
+                }
+                (Some(q3), Moisture::Relative | Moisture::DewPoint) => {
+                    let h = level_lane(q3, q_all, (k, r), &mut s.qbuf);
+                    let p_k = self.levels[k];
+                    s.qconv.clear();
+                    s.qconv.extend(
+                        t.iter()
+                            .zip(h)
+                            .map(|(&t, &h)| self.specific_humidity(m, t, h, p_k)),
+                    );
+                    &s.qconv
                 }
                 _ => t,
             };

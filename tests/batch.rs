@@ -498,9 +498,9 @@ fn the_report_gives_the_rows_asked_for() {
     );
 }
 
-/// Humidity kinds, masks and layouts beyond the encoding list: mixing ratio and dry air go
-/// band by band on the row kernel; relative humidity, dewpoint and no surface fields go band
-/// by band on the column path; humidity on its own level axis falls back (whole-variable
+/// Humidity kinds, masks and layouts beyond the encoding list: mixing ratio, dry air,
+/// relative humidity and dewpoint go band by band on the row kernel; no surface fields go
+/// band by band on the column path; humidity on its own level axis falls back (whole-variable
 /// reads); a member axis of one member goes band by band;
 /// masked points (fill values in the output) in the last rows come out the same; chunks
 /// across steps are read whole.
@@ -863,7 +863,7 @@ fn chunked_input_in_bands_of_whole_steps_writes_the_reference_file() {
     let dir = tempfile::tempdir().expect("tempdir");
     let config = config();
     let options = options(None);
-    // Hybrid levels and relative humidity: the column path, a whole step read at a time.
+    // Hybrid levels (the column path) with relative humidity, a whole step read at a time.
     let (_, hybrid) = hybrid_variants().swap_remove(0);
     let hybrid = FixtureSpec {
         time_steps: Some(2),
@@ -1280,6 +1280,16 @@ fn progress_counts_the_steps_up_to_the_total() {
         ("banded-uneven", members_and_steps.clone(), Some(3), true),
         (
             "column-path",
+            FixtureSpec {
+                surface: None,
+                file_heights: FileHeights::GeopotentialHeight,
+                ..members_and_steps.clone()
+            },
+            Some(1),
+            true,
+        ),
+        (
+            "relative-humidity",
             FixtureSpec {
                 humidity: HumidityEncoding::RelativePercent,
                 ..members_and_steps.clone()

@@ -18,6 +18,7 @@ use hypsogrid::kernel::{
 };
 use hypsogrid::lanes::Lanes;
 use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
+use hypsogrid::physics::humidity::{RelativeHumidityPhase, SaturationFormula};
 use hypsogrid::physics::hypsometric::scale_height;
 use hypsogrid::physics::standard_atmosphere::{
     us_standard_atmosphere_height_at_pressure, us_standard_atmosphere_temperature,
@@ -194,7 +195,19 @@ fn both_paths(cycle: &Cycle, layers: Vec<Layer>) -> (Heights, Heights) {
         layers,
         ..ComputeConfig::default()
     };
-    IsobaricKernel::new(cycle, &config.layers).expect("the fast kernel applies");
+    both_paths_with(cycle, &config)
+}
+
+/// [`both_paths`] with every setting of `config` (saturation formula and phase too).
+fn both_paths_with(cycle: &Cycle, config: &ComputeConfig) -> (Heights, Heights) {
+    let config = config.clone();
+    IsobaricKernel::with_saturation(
+        cycle,
+        &config.layers,
+        config.saturation_formula,
+        config.rh_phase,
+    )
+    .expect("the fast kernel applies");
     let fast = compute_heights(cycle, &config, &|_| {}).expect("fast path");
     let columns = compute_heights_by_columns(cycle, &config, &|_| {}).expect("column path");
     (fast, columns)
@@ -332,6 +345,57 @@ fn kernel_matches_the_column_path_with_mixing_ratio_dry_air_and_missing_humidity
         let (worst, n) = compare(&fast, &columns);
         println!("{kind:?}: {n} values, largest difference {worst:e} m");
         assert!(fast.geopotential_height[[0, 1, 30, 3, 5]].is_finite());
+    }
+}
+
+/// Relative humidity and dewpoint, made specific humidity row by row before the level step,
+/// against the column path (which forms the same specific humidity column by column), with
+/// both saturation formulas, relative humidity over water and over ice below freezing, the
+/// planted edge cases, and a humidity level missing from the file.
+#[test]
+fn kernel_matches_the_column_path_with_relative_humidity_and_dewpoint() {
+    for kind in [HumidityKind::RelativeHumidity, HumidityKind::DewPoint] {
+        let mut cycle = invented_cycle(1, 2, 6, 30, Some(kind));
+        let mut rng = Lcg(7);
+        let h = cycle.humidity.as_mut().expect("humidity");
+        for (v, &t) in h.values.iter_mut().zip(cycle.temperature.iter()) {
+            *v = match kind {
+                // A fraction, 5 % to 100 %.
+                HumidityKind::RelativeHumidity => (0.05 + 0.95 * rng.next()) as f32,
+                // 0 to 25 K below the temperature.
+                _ => (f64::from(t) - 25.0 * rng.next()) as f32,
+            };
+        }
+        h.missing_levels = vec![30];
+        h.values.slice_mut(s![.., .., 30, .., ..]).fill(f32::NAN);
+        plant_edge_cases(&mut cycle);
+        for formula in [SaturationFormula::WmoMagnus, SaturationFormula::Bolton] {
+            for rh_phase in [
+                RelativeHumidityPhase::Water,
+                RelativeHumidityPhase::IceBelowFreezing,
+            ] {
+                let config = ComputeConfig {
+                    layers: layers(),
+                    saturation_formula: formula,
+                    rh_phase,
+                    ..ComputeConfig::default()
+                };
+                let (fast, columns) = both_paths_with(&cycle, &config);
+                let (worst, n) = compare(&fast, &columns);
+                println!("{kind:?}, {formula:?}, {rh_phase:?}: {n} values, largest difference {worst:e} m");
+                assert!(n > 2 * 6 * 30 * 20, "most values are finite ({n})");
+            }
+        }
+        // The humidity changes the heights: dry air is several metres lower at 500 hPa.
+        let mut dry = cycle.clone();
+        dry.humidity = None;
+        let (moist, _) = both_paths(&cycle, layers());
+        let (dry, _) = both_paths(&dry, layers());
+        let (z_moist, z_dry) = (
+            moist.geopotential_height[[0, 1, 12, 3, 25]],
+            dry.geopotential_height[[0, 1, 12, 3, 25]],
+        );
+        assert!(z_moist - z_dry > 1.0, "{kind:?}: {z_moist} vs {z_dry} dry");
     }
 }
 
@@ -487,11 +551,19 @@ fn standard_atmosphere_column_reproduces_the_mandatory_heights() {
 
 #[test]
 fn other_cycles_are_left_to_the_column_path() {
+    // Relative humidity needs a saturation formula: refused without one.
     let cycle = invented_cycle(1, 1, 2, 2, Some(HumidityKind::RelativeHumidity));
     assert!(matches!(
         IsobaricKernel::new(&cycle, &[]),
         Err(NotApplicable::Humidity { .. })
     ));
+    let with = IsobaricKernel::with_saturation(
+        &cycle,
+        &[],
+        SaturationFormula::WmoMagnus,
+        RelativeHumidityPhase::Water,
+    );
+    assert!(with.is_ok_and(|k| k.converts_humidity()));
     let mut dry = invented_cycle(1, 1, 2, 2, None);
     dry.surface = None;
     assert_eq!(
@@ -552,9 +624,8 @@ fn shared_data(relative: &str) -> Option<PathBuf> {
 fn kernel_matches_the_column_path_on_a_real_gfs_cycle() {
     // GFS 2.5° global, 2011-01-10 12Z + 120 h (PROVENANCE.md in the folder): real
     // temperature on 26 levels over real orography, so that many columns have levels below
-    // the ground. Its humidity is relative (column path only), so it is dropped here and
-    // both paths integrate the same dry columns; a specific humidity made from it with
-    // Bolton's formula then runs both paths on moist columns.
+    // the ground. Both paths run on its own relative humidity, then on dry columns (the
+    // humidity dropped), then on a specific humidity made from it with Bolton's formula.
     let Some(path) = shared_data(
         "gfs-2p5deg-global-2011011012-f120/gfs_2p5deg_2011011012_f120_isobaric_subset.nc",
     ) else {
@@ -574,6 +645,12 @@ fn kernel_matches_the_column_path_on_a_real_gfs_cycle() {
         on_levels(85_000.0, 70_000.0),
         on_levels(96_250.0, 41_000.0),
     ];
+    let kind = real.humidity.as_ref().map(|h| h.kind);
+    assert_eq!(kind, Some(HumidityKind::RelativeHumidity), "GFS gives RH");
+    let (fast, columns) = both_paths(&real, layers.clone());
+    let (worst, n) = compare(&fast, &columns);
+    println!("GFS 2.5° relative humidity: {n} values, largest difference {worst:e} m");
+    assert!(n > 10_000, "most values are finite ({n})");
     let mut dry = real.clone();
     dry.humidity = None;
     let (fast, columns) = both_paths(&dry, layers.clone());

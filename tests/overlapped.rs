@@ -98,7 +98,8 @@ fn same_heights(label: &str, a: &Heights, b: &Heights) {
 }
 
 /// Every isobaric and hybrid variant, plus several steps and members with levels both ways,
-/// and several steps on the column path (hybrid levels, relative humidity).
+/// and several steps of hybrid levels (the column path) and of relative humidity (the row
+/// kernel, made specific humidity first).
 fn variants() -> Vec<(String, FixtureSpec)> {
     let mut v = isobaric_variants();
     let hybrid = hybrid_variants();
@@ -286,8 +287,9 @@ fn the_feed_hands_over_each_step_as_the_cycle_holds_it() {
     );
 }
 
-/// A cycle whose heights come from the column path (relative humidity) declines the kernel
-/// in `prepare`, and still gives the two-pass answers.
+/// A preparation that declines (as the serving read's does for a one-step cycle on the
+/// column path) reads the whole cycle, hands over no step, and still gives the two-pass
+/// answers.
 #[test]
 fn a_declined_preparation_reads_the_whole_cycle_and_hands_over_nothing() {
     let dir = tempfile::tempdir().expect("tempdir");
