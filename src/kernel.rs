@@ -48,10 +48,7 @@ use crate::buffers::zeroed_field_array;
 use crate::lanes::{lane_builds, Lanes};
 use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Surface, Vertical};
 use crate::physics::constants::STANDARD_LAPSE_RATE;
-use crate::physics::humidity::{
-    saturation_vapour_pressure, specific_humidity_from_vapour_pressure,
-    vapour_pressure_from_dewpoint, RelativeHumidityPhase, SaturationFormula,
-};
+use crate::physics::humidity::{MagnusTerms, RelativeHumidityPhase, SaturationFormula};
 use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
 
 /// Largest `|u| = |Tv1 − Tv2| / (Tv1 + Tv2)` for which the kernel trusts
@@ -155,6 +152,112 @@ fn atanh_over_u(s: f64) -> f64 {
     let low = (1.0 + c[0] * s) + s2 * (c[1] + c[2] * s);
     let high = (c[3] + c[4] * s) + s2 * (c[5] + c[6] * s);
     low + s4 * high
+}
+
+/// `e^x` without a branch on `x`, so that a loop of it compiles to SIMD lanes: the
+/// argument is reduced to `x = n ln 2 + r`, `|r| ≤ ln 2 / 2`, with `n` rounded to nearest by
+/// adding and subtracting `1.5·2⁵²` and `ln 2` split in two (Cody and Waite; the split of
+/// fdlibm's `e_exp.c`, `ln2_hi = 0x3fe62e42fee00000`, whose low bits are zero so that
+/// `n·ln2_hi` is exact); `e^r` by its Taylor series to `r¹³/13!`, by Horner's rule; and
+/// `2ⁿ` put straight into the exponent bits. `x` is first clamped to `[−708, 709]` (the
+/// range where `2ⁿ` is a normal number), so larger arguments give `e^709` and smaller ones
+/// `e^−708`; `NaN` gives `NaN`.
+///
+/// Truncation: the remainder is at most `|r|¹⁴/14! · e^{|r|} ≤ 0.347¹⁴ / 14! · 1.42 < 6e-18`,
+/// and `e^r ≥ 0.70`: a relative error below `9e-18`, a tenth of an ulp; what remains is the
+/// rounding of the reduction and of Horner's rule, about an ulp (`tests/kernel.rs` holds it
+/// to 2·2⁻⁵² of the standard library's `exp` over the whole range). References: Cody, W. J.
+/// and Waite, W. (1980), *Software Manual for the Elementary Functions*, ch. 6; the series
+/// and its remainder, Abramowitz and Stegun (1964), 4.2.1 (from memory).
+#[inline(always)]
+pub fn exp_by_reduction(x: f64) -> f64 {
+    // fdlibm's split of ln 2 (6.93147180369123816490e-01 and 1.90821492927058770002e-10).
+    const LN2_HI: f64 = f64::from_bits(0x3fe6_2e42_fee0_0000);
+    const LN2_LO: f64 = f64::from_bits(0x3dea_39ef_3579_3c76);
+    const INV_LN2: f64 = std::f64::consts::LOG2_E;
+    const ROUND: f64 = 6_755_399_441_055_744.0;
+    const C: [f64; 13] = [
+        1.0,
+        1.0 / 2.0,
+        1.0 / 6.0,
+        1.0 / 24.0,
+        1.0 / 120.0,
+        1.0 / 720.0,
+        1.0 / 5_040.0,
+        1.0 / 40_320.0,
+        1.0 / 362_880.0,
+        1.0 / 3_628_800.0,
+        1.0 / 39_916_800.0,
+        1.0 / 479_001_600.0,
+        1.0 / 6_227_020_800.0,
+    ];
+    let x = x.clamp(-708.0, 709.0);
+    let k = x * INV_LN2 + ROUND;
+    let n = k - ROUND;
+    let r = (x - n * LN2_HI) - n * LN2_LO;
+    let mut p = C[12];
+    for &c in C[..12].iter().rev() {
+        p = p * r + c;
+    }
+    let e_r = p * r + 1.0;
+    // `k`'s low mantissa bits hold `n` (two's complement): `n + 1023` is 2ⁿ's exponent.
+    let two_n = f64::from_bits(k.to_bits().wrapping_add(1023) << 52);
+    e_r * two_n
+}
+
+/// How a level's relative humidity or dewpoint becomes specific humidity: the Magnus form
+/// of the saturation formula the settings choose
+/// ([`crate::physics::humidity::saturation_vapour_pressure`]), then
+/// [`crate::physics::humidity::specific_humidity_from_vapour_pressure`].
+#[derive(Clone, Copy, Debug, PartialEq)]
+struct ToSpecific {
+    /// Relative humidity (a fraction); otherwise dewpoint (K).
+    relative: bool,
+    /// Whether saturation is over ice below 0 °C (relative humidity with
+    /// [`RelativeHumidityPhase::IceBelowFreezing`]; a dewpoint is over water).
+    ice_below_freezing: bool,
+    magnus: MagnusTerms,
+    /// `ε`.
+    eps: f64,
+}
+
+/// Specific humidity (kg kg⁻¹, as `f32`) at pressure `p` (Pa) from temperature `t` (K) and
+/// relative humidity or dewpoint `h`, as the column path forms it on its way to the virtual
+/// temperature, operation for operation, but with [`exp_by_reduction`] for `exp` and
+/// selects for its branches, so that a loop of it compiles to SIMD lanes; `NaN` where the
+/// column path gives `NaN`.
+#[inline(always)]
+fn specific_from(c: &ToSpecific, p: f64, t: f32, h: f32) -> f32 {
+    let (t, h) = (f64::from(t), f64::from(h));
+    let m = &c.magnus;
+    // The temperature the saturation pressure is taken at: the air's, or the dewpoint.
+    let ts = if c.relative { t } else { h };
+    let ice = c.ice_below_freezing & (ts < m.zero_celsius_k);
+    let a = if ice { m.ice.0 } else { m.water.0 };
+    let b = if ice { m.ice.1 } else { m.water.1 };
+    let tc = ts - m.zero_celsius_k;
+    let denom = b + tc;
+    let es = m.e0_pa * exp_by_reduction(a * tc / denom);
+    let es = if denom <= 0.0 { f64::NAN } else { es };
+    let e = if c.relative { h * es } else { es };
+    let q = c.eps * e / (p - (1.0 - c.eps) * e);
+    (if p - e <= 0.0 { f64::NAN } else { q }) as f32
+}
+
+/// [`specific_from`] over a level's row: `out[i]` from `t[i]` and `h[i]`.
+#[inline(always)]
+fn specific_lanes(c: &ToSpecific, p: f64, t: &[f32], h: &[f32], out: &mut [f32]) {
+    let n = out.len();
+    let (t, h) = (&t[..n], &h[..n]);
+    for i in 0..n {
+        out[i] = specific_from(c, p, t[i], h[i]);
+    }
+}
+
+lane_builds! {
+    /// A row's specific humidity ([`specific_lanes`]) in the build `lanes` names.
+    fn specific_step(c: &ToSpecific, p: f64, t: &[f32], h: &[f32], out: &mut [f32]) -> ()
+        = specific_lanes;
 }
 
 /// Largest `|x|` for which [`exp_by_series`] is used in the surface set-up.
@@ -542,11 +645,12 @@ pub struct IsobaricKernel {
     /// `1/ε − 1` and `1/ε`.
     kq: f64,
     inv_eps: f64,
-    /// `ε`, for specific humidity from a vapour pressure.
-    eps: f64,
     /// The saturation formula and phase relative humidity and dewpoint are converted with,
     /// where the kernel takes them ([`IsobaricKernel::with_saturation`]).
     saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
+    /// How the cycle's relative humidity or dewpoint becomes specific humidity, where it
+    /// carries one of them.
+    to_specific: Option<ToSpecific>,
     /// How each level's virtual temperature is formed.
     moisture: Vec<Moisture>,
     /// The layers, with their bounds placed on the levels.
@@ -871,6 +975,19 @@ impl IsobaricKernel {
         let pow_kappa: Vec<f64> = ln_p.iter().map(|&l| (kappa * l).exp()).collect();
         let inv_pow_kappa = pow_kappa.iter().map(|&x| 1.0 / x).collect();
         let eps = c.molar_mass_ratio;
+        let converted = moisture
+            .iter()
+            .find(|m| matches!(m, Moisture::Relative | Moisture::DewPoint));
+        let to_specific = match (converted, saturation) {
+            (Some(&m), Some((formula, phase))) => Some(ToSpecific {
+                relative: m == Moisture::Relative,
+                ice_below_freezing: m == Moisture::Relative
+                    && phase == RelativeHumidityPhase::IceBelowFreezing,
+                magnus: MagnusTerms::of(formula),
+                eps,
+            }),
+            _ => None,
+        };
         Ok(Self {
             levels,
             ln_p,
@@ -881,8 +998,8 @@ impl IsobaricKernel {
             rd_g0,
             kq: 1.0 / eps - 1.0,
             inv_eps: 1.0 / eps,
-            eps,
             saturation,
+            to_specific,
             moisture,
             layers: placed,
             captures,
@@ -1177,17 +1294,12 @@ impl IsobaricKernel {
     /// on its way to the virtual temperature; `NaN` where it cannot be formed. Dry and
     /// specific levels pass `h` through.
     fn specific_humidity(&self, m: Moisture, t: f32, h: f32, p: f64) -> f32 {
-        let (t, h) = (f64::from(t), f64::from(h));
-        let e = match (m, self.saturation) {
-            (Moisture::Relative, Some((formula, phase))) => {
-                h * saturation_vapour_pressure(t, formula, phase)
-            }
-            (Moisture::DewPoint, Some((formula, _))) => vapour_pressure_from_dewpoint(h, formula),
+        match (m, &self.to_specific) {
+            (Moisture::Relative | Moisture::DewPoint, Some(c)) => specific_from(c, p, t, h),
             // Not reached: these kinds are taken only with a saturation formula.
-            (Moisture::Relative | Moisture::DewPoint, None) => f64::NAN,
-            _ => return h as f32,
-        };
-        specific_humidity_from_vapour_pressure(e, p, self.eps) as f32
+            (Moisture::Relative | Moisture::DewPoint, None) => f32::NAN,
+            _ => h,
+        }
     }
 
     /// One latitude row: surface set-up per column, then the levels bottom-up, then the
@@ -1300,13 +1412,12 @@ impl IsobaricKernel {
                 }
                 (Some(q3), Moisture::Relative | Moisture::DewPoint) => {
                     let h = level_lane(q3, q_all, (k, r), &mut s.qbuf);
-                    let p_k = self.levels[k];
-                    s.qconv.clear();
-                    s.qconv.extend(
-                        t.iter()
-                            .zip(h)
-                            .map(|(&t, &h)| self.specific_humidity(m, t, h, p_k)),
-                    );
+                    s.qconv.resize(cols, f32::NAN);
+                    match &self.to_specific {
+                        Some(c) => specific_step(self.lanes, c, self.levels[k], t, h, &mut s.qconv),
+                        // Not reached: these kinds are taken only with a saturation formula.
+                        None => s.qconv.fill(f32::NAN),
+                    }
                     &s.qconv
                 }
                 _ => t,

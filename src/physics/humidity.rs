@@ -36,6 +36,35 @@ const WMO_ICE_B: f64 = 272.62;
 const BOLTON_A: f64 = 17.67;
 const BOLTON_B: f64 = 243.5;
 
+/// The terms of the Magnus form `e0 exp(a t / (b + t))` ([`saturation_vapour_pressure`]) for
+/// one formula, for code that evaluates it in its own way (the row kernel's lanes).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub(crate) struct MagnusTerms {
+    /// 0 °C in kelvin.
+    pub(crate) zero_celsius_k: f64,
+    /// `e0`, Pa.
+    pub(crate) e0_pa: f64,
+    /// `(a, b)` over water (`b` in °C).
+    pub(crate) water: (f64, f64),
+    /// `(a, b)` over ice, which [`RelativeHumidityPhase::IceBelowFreezing`] takes below 0 °C.
+    pub(crate) ice: (f64, f64),
+}
+
+impl MagnusTerms {
+    /// The terms [`saturation_vapour_pressure`] uses with `formula`.
+    pub(crate) fn of(formula: SaturationFormula) -> Self {
+        Self {
+            zero_celsius_k: ZERO_CELSIUS_K,
+            e0_pa: MAGNUS_E0_PA,
+            water: match formula {
+                SaturationFormula::WmoMagnus => (WMO_WATER_A, WMO_WATER_B),
+                SaturationFormula::Bolton => (BOLTON_A, BOLTON_B),
+            },
+            ice: (WMO_ICE_A, WMO_ICE_B),
+        }
+    }
+}
+
 /// Which published fit of the saturation vapour pressure to use.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
 pub enum SaturationFormula {
