@@ -1,8 +1,9 @@
 //! The grid kernel: heights and layer thickness for every column of a cycle, in parallel.
 //!
-//! [`compute_heights`] sends the common case (isobaric levels, surface fields, specific
-//! humidity, mixing ratio or none) to the row-wise [`crate::kernel::IsobaricKernel`], and
-//! everything else to the column path here, [`compute_heights_by_columns`]: work split by
+//! [`compute_heights`] sends the common case (isobaric levels with surface fields, whatever
+//! the humidity) to the row-wise [`crate::kernel::IsobaricKernel`], and everything else
+//! (hybrid levels, no surface fields) to the column path here,
+//! [`compute_heights_by_columns`]: work split by
 //! latitude row (rayon), each row walking its columns with one reused [`ColumnNodes`]
 //! scratch buffer, so the inner loop allocates nothing. Fields are `f32`; every column is
 //! gathered into `f64`, integrated in `f64`, and scattered back as `f32`. On both paths a
