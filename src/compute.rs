@@ -1504,6 +1504,23 @@ mod tests {
         (cycle, config, reference)
     }
 
+    /// A feed holding every step of member 0 of `cycle` (which has humidity), in file order,
+    /// as the reading thread hands them over.
+    fn every_step(cycle: &Cycle) -> mpsc::Receiver<FilledStep<'_>> {
+        let humidity = cycle.humidity.as_ref().expect("humidity");
+        let (tx, rx) = mpsc::channel();
+        for t in 0..cycle.temperature.dim().1 {
+            tx.send(FilledStep {
+                member: 0,
+                time: t,
+                temperature: cycle.temperature.slice(s![0, t, .., .., ..]),
+                humidity: Some(humidity.values.slice(s![0, t, .., .., ..])),
+            })
+            .expect("feed");
+        }
+        rx
+    }
+
     /// An output buffer for every step, nothing computed yet.
     fn each_step(kernel: &IsobaricKernel, cycle: &Cycle) -> EachStep {
         let (members, times, levels, rows, cols) = cycle.temperature.dim();
@@ -1528,20 +1545,8 @@ mod tests {
         let (members, times, ..) = cycle.temperature.dim();
         for read_ended in [false, true] {
             let flag = AtomicBool::new(read_ended);
-            let (tx, rx) = mpsc::channel();
-            for t in 0..times {
-                let humidity = cycle.humidity.as_ref().expect("humidity");
-                tx.send(FilledStep {
-                    member: 0,
-                    time: t,
-                    temperature: cycle.temperature.slice(s![0, t, .., .., ..]),
-                    humidity: Some(humidity.values.slice(s![0, t, .., .., ..])),
-                })
-                .expect("feed");
-            }
-            drop(tx);
             let mut out = each_step(&kernel, &cycle);
-            let feed = StepFeed::new(rx, &flag);
+            let feed = StepFeed::new(every_step(&cycle), &flag);
             compute_while_reading(&kernel, &cycle, feed, &mut out, (members, times));
             if read_ended {
                 assert!(out.finished.iter().all(Option::is_none));
@@ -1572,18 +1577,7 @@ mod tests {
         let humidity = cycle.humidity.as_ref().expect("humidity");
         for read_ended in [false, true] {
             let flag = AtomicBool::new(read_ended);
-            let (tx, rx) = mpsc::channel();
-            for t in 0..times {
-                tx.send(FilledStep {
-                    member: 0,
-                    time: t,
-                    temperature: cycle.temperature.slice(s![0, t, .., .., ..]),
-                    humidity: Some(humidity.values.slice(s![0, t, .., .., ..])),
-                })
-                .expect("feed");
-            }
-            drop(tx);
-            let feed = StepFeed::new(rx, &flag);
+            let feed = StepFeed::new(every_step(&cycle), &flag);
             let finished = columns_while_reading(&cycle, &config, feed, (members, times));
             assert_eq!(finished.len(), times);
             if read_ended {
