@@ -1035,7 +1035,7 @@ impl<'a> StepColumns<'a> {
         time: usize,
     ) -> Result<Self, ComputeError> {
         let (m, t) = (member, time);
-        Self::with_fields(
+        Self::for_rows(
             cycle,
             config,
             (m, t),
@@ -1062,17 +1062,7 @@ impl<'a> StepColumns<'a> {
         temperature: ArrayView3<'a, f32>,
         humidity: Option<ArrayView3<'a, f32>>,
     ) -> Result<Self, ComputeError> {
-        Self::with_fields(shell, config, (member, time), rows, temperature, humidity)
-    }
-
-    fn with_fields(
-        cycle: &'a Cycle,
-        config: &'a ComputeConfig,
-        (m, t): (usize, usize),
-        rows: std::ops::Range<usize>,
-        temperature: ArrayView3<'a, f32>,
-        humidity: Option<ArrayView3<'a, f32>>,
-    ) -> Result<Self, ComputeError> {
+        let (cycle, (m, t)) = (shell, (member, time));
         if matches!(cycle.vertical, Vertical::Hybrid { .. }) && cycle.surface.is_none() {
             return Err(ComputeError::HybridWithoutSurface {
                 file: cycle.source.display().to_string(),
