@@ -7,6 +7,8 @@
 #   REPEAT=9 benches/compare.sh   # more pairs
 #   QUARTER=1 benches/compare.sh  # also an invented 0.25° grid (721 x 1440 x 37, ~300 MB file)
 #   ZLIB=1 benches/compare.sh     # also the same 0.5° cycle stored zlib-1 compressed (shuffled)
+#   RH=1 benches/compare.sh       # also the same 0.5° cycle with relative humidity (as GFS files
+#                                 # carry it) instead of specific humidity
 #
 # The synthetic file is the one the compute bench writes (target/bench-data/global_0p5deg.nc);
 # when it is missing, the compute bench's smoke run writes it. The Rust batch runs twice per
@@ -108,6 +110,14 @@ if [ "${ZLIB:-0}" = 1 ]; then
         cargo bench --quiet --bench compute -- --test compute_whole_process_0p5deg/zlib1 >&2
     fi
     run_grid 0p5_zlib "$ZLIB_INPUT"
+fi
+if [ "${RH:-0}" = 1 ]; then
+    RH_INPUT=target/bench-data/global_0p5deg_rh.nc
+    if [ ! -f "$RH_INPUT" ]; then
+        echo "writing $RH_INPUT from $INPUT (numpy_baseline.py --relative-humidity-copy)" >&2
+        "$PY" benches/numpy_baseline.py --relative-humidity-copy "$INPUT" --output "$RH_INPUT" >/dev/null
+    fi
+    run_grid 0p5_rh "$RH_INPUT"
 fi
 if [ "${QUARTER:-0}" = 1 ]; then
     "$PY" benches/numpy_baseline.py --grid 0.25 --repeat "$REPEAT" --save-grid "$WORK/grid_0p25.nc" |

@@ -6,7 +6,10 @@ The method follows src/physics/column.rs (ColumnNodes::isobaric, integration fro
 surface) and src/physics/hypsometric.rs:
 
 - virtual temperature from specific humidity, Tv = T (1 + (1/eps - 1) q), eps = 0.62198
-  (18.01528 / 28.9645, GUIDE section 2);
+  (18.01528 / 28.9645, GUIDE section 2); a file with relative humidity instead has it made
+  specific humidity first, as the crate's default settings do (src/physics/humidity.rs):
+  e = RH e_s(T) with the WMO-No. 8 Magnus form over water, e_s = 611.2 Pa exp(17.62 t /
+  (243.12 + t)), t in deg C, then q = eps e / (p - (1 - eps) e), missing where e >= p;
 - the levels above the ground are integrated upward from the surface, layer by layer, with the
   logarithmic-mean virtual temperature of each layer (Wallace and Hobbs 2006, section 3.2);
 - the surface virtual temperature is the one of the lowest level above the ground,
@@ -33,6 +36,9 @@ and each timing is printed as one JSON line. Examples:
     python benches/numpy_baseline.py --grid 0.25 --repeat 3    # compute only, in memory
     python benches/numpy_baseline.py --grid 0.25 --save-grid G.nc   # ... and keep it as a file
     python benches/numpy_baseline.py --smoke                   # tiny run with self-checks
+    python benches/numpy_baseline.py --relative-humidity-copy IN.nc --output RH.nc
+        # IN.nc with its specific humidity turned into relative humidity, for timing both
+        # programs on the humidity GFS files carry
 
 The synthetic input of --grid and --smoke is invented data (for timing and for analytic
 checks only).
@@ -99,6 +105,53 @@ def one_minus_exp_neg_over(y):
     """(1 - exp(-y)) / y, equal to 1 at y = 0 (src/physics/hypsometric.rs)."""
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(y == 0.0, 1.0, -np.expm1(-y) / y)
+
+
+def specific_from_relative_humidity(p, t, rh, eps=EPS):
+    """Specific humidity (float64) from relative humidity (a fraction) at pressures `p` (Pa,
+    broadcast over the levels' axis 0 of `t`), by the WMO-No. 8 Magnus form over water and
+    q = eps e / (p - (1 - eps) e); NaN where e >= p (the crate's
+    saturation_vapour_pressure_water and specific_humidity_from_vapour_pressure)."""
+    tc = t.astype(np.float64) - 273.15
+    p = np.asarray(p, dtype=np.float64).reshape((-1,) + (1,) * (t.ndim - 1))
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        denom = 243.12 + tc
+        es = np.where(denom > 0.0, 611.2 * np.exp(17.62 * tc / denom), np.nan)
+        e = rh.astype(np.float64) * es
+        q = eps * e / (p - (1.0 - eps) * e)
+    return np.where(p - e > 0.0, q, np.nan)
+
+
+def relative_humidity_copy(src, dst):
+    """`src` with its specific humidity turned into relative humidity (percent, float32,
+    standard_name relative_humidity): the inverse of specific_from_relative_humidity on the
+    same invented fields, so that both programs can be timed on relative humidity input."""
+    with netCDF4.Dataset(src) as ds_in, netCDF4.Dataset(dst, "w", format="NETCDF4") as ds:
+        ds.setncatts({k: ds_in.getncattr(k) for k in ds_in.ncattrs()})
+        for name, dim in ds_in.dimensions.items():
+            ds.createDimension(name, None if dim.isunlimited() else len(dim))
+        level_var = find_by_standard_name(ds_in, "air_pressure", ndim=1)
+        scale = 100.0 if getattr(level_var, "units", "Pa") in ("hPa", "mbar", "millibar") else 1.0
+        # The levels in the file's own order, on the level axis of [time, level, lat, lon].
+        p = (np.asarray(level_var[:], dtype=np.float64) * scale).reshape((1, -1, 1, 1))
+        t = read_field(find_by_standard_name(ds_in, "air_temperature", ndim=4)).astype(np.float64)
+        for name, var in ds_in.variables.items():
+            is_q = getattr(var, "standard_name", None) == "specific_humidity"
+            fill = getattr(var, "_FillValue", None)
+            out = ds.createVariable("relative_humidity" if is_q else name, var.dtype,
+                                    var.dimensions, fill_value=fill)
+            out.setncatts({k: var.getncattr(k) for k in var.ncattrs() if k != "_FillValue"})
+            if not is_q:
+                out[...] = var[...]
+                continue
+            out.standard_name, out.units = "relative_humidity", "%"
+            q = read_field(var).astype(np.float64)
+            e = q * p / (EPS + (1.0 - EPS) * q)
+            tc = t - 273.15
+            es = 611.2 * np.exp(17.62 * tc / (243.12 + tc))
+            missing = np.isnan(q) | np.isnan(t)
+            rh = np.where(missing, fill if fill is not None else NC_FILL_FLOAT, 100.0 * e / es)
+            out[...] = rh.astype(np.float32)
 
 
 def virtual_temperature(t, q, eps=EPS):
@@ -209,9 +262,12 @@ class Columns:
             return np.where(self.ok, out, np.nan)
 
 
-def compute_step(p, t, q, ps, zs, layers, rd=RD, g0=G0):
+def compute_step(p, t, q, ps, zs, layers, rd=RD, g0=G0, relative=False):
     """Heights (float32), below-ground flags (int8) and layer thicknesses (float32) of one
-    time step; t and q are [level, lat, lon] float32 with NaN where missing."""
+    time step; t and q are [level, lat, lon] float32 with NaN where missing (q relative
+    humidity, a fraction, with `relative`)."""
+    if relative:
+        q = specific_from_relative_humidity(p, t, q)
     cols = Columns(p, virtual_temperature(t, q), ps, zs, rd, g0)
     thick = []
     for bottom_pa, top_pa in layers:
@@ -265,7 +321,13 @@ def read_cycle(path):
         elif units != "Pa":
             raise SystemExit(f"levels '{level_var.name}' in '{path}' have units '{units}': expected Pa or hPa")
         t = read_field(find_by_standard_name(ds, "air_temperature", ndim=4))
-        q = read_field(find_by_standard_name(ds, "specific_humidity", ndim=4))
+        relative = not any(getattr(v, "standard_name", None) == "specific_humidity" for v in ds.variables.values())
+        if relative:
+            rh_var = find_by_standard_name(ds, "relative_humidity", ndim=4)
+            # Percent or a fraction, as the crate reads it.
+            q = read_field(rh_var) / np.float32(100.0 if getattr(rh_var, "units", "1") == "%" else 1.0)
+        else:
+            q = read_field(find_by_standard_name(ds, "specific_humidity", ndim=4))
         ps = read_field(find_by_standard_name(ds, "surface_air_pressure"))
         phi_var = find_by_standard_name(ds, "surface_geopotential")
         phi = read_field(phi_var)
@@ -285,7 +347,8 @@ def read_cycle(path):
         p = p[::-1].copy()
         t = t[:, ::-1]
         q = q[:, ::-1]
-    return {"p": p, "t": t, "q": q, "ps": ps, "zs": zs, "lat": lat, "lon": lon, "time": time_values}
+    return {"p": p, "t": t, "q": q, "ps": ps, "zs": zs, "lat": lat, "lon": lon, "time": time_values,
+            "relative": relative}
 
 
 def find_coord(ds, dim):
@@ -378,7 +441,8 @@ def compute_cycle(cycle, layers, rd=RD, g0=G0):
     thick_all = [(np.empty((nt,) + zs.shape, np.float32), np.empty((nt,) + zs.shape, np.int8)) for _ in layers]
     for it in range(nt):
         ps = cycle["ps"][min(it, cycle["ps"].shape[0] - 1)].astype(np.float64)
-        z, below, thick = compute_step(p, cycle["t"][it], cycle["q"][it], ps, zs, layers, rd, g0)
+        z, below, thick = compute_step(p, cycle["t"][it], cycle["q"][it], ps, zs, layers, rd, g0,
+                                       cycle.get("relative", False))
         z_all[it], below_all[it] = z, below
         for (tv, tf), (v, f) in zip(thick_all, thick):
             tv[it], tf[it] = v, f
@@ -613,7 +677,16 @@ def smoke():
     expect(bool(np.all(np.isnan(gap[gap_level:])) and np.all(gap[:gap_level] == cols.z[:gap_level, 0, 0])),
            "a missing level must mask it and the levels above only")
 
-    # 4. Read, compute, write and compare on a tiny invented file.
+    # 4. Relative humidity to specific humidity: 50 % at 20 deg C and 1000 hPa. By hand, from
+    #    the WMO-No. 8 Magnus form: e_s = 611.2 exp(17.62 * 20 / 263.12) = 2332.6 Pa (IAPWS
+    #    gives 2339 Pa, from memory: the form's stated accuracy), e = 1166.3 Pa, q = eps e /
+    #    (p - (1 - eps) e) = 0.0072862 kg/kg. Saturated air above its own pressure gives NaN.
+    q = specific_from_relative_humidity(np.array([100000.0]), np.array([293.15]), np.array([0.5]))[0]
+    expect(abs(q - 0.0072862) < 2e-7, f"relative humidity 50 % at 20 C, 1000 hPa: q = {q}")
+    q = specific_from_relative_humidity(np.array([1000.0]), np.array([303.15]), np.array([1.0]))[0]
+    expect(bool(np.isnan(q)), f"saturated at 30 C and 10 hPa: q = {q}, expected NaN")
+
+    # 5. Read, compute, write and compare on a tiny invented file.
     cycle = invented_grid(9, 16, 37)
     layers = parse_layers(DEFAULT_LAYERS)
     with tempfile.TemporaryDirectory() as tmp:
@@ -723,6 +796,8 @@ def main(argv=None):
                         help="with --grid: also write the invented grid as a NetCDF-4 input file, so that "
                              "`hypsogrid compute` and --input can run on the same data")
     parser.add_argument("--smoke", action="store_true", help="a tiny fast run with self-checks")
+    parser.add_argument("--relative-humidity-copy", metavar="IN.nc",
+                        help="write IN.nc to --output with its specific humidity as relative humidity, and stop")
     args = parser.parse_args(argv)
     if args.repeat < 1:
         parser.error("--repeat must be at least 1")
@@ -731,6 +806,11 @@ def main(argv=None):
           "netCDF4": netCDF4.__version__, "netcdf_c": netCDF4.__netcdf4libversion__})
     if args.smoke:
         return smoke()
+    if args.relative_humidity_copy:
+        if not args.output:
+            parser.error("--relative-humidity-copy needs --output")
+        relative_humidity_copy(args.relative_humidity_copy, args.output)
+        return 0
     if args.save_grid and args.grid is None:
         parser.error("--save-grid needs --grid")
     if args.grid is not None:
