@@ -12,12 +12,13 @@
 //! humidity or dewpoint specific humidity first, which costs more than the rest of its
 //! step); every other cycle the settings can compute (hybrid levels, no surface fields)
 //! goes column by column ([`StepColumns`], each band's columns from its own rows) on every
-//! core, since there computing paces it. Chunked (compressed) input is read a whole step at a time, the
-//! chunks inflated on every core, then computed and written in bands the same way;
-//! compressed output takes whole steps. The file written is the one [`read_and_compute`]
-//! and [`write_heights`] give, value for value (`tests/batch.rs`). A file whose layout
-//! needs whole-variable reads is read whole, once ([`read_cycle_in_bands`] goes on to the
-//! whole cycle), computed by [`compute_heights`] and written by [`write_heights`].
+//! core, since there computing paces it. Chunked (compressed) input is read a whole step at
+//! a time, the chunks inflated on every core, then computed and written in bands the same
+//! way; compressed output takes whole steps. The file written is the one
+//! [`read_and_compute`] and [`write_heights`] give, value for value (`tests/batch.rs`). A
+//! file whose layout needs whole-variable reads is read whole, once
+//! ([`read_cycle_in_bands`] goes on to the whole cycle), computed by [`compute_heights`]
+//! and written by [`write_heights`].
 //!
 //! [`read_and_compute`]: crate::compute::read_and_compute
 
@@ -583,7 +584,7 @@ impl BandJob<'_> {
                 rows: band.clone(),
             };
             if let Err(failure) =
-                self.kernel_into(input.step, band.clone(), t_band, q_band, &mut out, reverse)
+                self.compute_rows(input.step, band.clone(), t_band, q_band, &mut out, reverse)
             {
                 return failed(failure);
             }
@@ -656,13 +657,13 @@ impl BandJob<'_> {
             Some(q) => Some(ArrayView3::from_shape(shape3, &q[..len])?),
             None => None,
         };
-        self.kernel_into((m, t), rows, t_band, q_band, &mut band.out, reverse)
+        self.compute_rows((m, t), rows, t_band, q_band, &mut band.out, reverse)
     }
 
     /// Rows `rows` of step (`m`, `t`), whose decoded temperature and humidity are `t_band`
     /// and `q_band` (`[level, row, lon]`), computed into `out`, then `out` as the file holds
     /// it.
-    fn kernel_into(
+    fn compute_rows(
         &self,
         (m, t): (usize, usize),
         rows: Range<usize>,

@@ -5,8 +5,8 @@
 //! [`IsobaricKernel::with_saturation`] accepts the cycle; everything else (hybrid levels,
 //! cycles without surface fields) stays on the column path of
 //! [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint are made specific
-//! humidity a level's row at a time, with the column path's own functions, before the level
-//! step.
+//! humidity a level's row at a time, in SIMD lanes of their own, with the column path's
+//! formulas, before the level step.
 //!
 //! # Why it is fast
 //! The column path gathers one column at a time across 37 level planes that lie megabytes
@@ -863,13 +863,14 @@ impl IsobaricKernel {
     }
 
     /// [`IsobaricKernel::new`], also for relative humidity and dewpoint: each level's row is
-    /// made specific humidity with `formula` and `phase` before the level step, with the
-    /// column path's own functions
+    /// made specific humidity with `formula` and `phase` before the level step, by the
+    /// column path's formulas operation for operation
     /// ([`crate::physics::humidity::saturation_vapour_pressure`],
     /// [`crate::physics::humidity::vapour_pressure_from_dewpoint`],
-    /// [`crate::physics::humidity::specific_humidity_from_vapour_pressure`]), stored as
-    /// `f32` (a relative difference of at most 6·10⁻⁸ in the specific humidity, some
-    /// 10⁻⁵ m in a height at 30 km).
+    /// [`crate::physics::humidity::specific_humidity_from_vapour_pressure`]) with `exp` by
+    /// [`exp_by_reduction`] (within an ulp or two of libm's), stored as `f32` (a relative
+    /// difference of at most 6·10⁻⁸ in the specific humidity, some 10⁻⁵ m in a height at
+    /// 30 km).
     pub fn with_saturation(
         cycle: &Cycle,
         layers: &[Layer],
