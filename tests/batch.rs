@@ -1018,6 +1018,27 @@ fn a_bad_value_in_a_later_band_fails_and_leaves_nothing_behind() {
             "t",
             BadValue::Float(1000.0),
         ),
+        // Bands on every core: relative humidity made specific humidity in the kernel, and
+        // hybrid levels on the column path.
+        (
+            "hot-relative-humidity",
+            FixtureSpec {
+                humidity: HumidityEncoding::RelativePercent,
+                ..members_and_steps.clone()
+            },
+            "t",
+            BadValue::Float(1000.0),
+        ),
+        (
+            "hot-hybrid",
+            FixtureSpec {
+                members: Some(2),
+                time_steps: Some(3),
+                ..hybrid_variants().swap_remove(0).1
+            },
+            "t",
+            BadValue::Float(1000.0),
+        ),
     ];
     // Each also stored in deflated chunks of one step (read a whole step at a time, then
     // decoded and computed in bands on another thread).
