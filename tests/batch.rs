@@ -761,6 +761,22 @@ fn compressed_output_goes_in_whole_steps_and_writes_the_reference_file() {
                 ..FixtureSpec::default()
             },
         ),
+        // The column path and the converting kernel in whole steps too.
+        (
+            "deflate-hybrid",
+            FixtureSpec {
+                time_steps: Some(2),
+                ..hybrid_variants().swap_remove(0).1
+            },
+        ),
+        (
+            "deflate-dewpoint",
+            FixtureSpec {
+                time_steps: Some(2),
+                humidity: HumidityEncoding::DewPoint,
+                ..FixtureSpec::default()
+            },
+        ),
     ] {
         let input = write(dir.path(), label, &spec);
         let reports = compare_variant(dir.path(), label, &input, &config, &options, &BAND_ROWS);
