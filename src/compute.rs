@@ -246,11 +246,16 @@ pub fn read_for_serving(
         {
             Some((kernel, mut out)) => {
                 compute_while_reading(&kernel, shell, steps, &mut out, prepared.steps);
-                (Some(kernel), out.outs, out.finished, out.partial)
+                let done = StepsRead {
+                    finished: out.finished,
+                    partial: None,
+                };
+                (Some(kernel), out.outs, done, out.partial)
             }
             None => {
-                let finished = columns_while_reading(shell, config, steps, prepared.steps);
-                (None, Vec::new(), finished, None)
+                let out =
+                    columns_while_reading(shell, config, steps, prepared.steps, Pace::Measured);
+                (None, Vec::new(), out, None)
             }
         };
     let (cycle, overlapped) = read_cycle_overlapped(path, ingest, prepare, work)?;
@@ -259,8 +264,8 @@ pub fn read_for_serving(
     let (members, times, ..) = cycle.temperature.dim();
     let heights = ServedHeights::pending(members, times, method);
     let pending = match overlapped {
-        Some((kernel, buffers, finished, resume)) => {
-            for (i, step) in finished.into_iter().enumerate() {
+        Some((kernel, buffers, columns, resume)) => {
+            for (i, step) in columns.finished.into_iter().enumerate() {
                 if let Some(step) = step {
                     heights.set(i / times, i % times, step);
                 }
@@ -269,6 +274,7 @@ pub fn read_for_serving(
                 kernel,
                 buffers,
                 resume,
+                columns_partial: columns.partial,
             }
         }
         None => PendingSteps::for_cycle(&cycle, config),
@@ -295,6 +301,8 @@ pub struct PendingSteps {
     /// A step the kernel left part-way when the read ended (step index, rows done): its
     /// buffer holds those rows, and only the rest are computed.
     resume: Option<(usize, usize)>,
+    /// A step the column path left part-way while the file was read.
+    columns_partial: Option<PartialColumns>,
 }
 
 impl PendingSteps {
@@ -304,6 +312,7 @@ impl PendingSteps {
             kernel: row_kernel(cycle, config).ok(),
             buffers: Vec::new(),
             resume: None,
+            columns_partial: None,
         }
     }
 
@@ -341,10 +350,16 @@ impl PendingSteps {
                 Some((i, rows)) if i == index => rows,
                 _ => 0,
             };
+            // The rows the column path computed while the file was read, when it left this
+            // step part-way.
+            let partial = self
+                .columns_partial
+                .take_if(|p| p.index == index)
+                .map(|p| (p.z, p.b, p.rows));
             let step = match &self.kernel {
                 Some(kernel) => kernel_step(kernel, cycle, (m, t), buffer, from)
-                    .map_or_else(|| columns_step(cycle, config, (m, t)), Ok),
-                None => columns_step(cycle, config, (m, t)),
+                    .map_or_else(|| columns_step(cycle, config, (m, t), None), Ok),
+                None => columns_step(cycle, config, (m, t), partial),
             };
             match step {
                 Ok(step) => heights.set(m, t, step),
@@ -453,11 +468,13 @@ fn only_step<T>(a: Array5<T>) -> Array3<T> {
     a.index_axis_move(Axis(0), 0).index_axis_move(Axis(0), 0)
 }
 
-/// One step on the column path.
+/// One step on the column path, from the rows `partial` already holds on (its heights,
+/// flags and rows done), or from the first.
 fn columns_step(
     cycle: &Cycle,
     config: &ComputeConfig,
     (m, t): (usize, usize),
+    partial: Option<(Array3<f32>, Array3<u8>, usize)>,
 ) -> Result<StepHeights, ComputeError> {
     let fields = (
         cycle.temperature.slice(s![m, t, .., .., ..]),
@@ -466,92 +483,200 @@ fn columns_step(
             .as_ref()
             .map(|h| h.values.slice(s![m, t, .., .., ..])),
     );
-    columns_step_of(cycle, config, (m, t), fields, &|| false)
-        .unwrap_or_else(|| unreachable!("never asked to stop"))
+    let mut step = ColumnsStep::start(config, fields.0.dim());
+    if let Some((z, b, rows)) = partial.filter(|(z, ..)| z.dim() == fields.0.dim()) {
+        step.z = z;
+        step.b = b;
+        step.done = rows;
+    }
+    step.run(cycle, config, (m, t), fields, &|| false)?;
+    Ok(step.finish())
 }
 
-/// One step of `shell` on the column path from its temperature and humidity `(t, q)`
-/// (`[level, lat, lon]`, as the cycle holds them at that step), in [`PIECES_PER_STEP`]
-/// pieces of rows, asking `stop` before each: `None` where `stop` said so first (the step's
-/// work so far is dropped). Each column is computed on its own, so the pieces give the
-/// step computed whole, bit for bit.
-fn columns_step_of(
-    shell: &Cycle,
-    config: &ComputeConfig,
-    (m, t): (usize, usize),
-    (t_step, q_step): (ArrayView3<'_, f32>, Option<ArrayView3<'_, f32>>),
-    stop: &dyn Fn() -> bool,
-) -> Option<Result<StepHeights, ComputeError>> {
-    let (levels, rows, cols) = t_step.dim();
-    let layers = config.layers.len();
-    let mut z = Array3::<f32>::from_elem((levels, rows, cols), f32::NAN);
-    let mut b = Array3::<u8>::zeros((levels, rows, cols));
-    let mut th = Array3::<f32>::from_elem((layers, rows, cols), f32::NAN);
-    let mut tb = Array3::<u8>::zeros((layers, rows, cols));
-    let piece = rows.div_ceil(PIECES_PER_STEP).max(1);
-    for from in (0..rows).step_by(piece) {
-        if stop() {
-            return None;
+/// A step on the column path, computed in [`PIECES_PER_STEP`] pieces of rows.
+struct ColumnsStep {
+    z: Array3<f32>,
+    b: Array3<u8>,
+    /// Thickness and its flags, `[layer, lat, lon]`: computed with the heights, not kept.
+    th: Array3<f32>,
+    tb: Array3<u8>,
+    /// Rows computed so far.
+    done: usize,
+}
+
+impl ColumnsStep {
+    /// Nothing computed yet, for a step of `[level, lat, lon]` `dim`.
+    fn start(config: &ComputeConfig, (levels, rows, cols): (usize, usize, usize)) -> Self {
+        let layers = config.layers.len();
+        Self {
+            z: Array3::<f32>::from_elem((levels, rows, cols), f32::NAN),
+            b: Array3::<u8>::zeros((levels, rows, cols)),
+            th: Array3::<f32>::from_elem((layers, rows, cols), f32::NAN),
+            tb: Array3::<u8>::zeros((layers, rows, cols)),
+            done: 0,
         }
-        let r = from..(from + piece).min(rows);
-        let step = StepColumns::for_rows(
-            shell,
-            config,
-            (m, t),
-            r.clone(),
-            t_step.slice_move(s![.., r.clone(), ..]),
-            q_step.map(|q| q.slice_move(s![.., r.clone(), ..])),
-        );
-        let step = match step {
-            Ok(step) => step,
-            Err(e) => return Some(Err(e)),
-        };
-        step.fill(
-            z.slice_mut(s![.., r.clone(), ..]),
-            b.slice_mut(s![.., r.clone(), ..]),
-            th.slice_mut(s![.., r.clone(), ..]),
-            tb.slice_mut(s![.., r, ..]),
-        );
     }
-    Some(Ok(StepHeights {
-        geopotential_height: z,
-        below_ground: b,
-    }))
+
+    /// Computes the rows not yet done from temperature and humidity `(t, q)` of step
+    /// (`m`, `t`) of `shell` (`[level, lat, lon]`, as the cycle holds them at that step), a
+    /// piece at a time, asking `stop` before each. Returns whether every row is done. Each
+    /// column is computed on its own, so the pieces give the step computed whole, bit for
+    /// bit.
+    fn run(
+        &mut self,
+        shell: &Cycle,
+        config: &ComputeConfig,
+        (m, t): (usize, usize),
+        (t_step, q_step): (ArrayView3<'_, f32>, Option<ArrayView3<'_, f32>>),
+        stop: &dyn Fn() -> bool,
+    ) -> Result<bool, ComputeError> {
+        let rows = t_step.dim().1;
+        let piece = rows.div_ceil(PIECES_PER_STEP).max(1);
+        while self.done < rows {
+            if stop() {
+                return Ok(false);
+            }
+            let r = self.done..(self.done + piece).min(rows);
+            StepColumns::for_rows(
+                shell,
+                config,
+                (m, t),
+                r.clone(),
+                t_step.slice_move(s![.., r.clone(), ..]),
+                q_step.map(|q| q.slice_move(s![.., r.clone(), ..])),
+            )?
+            .fill(
+                self.z.slice_mut(s![.., r.clone(), ..]),
+                self.b.slice_mut(s![.., r.clone(), ..]),
+                self.th.slice_mut(s![.., r.clone(), ..]),
+                self.tb.slice_mut(s![.., r.clone(), ..]),
+            );
+            self.done = r.end;
+        }
+        Ok(true)
+    }
+
+    /// The heights as a served cycle holds them.
+    fn finish(self) -> StepHeights {
+        StepHeights {
+            geopotential_height: self.z,
+            below_ground: self.b,
+        }
+    }
+}
+
+/// A step the column path left part-way while the file was read ([`columns_while_reading`]).
+#[derive(Debug)]
+struct PartialColumns {
+    /// The step's index in file order.
+    index: usize,
+    /// Rows computed.
+    rows: usize,
+    z: Array3<f32>,
+    b: Array3<u8>,
+}
+
+/// What the computing side of the serving read leaves: the heights of the steps computed,
+/// by step index, and the column path's step left part-way.
+struct StepsRead {
+    finished: Vec<Option<StepHeights>>,
+    partial: Option<PartialColumns>,
+}
+
+/// Whether the column path's side of the serving read measures the read against its own
+/// pace ([`columns_while_reading`]).
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Pace {
+    /// Measured: compute only what can finish before the read ends.
+    Measured,
+    /// Compute every step but the last until the read ends (for tests).
+    #[cfg(test)]
+    Always,
 }
 
 /// The column path's side of the serving read: computes each step of `steps` as it arrives
 /// (on threads of lower priority than the reading one, see [`background_pool`]), leaving
-/// the last step of the file to the caller, and the step it is on once the read has ended.
-/// Returns the heights of the steps computed, by step index. Steps must come in file order;
-/// the feed breaking the order stops the work (the steps not computed are computed after
-/// the read).
+/// the last step of the file to the caller, and from where it is once the read has ended
+/// ([`StepsRead::partial`]: the caller resumes it). Steps must come in file order; the feed
+/// breaking the order stops the work (the steps not computed are computed after the read).
+///
+/// Computing contends with reading: on the 4-step 1° hybrid cycle in the page cache it held
+/// the listing up by 15–20 % for nothing, a 137-level step taking longer than the whole
+/// read. With [`Pace::Measured`] the worker first waits for the second step, so that the
+/// time a step takes to read is known, computes one piece of the first step to learn its
+/// own pace, and goes on only if a whole step can be computed before the steps left to read
+/// are read; otherwise it keeps the piece and computes nothing more while the file is read.
 fn columns_while_reading(
     shell: &Cycle,
     config: &ComputeConfig,
-    steps: crate::ingest::StepFeed<'_>,
+    mut steps: crate::ingest::StepFeed<'_>,
     (members, times): (usize, usize),
-) -> Vec<Option<StepHeights>> {
+    pace: Pace,
+) -> StepsRead {
     let total = members * times;
-    let mut finished: Vec<Option<StepHeights>> = (0..total).map(|_| None).collect();
+    let mut out = StepsRead {
+        finished: (0..total).map(|_| None).collect(),
+        partial: None,
+    };
     let pool = background_pool(rayon::current_num_threads());
     let read_done = steps.read_done();
-    let stop = || read_done.load(Ordering::Acquire);
-    for (done, step) in steps.enumerate() {
+    let ended = || read_done.load(Ordering::Acquire);
+    // The first two steps, and how long the second took to read.
+    let mut queue = std::collections::VecDeque::new();
+    queue.extend(steps.next());
+    let arrived = std::time::Instant::now();
+    queue.extend(steps.next());
+    let step_read = arrived.elapsed();
+    let mut worth_it = None::<bool>;
+    let mut done = 0usize;
+    while let Some(step) = queue.pop_front().or_else(|| steps.next()) {
         if step.member * times + step.time != done || done + 1 >= total {
             break;
         }
         let fields = (step.temperature, step.humidity);
-        let run = || columns_step_of(shell, config, (step.member, step.time), fields, &stop);
+        let mut columns = ColumnsStep::start(config, fields.0.dim());
+        let mut run = || -> Result<bool, ComputeError> {
+            if pace == Pace::Measured && worth_it.is_none() {
+                // One piece, timed, then the verdict.
+                let started = std::time::Instant::now();
+                let pieces = std::cell::Cell::new(0);
+                let one = || {
+                    pieces.set(pieces.get() + 1);
+                    pieces.get() > 1 || ended()
+                };
+                columns.run(shell, config, (step.member, step.time), fields, &one)?;
+                let per_step = started.elapsed().as_secs_f64() * PIECES_PER_STEP as f64;
+                let to_read = step_read.as_secs_f64() * total.saturating_sub(2) as f64;
+                worth_it = Some(per_step < to_read);
+            }
+            if worth_it == Some(false) {
+                return Ok(false);
+            }
+            columns.run(shell, config, (step.member, step.time), fields, &ended)
+        };
         let computed = match pool.as_ref() {
-            Some(pool) => pool.install(run),
+            Some(pool) => pool.install(&mut run),
             None => run(),
         };
         match computed {
-            Some(Ok(heights)) => finished[done] = Some(heights),
-            _ => break,
+            Ok(true) => out.finished[done] = Some(columns.finish()),
+            Ok(false) => {
+                if columns.done > 0 {
+                    out.partial = Some(PartialColumns {
+                        index: done,
+                        rows: columns.done,
+                        z: columns.z,
+                        b: columns.b,
+                    });
+                }
+                break;
+            }
+            Err(_) => break,
         }
+        done += 1;
     }
-    finished
+    // The steps not taken stay in the feed; the reading thread does not wait for them.
+    out
 }
 
 /// One output per step, as a served cycle holds them.
@@ -1556,22 +1681,22 @@ mod tests {
     /// The column path's side of the serving read, on a feed that holds every step: while
     /// the read goes on, every step but the last is computed in pieces of rows, to the bits
     /// of the column path on the whole cycle (`compute_heights_by_columns`, checked against
-    /// published values in tests/compute.rs); once the read has ended, nothing is kept. A
-    /// stop part-way through a step gives nothing for it.
+    /// published values in tests/compute.rs); once the read has ended, nothing is kept.
     #[test]
     fn the_column_path_computes_while_the_read_goes_on_and_stops_when_it_ends() {
         let (cycle, ..) = three_steps();
         let config = ComputeConfig::default();
         let reference = compute_heights_by_columns(&cycle, &config, &|_| {}).expect("columns");
         let (members, times, ..) = cycle.temperature.dim();
-        let humidity = cycle.humidity.as_ref().expect("humidity");
         for read_ended in [false, true] {
             let flag = AtomicBool::new(read_ended);
             let feed = StepFeed::new(every_step(&cycle), &flag);
-            let finished = columns_while_reading(&cycle, &config, feed, (members, times));
+            let out = columns_while_reading(&cycle, &config, feed, (members, times), Pace::Always);
+            let finished = out.finished;
             assert_eq!(finished.len(), times);
             if read_ended {
                 assert!(finished.iter().all(Option::is_none));
+                assert!(out.partial.is_none(), "nothing computed, nothing kept");
                 continue;
             }
             assert!(finished[times - 1].is_none(), "the last step is left");
@@ -1583,18 +1708,66 @@ mod tests {
                 assert!(got.below_ground == want, "below-ground flags, step {t}");
             }
         }
-        let asked = AtomicUsize::new(0);
-        let stop = || asked.fetch_add(1, Ordering::Relaxed) >= 3;
+    }
+
+    /// A column-path step stopped part-way (here after three pieces) keeps its rows, and
+    /// resumed from them gives the step computed whole, bit for bit. With its pace measured,
+    /// the serving read's column side on a feed whose steps all arrived at once (a read far
+    /// faster than computing) computes one piece of the first step, keeps it, and leaves the
+    /// rest for after the read; [`PendingSteps::finish`] resumes it to the same bits.
+    #[test]
+    fn a_column_step_left_part_way_is_resumed_to_the_same_bits() {
+        let (cycle, ..) = three_steps();
+        let config = ComputeConfig::default();
+        let reference = compute_heights_by_columns(&cycle, &config, &|_| {}).expect("columns");
+        let (members, times, _, rows, _) = cycle.temperature.dim();
+        let piece = rows.div_ceil(PIECES_PER_STEP);
+        let humidity = cycle.humidity.as_ref().expect("humidity");
         let fields = (
             cycle.temperature.slice(s![0, 1, .., .., ..]),
             Some(humidity.values.slice(s![0, 1, .., .., ..])),
         );
-        assert!(columns_step_of(&cycle, &config, (0, 1), fields, &stop).is_none());
+        let asked = AtomicUsize::new(0);
+        let stop = || asked.fetch_add(1, Ordering::Relaxed) >= 3;
+        let mut step = ColumnsStep::start(&config, fields.0.dim());
         assert_eq!(
-            asked.load(Ordering::Relaxed),
-            4,
-            "stopped at the fourth piece"
+            step.run(&cycle, &config, (0, 1), fields, &stop).ok(),
+            Some(false)
         );
+        assert_eq!(step.done, 3 * piece, "rows done before the stop");
+        let resumed = columns_step(&cycle, &config, (0, 1), Some((step.z, step.b, step.done)))
+            .expect("resumed");
+        let want = reference.geopotential_height.slice(s![0, 1, .., .., ..]);
+        assert_eq!(
+            bits(&resumed.geopotential_height),
+            bits(want),
+            "resumed step"
+        );
+
+        let flag = AtomicBool::new(false);
+        let feed = StepFeed::new(every_step(&cycle), &flag);
+        let out = columns_while_reading(&cycle, &config, feed, (members, times), Pace::Measured);
+        assert!(
+            out.finished.iter().all(Option::is_none),
+            "no whole step while reading"
+        );
+        let partial = out.partial.expect("the first piece kept");
+        assert_eq!((partial.index, partial.rows), (0, piece));
+        let heights = ServedHeights::pending(members, times, String::new());
+        let pending = PendingSteps {
+            kernel: None,
+            buffers: Vec::new(),
+            resume: None,
+            columns_partial: Some(partial),
+        };
+        pending.finish(&cycle, &config, &heights);
+        for t in 0..times {
+            let got = heights.ready(0, t).expect("every step computed");
+            let want = reference.geopotential_height.slice(s![0, t, .., .., ..]);
+            assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
+            let want = reference.below_ground.slice(s![0, t, .., .., ..]);
+            assert!(got.below_ground == want, "below-ground flags, step {t}");
+        }
     }
 
     /// The serving read stops the kernel between two pieces of rows once the file is read
@@ -1633,6 +1806,7 @@ mod tests {
             kernel: Some(kernel),
             buffers: out.outs,
             resume: out.partial,
+            columns_partial: None,
         };
         pending.finish(&cycle, &config, &heights);
         for t in 0..times {
