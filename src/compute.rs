@@ -199,7 +199,7 @@ pub fn read_and_compute(
 /// column otherwise, but the last step is left to compute, and so is whatever is not done
 /// when the read ends (from the next piece of rows of the step it is on; the column path
 /// also stops early where a step could not finish before the read does, see
-/// [`columns_while_reading`]), so that the cycle can be served the moment its file has been
+/// `columns_while_reading`), so that the cycle can be served the moment its file has been
 /// read. [`PendingSteps::finish`] computes the rest.
 ///
 /// The heights are those of [`compute_heights`], step for step, bit for bit.
