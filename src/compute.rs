@@ -1620,6 +1620,14 @@ mod tests {
         (cycle, config, reference)
     }
 
+    /// Asserts that `got` holds step (0, `t`) of `reference`: heights bit for bit, flags.
+    fn assert_step(got: &StepHeights, reference: &Heights, t: usize) {
+        let want = reference.geopotential_height.slice(s![0, t, .., .., ..]);
+        assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
+        let want = reference.below_ground.slice(s![0, t, .., .., ..]);
+        assert!(got.below_ground == want, "below-ground flags, step {t}");
+    }
+
     /// A feed holding every step of member 0 of `cycle` (which has humidity), in file order,
     /// as the reading thread hands them over.
     fn every_step(cycle: &Cycle) -> mpsc::Receiver<FilledStep<'_>> {
@@ -1702,11 +1710,11 @@ mod tests {
             }
             assert!(finished[times - 1].is_none(), "the last step is left");
             for (t, step) in finished.iter().take(times - 1).enumerate() {
-                let got = step.as_ref().expect("computed while reading");
-                let want = reference.geopotential_height.slice(s![0, t, .., .., ..]);
-                assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
-                let want = reference.below_ground.slice(s![0, t, .., .., ..]);
-                assert!(got.below_ground == want, "below-ground flags, step {t}");
+                assert_step(
+                    step.as_ref().expect("computed while reading"),
+                    &reference,
+                    t,
+                );
             }
         }
     }
@@ -1763,11 +1771,11 @@ mod tests {
         };
         pending.finish(&cycle, &config, &heights);
         for t in 0..times {
-            let got = heights.ready(0, t).expect("every step computed");
-            let want = reference.geopotential_height.slice(s![0, t, .., .., ..]);
-            assert_eq!(bits(&got.geopotential_height), bits(want), "step {t}");
-            let want = reference.below_ground.slice(s![0, t, .., .., ..]);
-            assert!(got.below_ground == want, "below-ground flags, step {t}");
+            assert_step(
+                heights.ready(0, t).expect("every step computed"),
+                &reference,
+                t,
+            );
         }
     }
 
