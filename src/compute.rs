@@ -509,9 +509,16 @@ impl ColumnsStep {
     /// Nothing computed yet, for a step of `[level, lat, lon]` `dim`.
     fn start(config: &ComputeConfig, (levels, rows, cols): (usize, usize, usize)) -> Self {
         let layers = config.layers.len();
+        let dim = (levels, rows, cols);
+        // Fresh zeroed pages (`calloc`), untouched until their rows are computed: `fill`
+        // writes every value of every row it is given, so no fill pass runs here (a `NaN`
+        // fill was a whole extra write of the step's heights). Small pages: a piece of rows
+        // computed while the file is read touches its own rows of every level only, where
+        // huge pages would clear the whole step's memory at once (and held the listing of
+        // a 137-level cycle up).
         Self {
-            z: Array3::<f32>::from_elem((levels, rows, cols), f32::NAN),
-            b: Array3::<u8>::zeros((levels, rows, cols)),
+            z: Array3::<f32>::zeros(dim),
+            b: Array3::<u8>::zeros(dim),
             th: Array3::<f32>::from_elem((layers, rows, cols), f32::NAN),
             tb: Array3::<u8>::zeros((layers, rows, cols)),
             done: 0,
