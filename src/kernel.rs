@@ -47,9 +47,10 @@ use rayon::prelude::*;
 use crate::buffers::zeroed_field_array;
 use crate::lanes::{lane_builds, Lanes};
 use crate::model::{Cycle, HumidityKind, Layer, LayerThickness, Surface, Vertical};
+use crate::physics::column::{height_below_surface_with, height_between_nodes};
 use crate::physics::constants::STANDARD_LAPSE_RATE;
 use crate::physics::humidity::{MagnusTerms, RelativeHumidityPhase, SaturationFormula};
-use crate::physics::hypsometric::{logarithmic_mean_temperature, one_minus_exp_neg_over};
+use crate::physics::hypsometric::logarithmic_mean_temperature;
 
 /// Largest `|u| = |Tv1 − Tv2| / (Tv1 + Tv2)` for which the kernel trusts
 /// [`logarithmic_mean_by_series`]; layers beyond it (a 22 % jump in virtual temperature
@@ -547,20 +548,17 @@ fn level_lanes<const M: u8, const FULL: bool>(
     large
 }
 
-/// The level step for the moisture of this level.
+/// The level step for the moisture of this level as the step sees it ([`Moisture::in_step`]:
+/// relative humidity and dewpoint arrive as specific humidity).
 #[inline(always)]
 fn level_step_body(m: Moisture, p: &StepParams, i: &StepIn<'_>, o: &mut StepOut<'_>) -> u64 {
     match (m, p.full) {
         (Moisture::Dry, true) => level_lanes::<MOIST_DRY, true>(p, i, o),
-        (Moisture::Specific | Moisture::Relative | Moisture::DewPoint, true) => {
-            level_lanes::<MOIST_SPECIFIC, true>(p, i, o)
-        }
         (Moisture::Mixing, true) => level_lanes::<MOIST_MIXING, true>(p, i, o),
+        (_, true) => level_lanes::<MOIST_SPECIFIC, true>(p, i, o),
         (Moisture::Dry, false) => level_lanes::<MOIST_DRY, false>(p, i, o),
-        (Moisture::Specific | Moisture::Relative | Moisture::DewPoint, false) => {
-            level_lanes::<MOIST_SPECIFIC, false>(p, i, o)
-        }
         (Moisture::Mixing, false) => level_lanes::<MOIST_MIXING, false>(p, i, o),
+        (_, false) => level_lanes::<MOIST_SPECIFIC, false>(p, i, o),
     }
 }
 
@@ -1462,7 +1460,7 @@ impl IsobaricKernel {
                 z: z_lane,
                 below: b_lane,
             };
-            let large = level_step(self.lanes, m, &p, &input, &mut output);
+            let large = level_step(self.lanes, m.in_step(), &p, &input, &mut output);
             if large > 0 {
                 // Layers beyond the series' range (see `SERIES_LIMIT`): the exact form.
                 for c in 0..cols {
@@ -1556,20 +1554,13 @@ impl IsobaricKernel {
                 (p_pa, lower, node(upper, upper_slot))
             }
         };
+        let surface = (col.ps, col.tvs, col.zs);
         if p > col.ps {
-            let tv = col.tvs * (self.kappa * (p / col.ps).ln()).exp();
-            return col.zs - (tv - col.tvs) / STANDARD_LAPSE_RATE;
+            return height_below_surface_with(p, surface, self.kappa);
         }
         if p == col.ps {
             return col.zs;
         }
-        let (p1, t1, z1) = lower.unwrap_or((col.ps, col.tvs, col.zs));
-        let (p2, t2, z2) = upper;
-        let big_x = (p1 / p2).ln();
-        let x = (p1 / p).ln();
-        let kappa = (t1 / t2).ln() / big_x;
-        let frac =
-            x * one_minus_exp_neg_over(kappa * x) / (big_x * one_minus_exp_neg_over(kappa * big_x));
-        z1 + (z2 - z1) * frac
+        height_between_nodes(p, lower.unwrap_or(surface), upper)
     }
 }

@@ -110,7 +110,18 @@ pub(crate) fn height_below_surface(
     (ps, tv_s, zs): (f64, f64, f64),
     c: &Constants,
 ) -> f64 {
-    let tv = tv_s * (standard_kappa(c) * (p_pa / ps).ln()).exp();
+    height_below_surface_with(p_pa, (ps, tv_s, zs), standard_kappa(c))
+}
+
+/// [`height_below_surface`] with `κ = R_d Γ / g0` already formed (as the row kernel holds
+/// it): the same operations, the same bits.
+#[inline]
+pub(crate) fn height_below_surface_with(
+    p_pa: f64,
+    (ps, tv_s, zs): (f64, f64, f64),
+    kappa: f64,
+) -> f64 {
+    let tv = tv_s * (kappa * (p_pa / ps).ln()).exp();
     zs - (tv - tv_s) / STANDARD_LAPSE_RATE
 }
 
