@@ -14,8 +14,8 @@
 //! it: RFC 1950/1951) and undoes the shuffle (HDF5's byte shuffle: byte `j` of every value
 //! in turn, then byte `j + 1`), each block of levels on its own thread. Any other layout or
 //! filter (Fletcher-32, szip, chunks across steps, chunks never written) goes through the
-//! library. The plan is checked against the library's read of the first chunk before it is
-//! used.
+//! library. The plan is checked against the library's read of the first chunk of the first
+//! step read, while that step is read the planned way.
 
 use std::fs::File;
 use std::os::unix::fs::{FileExt, MetadataExt};
@@ -163,26 +163,6 @@ impl StepChunks {
             self.tile[1].min(rows),
             self.tile[2].min(cols),
         ]
-    }
-
-    /// The values of the first chunk of the first step that lie inside the variable, into
-    /// `out` (`[level, row, column]` of [`StepChunks::first_chunk_extent`]), for checking
-    /// the plan.
-    pub(crate) fn read_first_chunk(&self, out: &mut [f32]) -> Result<(), IngestError> {
-        let [lz, ly, lx] = self.first_chunk_extent();
-        if out.len() != lz * ly * lx {
-            return Err(self.error(format!("the first chunk does not fit {} values", out.len())));
-        }
-        let mut scratch = Scratch::new();
-        self.read_chunk(0, &mut scratch, None)?;
-        let [_, ty, tx] = self.tile;
-        for (l, plane) in out.chunks_exact_mut((ly * lx).max(1)).enumerate() {
-            for (r, row) in plane.chunks_exact_mut(lx.max(1)).enumerate() {
-                let at = (l * ty + r) * tx;
-                row.copy_from_slice(&scratch.values[at..at + lx]);
-            }
-        }
-        Ok(())
     }
 
     /// Values of one chunk as stored (edge chunks are stored whole).
