@@ -20,7 +20,7 @@ use criterion::{criterion_group, criterion_main, BatchSize, Criterion};
 use hypsogrid::batch::compute_file;
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig};
 use hypsogrid::demo::{write_synthetic_global, SyntheticGlobal};
-use hypsogrid::ingest::{read_cycle, IngestConfig};
+use hypsogrid::ingest::{read_cycle, read_cycle_in_bands, IngestConfig};
 use hypsogrid::model::Layer;
 use hypsogrid::output::{write_heights, OutputOptions};
 use hypsogrid::query::LoadedCycle;
@@ -265,6 +265,7 @@ fn steps(c: &mut Criterion) {
     group.bench_function("read", |b| {
         b.iter(|| read_cycle(&file, &IngestConfig::default()).expect("reading"))
     });
+    group.bench_function("read_stepwise", |b| b.iter(|| read_stepwise(&file)));
     group.bench_function("servable_load", |b| {
         b.iter(|| {
             LoadedCycle::read(&file, &IngestConfig::default(), &ComputeConfig::default())
@@ -290,5 +291,36 @@ fn steps(c: &mut Criterion) {
 
 // The whole process first: a child's peak resident memory (getrusage) counts the parent's
 // pages at the moment of spawning, so the parent must not yet hold the other benches' cycles.
-criterion_group!(benches, whole_process, parts, steps);
+/// Reads `path` as the service does, step by step (compressed fields inflated on every
+/// core), computing nothing: what "just reading the file" takes at best.
+fn read_stepwise(path: &Path) {
+    read_cycle_in_bands(path, &IngestConfig::default(), |_, _| None::<()>).expect("reading");
+}
+
+/// `load_0p5deg_4_steps` on the same four steps stored zlib-1 compressed (shuffled): the
+/// read alone is `read_stepwise` here, since `read_cycle` leaves compressed fields to the
+/// library, which inflates them on one thread (about four times slower).
+fn steps_zlib(c: &mut Criterion) {
+    let file = input_with_steps("global_0p5deg_4steps_zlib.nc", Some(1), STEPS);
+    let mut group = c.benchmark_group("load_0p5deg_4_steps_zlib");
+    group
+        .sample_size(10)
+        .measurement_time(Duration::from_secs(10));
+    group.bench_function("read_stepwise", |b| b.iter(|| read_stepwise(&file)));
+    group.bench_function("servable_load", |b| {
+        b.iter(|| {
+            LoadedCycle::read(&file, &IngestConfig::default(), &ComputeConfig::default())
+                .expect("loading")
+        })
+    });
+    group.bench_function("load_with_heights", |b| {
+        b.iter(|| {
+            LoadedCycle::load(&file, &IngestConfig::default(), &ComputeConfig::default())
+                .expect("loading")
+        })
+    });
+    group.finish();
+}
+
+criterion_group!(benches, whole_process, parts, steps, steps_zlib);
 criterion_main!(benches);
