@@ -202,6 +202,13 @@ pub fn read_and_compute(
 /// `columns_while_reading`), so that the cycle can be served the moment its file has been
 /// read. [`PendingSteps::finish`] computes the rest.
 ///
+/// Where the read keeps every core busy by itself (fields stored in chunks, read and
+/// inflated on every core, [`crate::ingest::StepFeed::read_uses_every_core`]), nothing is
+/// computed while it runs: the kernel, even at its lowered priority, only took time from it. On a four-step
+/// 0.5° cycle stored zlib-1, computing meanwhile made it servable at 1.14-1.20 times the
+/// read without computing (it 1.03-1.08), and every step's heights were done no sooner
+/// (202-209 against 208-210 ms, criterion, `benches/compute.rs`).
+///
 /// The heights are those of [`compute_heights`], step for step, bit for bit.
 ///
 /// # Errors
@@ -626,6 +633,10 @@ fn columns_while_reading(
         finished: (0..total).map(|_| None).collect(),
         partial: None,
     };
+    if steps.read_uses_every_core() {
+        // See `read_for_serving`: everything is computed after the listing.
+        return out;
+    }
     let pool = background_pool(rayon::current_num_threads());
     let read_done = steps.read_done();
     let ended = || read_done.load(Ordering::Acquire);
@@ -770,6 +781,10 @@ fn compute_while_reading(
     let Some(surface) = shell.surface.as_ref() else {
         return;
     };
+    if steps.read_uses_every_core() {
+        // See `read_for_serving`: everything is computed after the listing.
+        return;
+    }
     let total = members * times;
     let pool = (total > 1)
         .then(|| background_pool(rayon::current_num_threads()))
@@ -1677,7 +1692,7 @@ mod tests {
         for read_ended in [false, true] {
             let flag = AtomicBool::new(read_ended);
             let mut out = each_step(&kernel, &cycle);
-            let feed = StepFeed::new(every_step(&cycle), &flag);
+            let feed = StepFeed::new(every_step(&cycle), &flag, false);
             compute_while_reading(&kernel, &cycle, feed, &mut out, (members, times));
             if read_ended {
                 assert!(out.finished.iter().all(Option::is_none));
@@ -1694,6 +1709,26 @@ mod tests {
         }
     }
 
+    /// Where the read keeps every core busy by itself, neither the kernel nor the column path
+    /// computes anything while it goes on, and nothing is left part-way: every step is for
+    /// `PendingSteps::finish`.
+    #[test]
+    fn nothing_is_computed_while_a_read_uses_every_core() {
+        let (cycle, config, _) = three_steps();
+        let kernel = IsobaricKernel::new(&cycle, &config.layers).expect("kernel");
+        let (members, times, ..) = cycle.temperature.dim();
+        let flag = AtomicBool::new(false);
+        let mut out = each_step(&kernel, &cycle);
+        let feed = StepFeed::new(every_step(&cycle), &flag, true);
+        compute_while_reading(&kernel, &cycle, feed, &mut out, (members, times));
+        assert!(out.finished.iter().all(Option::is_none));
+        assert_eq!(out.partial, None);
+        let feed = StepFeed::new(every_step(&cycle), &flag, true);
+        let columns = columns_while_reading(&cycle, &config, feed, (members, times), Pace::Always);
+        assert!(columns.finished.iter().all(Option::is_none));
+        assert!(columns.partial.is_none());
+    }
+
     /// The column path's side of the serving read, on a feed that holds every step: while
     /// the read goes on, every step but the last is computed in pieces of rows, to the bits
     /// of the column path on the whole cycle (`compute_heights_by_columns`, checked against
@@ -1706,7 +1741,7 @@ mod tests {
         let (members, times, ..) = cycle.temperature.dim();
         for read_ended in [false, true] {
             let flag = AtomicBool::new(read_ended);
-            let feed = StepFeed::new(every_step(&cycle), &flag);
+            let feed = StepFeed::new(every_step(&cycle), &flag, false);
             let out = columns_while_reading(&cycle, &config, feed, (members, times), Pace::Always);
             let finished = out.finished;
             assert_eq!(finished.len(), times);
@@ -1761,7 +1796,7 @@ mod tests {
         );
 
         let flag = AtomicBool::new(false);
-        let feed = StepFeed::new(every_step(&cycle), &flag);
+        let feed = StepFeed::new(every_step(&cycle), &flag, false);
         let out = columns_while_reading(&cycle, &config, feed, (members, times), Pace::Measured);
         assert!(
             out.finished.iter().all(Option::is_none),

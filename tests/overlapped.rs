@@ -110,6 +110,29 @@ fn variants() -> Vec<(String, FixtureSpec)> {
             ..hybrid[0].1.clone()
         },
     ));
+    // Deflated in whole planes: read chunk by chunk on every core, and nothing computed
+    // while the serving read goes on.
+    let isobaric = FixtureSpec {
+        time_steps: Some(3),
+        ..FixtureSpec::default()
+    };
+    let hybrid_steps = FixtureSpec {
+        time_steps: Some(3),
+        ..hybrid[0].1.clone()
+    };
+    for (label, base) in [
+        ("deflated-steps", isobaric),
+        ("deflated-hybrid-steps", hybrid_steps),
+    ] {
+        let tiles = [1, base.latitudes().len(), base.longitudes().len()];
+        v.push((
+            label.into(),
+            FixtureSpec {
+                deflate_tiles: Some(tiles),
+                ..base
+            },
+        ));
+    }
     v.extend(hybrid);
     v.push((
         "relative-humidity-steps".into(),
@@ -179,6 +202,13 @@ fn every_variant_reads_for_serving_and_finishes_as_the_batch_computes() {
             pending.contains(&(members - 1, times - 1)),
             "{label}: the last step is left to compute after the read: {pending:?}"
         );
+        if label.starts_with("deflated") {
+            assert_eq!(
+                pending.len(),
+                members * times,
+                "{label}: nothing computed while the read inflates on every core"
+            );
+        }
         // How many steps are in by now depends on how fast the file reads against how fast
         // the kernel computes: once the read has ended the kernel stops at its next piece of
         // rows and leaves the rest for later (src/compute.rs's unit tests pin both sides of
@@ -386,12 +416,19 @@ fn deflated_steps_read_as_the_library_reads_them() {
             ..spec
         };
         let path = write(dir.path(), label, &spec);
-        let (cycle, fed) =
-            read_cycle_overlapped(&path, &ingest, |_| Some(()), |(), _, steps| steps.count())
-                .expect(label);
+        let (cycle, fed) = read_cycle_overlapped(
+            &path,
+            &ingest,
+            |_| Some(()),
+            |(), _, steps| (steps.read_uses_every_core(), steps.count()),
+        )
+        .expect(label);
+        // The feed says whether the read inflates on every core (what the serving read
+        // decides by whether to compute meanwhile): packed fields stay with the library.
+        let packed = label == "packed";
         assert_eq!(
             fed,
-            Some(spec.member_count() * spec.time_count()),
+            Some((!packed, spec.member_count() * spec.time_count())),
             "{label}: read step by step"
         );
         same_cycle(label, &read_cycle(&path, &ingest).expect(label), &cycle);

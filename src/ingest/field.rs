@@ -1048,6 +1048,12 @@ impl<'f> StepwiseField<'f> {
         self.plan_agrees = std::sync::OnceLock::new();
     }
 
+    /// Whether whole steps are planned to be read chunk by chunk without the library
+    /// (until the first step read finds that the library disagrees).
+    pub(crate) fn has_chunk_plan(&self) -> bool {
+        self.chunks.is_some() && self.plan_agrees.get() != Some(&false)
+    }
+
     /// Reads `step` as stored into `out` (`[level, lat, lon]`, file order) by the planned
     /// chunk reads, and says so; `false` (nothing read) where there is no plan or it did not
     /// agree with the library. The caller holds the NetCDF session.

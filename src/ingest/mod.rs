@@ -323,13 +323,29 @@ pub struct FilledStep<'a> {
 pub struct StepFeed<'a> {
     steps: mpsc::Receiver<FilledStep<'a>>,
     read_done: &'a AtomicBool,
+    every_core: bool,
 }
 
 impl<'a> StepFeed<'a> {
     /// The feed of the steps sent into `steps`, the reading thread setting `read_done` once
-    /// it has read them all.
-    pub(crate) fn new(steps: mpsc::Receiver<FilledStep<'a>>, read_done: &'a AtomicBool) -> Self {
-        Self { steps, read_done }
+    /// it has read them all; `every_core`: see [`StepFeed::read_uses_every_core`].
+    pub(crate) fn new(
+        steps: mpsc::Receiver<FilledStep<'a>>,
+        read_done: &'a AtomicBool,
+        every_core: bool,
+    ) -> Self {
+        Self {
+            steps,
+            read_done,
+            every_core,
+        }
+    }
+
+    /// Whether reading the steps keeps every core busy by itself: temperature or humidity
+    /// stored in chunks, which are read and inflated on every core ([`chunks`]). Work done
+    /// meanwhile then only takes time from the read.
+    pub fn read_uses_every_core(&self) -> bool {
+        self.every_core
     }
 
     /// A flag that turns true once the reading thread has read every step (or stopped
@@ -431,7 +447,9 @@ where
             });
         };
         let (tx, rx) = mpsc::channel();
-        let worker = scope.spawn(move || work(state, shell, StepFeed::new(rx, done_ref)));
+        let every_core = fields.reads_chunks_in_parallel();
+        let worker =
+            scope.spawn(move || work(state, shell, StepFeed::new(rx, done_ref, every_core)));
         let filled = fields.fill(t_ref, q_ref.as_mut(), |step| {
             // A worker that stopped early needs no more steps; reading goes on regardless.
             let _ = tx.send(step);
@@ -745,6 +763,14 @@ impl<'p, 'f> Stepwise<'p, 'f> {
     /// Whether every large field of `cycle` can be read step by step.
     fn complete(&self, cycle: &Cycle) -> bool {
         self.temperature.is_some() && (cycle.humidity.is_none() || self.humidity.is_some())
+    }
+
+    /// Whether a whole step of either field is read chunk by chunk on every core.
+    fn reads_chunks_in_parallel(&self) -> bool {
+        [self.temperature, self.humidity]
+            .into_iter()
+            .flatten()
+            .any(field::StepwiseField::has_chunk_plan)
     }
 }
 
