@@ -15,7 +15,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Duration;
 
-use criterion::{criterion_group, criterion_main, BatchSize, Criterion};
+use criterion::measurement::WallTime;
+use criterion::{criterion_group, criterion_main, BatchSize, BenchmarkGroup, Criterion};
 
 use hypsogrid::batch::compute_file;
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig};
@@ -265,19 +266,7 @@ fn steps(c: &mut Criterion) {
     group.bench_function("read", |b| {
         b.iter(|| read_cycle(&file, &IngestConfig::default()).expect("reading"))
     });
-    group.bench_function("read_stepwise", |b| b.iter(|| read_stepwise(&file)));
-    group.bench_function("servable_load", |b| {
-        b.iter(|| {
-            LoadedCycle::read(&file, &IngestConfig::default(), &ComputeConfig::default())
-                .expect("loading")
-        })
-    });
-    group.bench_function("load_with_heights", |b| {
-        b.iter(|| {
-            LoadedCycle::load(&file, &IngestConfig::default(), &ComputeConfig::default())
-                .expect("loading")
-        })
-    });
+    loading(&mut group, &file);
     group.bench_function("read_then_compute", |b| {
         b.iter(|| {
             let cycle = read_cycle(&file, &IngestConfig::default()).expect("reading");
@@ -289,12 +278,28 @@ fn steps(c: &mut Criterion) {
     group.finish();
 }
 
-// The whole process first: a child's peak resident memory (getrusage) counts the parent's
-// pages at the moment of spawning, so the parent must not yet hold the other benches' cycles.
 /// Reads `path` as the service does, step by step (compressed fields inflated on every
 /// core), computing nothing: what "just reading the file" takes at best.
 fn read_stepwise(path: &Path) {
     read_cycle_in_bands(path, &IngestConfig::default(), |_, _| None::<()>).expect("reading");
+}
+
+/// `read_stepwise`, `servable_load` (what the service does before it lists the cycle) and
+/// `load_with_heights` (and every step's heights) on `file`.
+fn loading(group: &mut BenchmarkGroup<'_, WallTime>, file: &Path) {
+    group.bench_function("read_stepwise", |b| b.iter(|| read_stepwise(file)));
+    group.bench_function("servable_load", |b| {
+        b.iter(|| {
+            LoadedCycle::read(file, &IngestConfig::default(), &ComputeConfig::default())
+                .expect("loading")
+        })
+    });
+    group.bench_function("load_with_heights", |b| {
+        b.iter(|| {
+            LoadedCycle::load(file, &IngestConfig::default(), &ComputeConfig::default())
+                .expect("loading")
+        })
+    });
 }
 
 /// `load_0p5deg_4_steps` on the same four steps stored zlib-1 compressed (shuffled): the
@@ -306,21 +311,11 @@ fn steps_zlib(c: &mut Criterion) {
     group
         .sample_size(10)
         .measurement_time(Duration::from_secs(10));
-    group.bench_function("read_stepwise", |b| b.iter(|| read_stepwise(&file)));
-    group.bench_function("servable_load", |b| {
-        b.iter(|| {
-            LoadedCycle::read(&file, &IngestConfig::default(), &ComputeConfig::default())
-                .expect("loading")
-        })
-    });
-    group.bench_function("load_with_heights", |b| {
-        b.iter(|| {
-            LoadedCycle::load(&file, &IngestConfig::default(), &ComputeConfig::default())
-                .expect("loading")
-        })
-    });
+    loading(&mut group, &file);
     group.finish();
 }
 
+// The whole process first: a child's peak resident memory (getrusage) counts the parent's
+// pages at the moment of spawning, so the parent must not yet hold the other benches' cycles.
 criterion_group!(benches, whole_process, parts, steps, steps_zlib);
 criterion_main!(benches);
