@@ -165,11 +165,6 @@ impl StepChunks {
         ]
     }
 
-    /// Whether the chunks are stored behind the deflate filter (inflated when read).
-    pub(crate) fn inflates(&self) -> bool {
-        self.pipeline.deflate.is_some()
-    }
-
     /// Values of one chunk as stored (edge chunks are stored whole).
     fn chunk_values(&self) -> usize {
         self.tile.iter().product()
@@ -433,32 +428,6 @@ mod tests {
     }
 
     /// Chunks across time steps are left to the library.
-    /// A plan says whether its chunks are inflated: behind deflate (with or without the
-    /// shuffle) yes, stored plain or only shuffled no.
-    #[test]
-    fn a_plan_says_whether_it_inflates() {
-        let _session = crate::netcdf_session::lock();
-        let dir = tempfile::tempdir().expect("tempdir");
-        let shape = [2usize, 3, 6, 8];
-        let chunks = [1usize, 3, 6, 8];
-        for (i, (deflate, inflates)) in [
-            (None, false),
-            (Some((0, true)), false),
-            (Some((1, false)), true),
-            (Some((1, true)), true),
-        ]
-        .into_iter()
-        .enumerate()
-        {
-            let path = dir.path().join(format!("p{i}.nc"));
-            fixture(&path, &shape, &chunks, deflate);
-            let var = variable([1, 2, 3, 6, 8], [false, true, true, true, true], &chunks);
-            let own = File::open(&path).expect("open");
-            let plan = StepChunks::plan(&path, &own, &var).expect("plan");
-            assert_eq!(plan.inflates(), inflates, "{deflate:?}");
-        }
-    }
-
     #[test]
     fn chunks_across_steps_are_not_planned() {
         let _session = crate::netcdf_session::lock();

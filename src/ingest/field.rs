@@ -1048,13 +1048,10 @@ impl<'f> StepwiseField<'f> {
         self.plan_agrees = std::sync::OnceLock::new();
     }
 
-    /// Whether whole steps are planned to be read chunk by chunk without the library, and
-    /// inflated (until the first step read finds that the library disagrees).
-    pub(crate) fn inflates_chunks(&self) -> bool {
-        self.chunks
-            .as_ref()
-            .is_some_and(super::chunks::StepChunks::inflates)
-            && self.plan_agrees.get() != Some(&false)
+    /// Whether whole steps are planned to be read chunk by chunk without the library
+    /// (until the first step read finds that the library disagrees).
+    pub(crate) fn has_chunk_plan(&self) -> bool {
+        self.chunks.is_some() && self.plan_agrees.get() != Some(&false)
     }
 
     /// Reads `step` as stored into `out` (`[level, lat, lon]`, file order) by the planned

@@ -342,9 +342,8 @@ impl<'a> StepFeed<'a> {
     }
 
     /// Whether reading the steps keeps every core busy by itself: temperature or humidity
-    /// stored compressed, whose chunks are inflated on every core. Work done meanwhile then
-    /// only takes time from the read. (Chunks stored uncompressed are read on every core
-    /// too, but mostly copied; that read was not measured against computing meanwhile.)
+    /// stored in chunks, which are read and inflated on every core. Work done
+    /// meanwhile then only takes time from the read.
     pub fn read_uses_every_core(&self) -> bool {
         self.every_core
     }
@@ -448,7 +447,7 @@ where
             });
         };
         let (tx, rx) = mpsc::channel();
-        let every_core = fields.inflates_in_parallel();
+        let every_core = fields.reads_chunks_in_parallel();
         let worker =
             scope.spawn(move || work(state, shell, StepFeed::new(rx, done_ref, every_core)));
         let filled = fields.fill(t_ref, q_ref.as_mut(), |step| {
@@ -766,12 +765,12 @@ impl<'p, 'f> Stepwise<'p, 'f> {
         self.temperature.is_some() && (cycle.humidity.is_none() || self.humidity.is_some())
     }
 
-    /// Whether a whole step of either field is read by inflating its chunks on every core.
-    fn inflates_in_parallel(&self) -> bool {
+    /// Whether a whole step of either field is read chunk by chunk on every core.
+    fn reads_chunks_in_parallel(&self) -> bool {
         [self.temperature, self.humidity]
             .into_iter()
             .flatten()
-            .any(field::StepwiseField::inflates_chunks)
+            .any(field::StepwiseField::has_chunk_plan)
     }
 }
 
