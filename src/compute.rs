@@ -202,12 +202,12 @@ pub fn read_and_compute(
 /// `columns_while_reading`), so that the cycle can be served the moment its file has been
 /// read. [`PendingSteps::finish`] computes the rest.
 ///
-/// Where the read keeps every core busy by itself (fields stored in chunks, read and
-/// inflated on every core, [`crate::ingest::StepFeed::read_uses_every_core`]), nothing is
-/// computed while it runs: the kernel, even at its lowered priority, only took time from
-/// it. On a four-step 0.5° cycle stored zlib-1, computing meanwhile made it servable at
-/// 1.14-1.20 times the read without computing (it 1.03-1.08), and every step's heights
-/// were done no sooner (202-209 against 208-210 ms, criterion, `benches/compute.rs`);
+/// Where the read keeps every core busy by itself (fields stored in chunks, read and, where
+/// compressed, inflated on every core, [`crate::ingest::StepFeed::read_uses_every_core`]),
+/// nothing is computed while it runs: the kernel, even at its lowered priority, only took
+/// time from it. On a four-step 0.5° cycle stored zlib-1, computing meanwhile made it
+/// servable at 1.14-1.20 times the read without computing (it 1.03-1.08), and every step's
+/// heights were done no sooner (202-209 against 208-210 ms, criterion, `benches/compute.rs`);
 /// stored in uncompressed chunks of one level plane, at 1.73-1.86 times against 1.07-1.08
 /// (heights 85-89 ms either way).
 ///

@@ -1061,9 +1061,9 @@ impl<'f> StepwiseField<'f> {
     /// The first step read checks the plan: the library reads that step's first chunk on
     /// this thread while the planned read of the whole step runs on the others, and the two
     /// must agree bit for bit, or the plan is dropped and this step and every later one go
-    /// through the library. Checked before any read instead, the library's inflating of each
-    /// field's first chunk, one field after the other, came before everything else: 17 ms of
-    /// the 0.5° zlib-1 batch's 96 ms (medians of 15 alternate runs).
+    /// through the library. Checked before any read instead, each field's first chunk read
+    /// both ways, one field after the other, came before everything else: 17 ms of the 0.5°
+    /// zlib-1 batch's 96 ms (medians of 15 alternate runs).
     fn read_planned(&self, step: (usize, usize), out: &mut [f32]) -> Result<bool, IngestError> {
         let Some(chunks) = &self.chunks else {
             return Ok(false);

@@ -342,7 +342,7 @@ impl<'a> StepFeed<'a> {
     }
 
     /// Whether reading the steps keeps every core busy by itself: temperature or humidity
-    /// stored in chunks, which are read and inflated on every core. Work done
+    /// stored in chunks, read (and inflated, where compressed) on every core. Work done
     /// meanwhile then only takes time from the read.
     pub fn read_uses_every_core(&self) -> bool {
         self.every_core
