@@ -119,7 +119,8 @@ impl WatchState {
     }
 }
 
-/// What one scan did, for tests and logs. Paths are in name order within each list.
+/// What one scan did, for tests and logs. `loaded` and `failed` are in the order the files
+/// were read (newest modification time first); the other lists in name order.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct ScanReport {
     /// Files loaded (new, or changed since their last load).
@@ -162,7 +163,10 @@ fn list_folder(dir: &Path) -> std::io::Result<Vec<(PathBuf, Fingerprint)>> {
 }
 
 /// One pass over the folder: lists it, loads new or changed files that are stable (in
-/// `spawn_blocking`, one at a time), records failures, and drops files that were deleted.
+/// `spawn_blocking`, one at a time, newest modification time first), records failures, and
+/// drops files that were deleted. Once the process is stopping
+/// ([`crate::netcdf_session::stop_reads`]) no further file is read: those left are reported
+/// as waiting.
 ///
 /// An unreadable folder is recorded in the store as a failure of the folder's path (cleared
 /// once it can be read again); the cycles already served stay.
@@ -198,6 +202,7 @@ pub async fn scan_once(
 
     let now = Instant::now();
     let wall_now = SystemTime::now();
+    let mut ready: Vec<(PathBuf, Fingerprint)> = Vec::new();
     for (path, fp) in &listing {
         let tracked = state.files.entry(path.clone()).or_insert_with(|| Tracked {
             fingerprint: *fp,
@@ -227,7 +232,7 @@ pub async fn scan_once(
                 .and_then(|m| wall_now.duration_since(m).ok())
                 .is_some_and(|age| age >= config.settle);
         if unchanged_for >= config.settle || old_mtime {
-            load_one(store, tracked, path, ingest, compute, &mut report).await;
+            ready.push((path.clone(), *fp));
         } else if now.duration_since(tracked.waiting_since) >= config.max_wait_for_growth
             && !tracked.growth_reported
         {
@@ -242,6 +247,20 @@ pub async fn scan_once(
             report.still_growing.push(path.clone());
         } else {
             report.waiting.push(path.clone());
+        }
+    }
+
+    // Newest first, so that after an outage or at start-up the cycle forecasters want is
+    // served before the backlog behind it; each load waits for the one before.
+    sort_newest_first(&mut ready);
+    for (path, _) in ready {
+        if crate::netcdf_session::reads_stopped() {
+            // The process is stopping: what is left is read at the next start.
+            report.waiting.push(path);
+            continue;
+        }
+        if let Some(tracked) = state.files.get_mut(&path) {
+            load_one(store, tracked, &path, ingest, compute, &mut report).await;
         }
     }
 
@@ -260,6 +279,13 @@ pub async fn scan_once(
         report.removed.push(path);
     }
     report
+}
+
+/// Orders files ready to load newest modification time first; files of the same time (or
+/// without one) in reverse name order, which for the usual date-stamped names is newest
+/// first too.
+fn sort_newest_first(files: &mut [(PathBuf, Fingerprint)]) {
+    files.sort_by(|a, b| b.1.modified.cmp(&a.1.modified).then_with(|| b.0.cmp(&a.0)));
 }
 
 /// Loads one stable file into the store (or records why not).

@@ -276,6 +276,53 @@ fn the_naming_convention_is_public() {
     assert!(!is_candidate(Path::new("/data/2030010100.nc.partial")));
 }
 
+/// A backlog (a folder full at start-up, or files that arrived during an outage) is read
+/// newest modification time first, so that the cycle forecasters want is served before the
+/// older ones; files of the same time in reverse name order.
+#[tokio::test]
+async fn a_backlog_is_loaded_newest_first() {
+    let tmp = tempfile::tempdir().unwrap();
+    let config = quick(tmp.path());
+    let store = CycleStore::new(StoreConfig::default());
+    let mut state = WatchState::new();
+    let bytes = fixture_bytes();
+    let now = SystemTime::now();
+    let hours_ago = |h: u64| now - Duration::from_secs(3600 * h);
+    // Name order is the opposite of age order for the first three.
+    let files = [
+        ("a.nc", hours_ago(1)),
+        ("b.nc", hours_ago(2)),
+        ("c.nc", hours_ago(3)),
+        ("e.nc", hours_ago(4)),
+        ("d.nc", hours_ago(4)),
+    ];
+    for (name, modified) in files {
+        let path = tmp.path().join(name);
+        if name == "b.nc" {
+            std::fs::write(&path, b"not netcdf").unwrap();
+        } else {
+            std::fs::write(&path, &bytes).unwrap();
+        }
+        let f = std::fs::File::options().write(true).open(&path).unwrap();
+        f.set_modified(modified).unwrap();
+    }
+    let r = scan(&store, &mut state, &config).await;
+    let names = |paths: Vec<&PathBuf>| -> Vec<String> {
+        paths
+            .iter()
+            .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
+            .collect()
+    };
+    assert_eq!(
+        names(r.loaded.iter().collect()),
+        ["a.nc", "c.nc", "e.nc", "d.nc"],
+        "{r:?}"
+    );
+    assert_eq!(names(r.failed.iter().map(|(p, _)| p).collect()), ["b.nc"]);
+    assert!(r.waiting.is_empty(), "{r:?}");
+    assert_eq!(store.snapshot().cycles.len(), 4);
+}
+
 #[tokio::test]
 async fn a_new_file_is_loaded_once_it_has_settled_and_a_deleted_one_is_dropped() {
     let tmp = tempfile::tempdir().unwrap();
