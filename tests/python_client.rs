@@ -75,9 +75,16 @@ impl Server {
         let stderr = child.stderr.take().expect("piped stderr");
         let (tx, rx) = mpsc::channel();
         std::thread::spawn(move || {
+            // The address, once the startup scan has loaded the folder.
+            let mut address = None;
             for line in BufReader::new(stderr).lines().map_while(Result::ok) {
                 if let Some(a) = line.strip_prefix("listening on ") {
-                    let _ = tx.send(a.trim().to_string());
+                    address = Some(a.trim().to_string());
+                }
+                if line.starts_with("data folder scanned") {
+                    if let Some(a) = address.take() {
+                        let _ = tx.send(a);
+                    }
                 }
             }
         });
@@ -85,7 +92,7 @@ impl Server {
             Ok(a) => a,
             Err(_) => {
                 let _ = child.kill();
-                panic!("the server printed no 'listening on' line");
+                panic!("the server printed no 'listening on' and 'data folder scanned' lines");
             }
         };
         Server { child, address }

@@ -7,6 +7,7 @@
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::Duration;
 
@@ -574,8 +575,8 @@ pub(super) fn run(args: ServeArgs) -> Result<()> {
     result
 }
 
-/// Binds, scans the folder once, then serves with the watcher beside it until SIGTERM or
-/// Ctrl-C.
+/// Binds and serves at once, with the folder watcher beside it (its first scan loads what
+/// the folder holds, newest first), until SIGTERM or Ctrl-C.
 async fn serve(
     settings: ServeSettings,
     ingest: IngestConfig,
@@ -594,7 +595,7 @@ async fn serve(
         ),
         None => None,
     };
-    // Installed before the scan, so that a SIGTERM during a long scan ends it in an orderly
+    // Installed before the first scan, so that a SIGTERM during a long scan ends it in an orderly
     // stop rather than the default abrupt exit, and a SIGHUP does not end the process (its
     // default action).
     let signal = shutdown_signal()?;
@@ -602,44 +603,7 @@ async fn serve(
     let reload = ReloadSignal::new();
     let hangups = forward_hangups(reload.clone())?;
     let store = Arc::new(CycleStore::new(settings.store_config()));
-    let watch_config = settings.watch_config();
-    let mut state = WatchState::new();
-    // A startup scan of a full folder may take minutes; a service manager that sends SIGTERM
-    // meanwhile expects an exit within its grace period, not after the last file.
-    let scan = scan_once(&store, &mut state, &watch_config, &ingest, &compute);
-    let report = tokio::select! {
-        report = scan => report,
-        name = &mut signal => {
-            hypsogrid::netcdf_session::stop_reads();
-            tracing::info!(
-                signal = name,
-                cycles_loaded = store.snapshot().cycles.len(),
-                "shutting down during the startup scan: the files not yet loaded are read at the next start"
-            );
-            hangups.abort();
-            return Ok(());
-        }
-    };
-    tracing::info!(
-        data = %settings.data.display(),
-        loaded = report.loaded.len(),
-        failed = report.failed.len(),
-        waiting = report.waiting.len(),
-        "startup scan of the data folder done"
-    );
-    if let Some(error) = &report.folder_error {
-        tracing::warn!(%error, "data folder scan failed");
-    }
-
     let (stop_tx, stop_rx) = tokio::sync::watch::channel(false);
-    let watcher = tokio::spawn(watch_from(
-        Arc::clone(&store),
-        state,
-        watch_config,
-        ingest,
-        compute,
-        stop_rx.clone(),
-    ));
     let stopped = |mut stop: tokio::sync::watch::Receiver<bool>| async move {
         // Either the signal task said stop, or it is gone: both end the serving.
         let _ = stop.wait_for(|stop| *stop).await;
@@ -679,7 +643,7 @@ async fn serve(
         listener,
         Arc::clone(&store),
         service_config,
-        stopped(stop_rx),
+        stopped(stop_rx.clone()),
     ));
     tracing::info!(
         %address,
@@ -691,10 +655,31 @@ async fn serve(
     // Scripts read this line to learn the port chosen for --listen 127.0.0.1:0.
     eprintln!("listening on {address}");
 
+    // The startup scan is the watcher's first: health answers NOT_SERVING (and calls say no
+    // cycle is loaded yet) until the first cycle is in, newest first, while the rest of the
+    // folder loads behind it.
+    let startup_scan_done = Arc::new(AtomicBool::new(false));
+    let watcher = tokio::spawn(watch_folder(
+        Arc::clone(&store),
+        settings.watch_config(),
+        ingest,
+        compute,
+        stop_rx.clone(),
+        Arc::clone(&startup_scan_done),
+    ));
+
     let mut server = server;
     let served = tokio::select! {
         name = &mut signal => {
-            tracing::info!(signal = name, "shutting down");
+            if startup_scan_done.load(Ordering::Acquire) {
+                tracing::info!(signal = name, "shutting down");
+            } else {
+                tracing::info!(
+                    signal = name,
+                    cycles_loaded = store.snapshot().cycles.len(),
+                    "shutting down during the startup scan: the files not yet loaded are read at the next start"
+                );
+            }
             // A file being read stops at its next step: the exit waits for that read.
             hypsogrid::netcdf_session::stop_reads();
             let _ = stop_tx.send(true);
@@ -730,17 +715,40 @@ async fn serve(
     Ok(())
 }
 
-/// The folder watcher, continuing from the startup scan's state so that the files that scan
-/// loaded are not loaded a second time.
-async fn watch_from(
+/// The folder watcher: the startup scan (logged, with a `data folder scanned` line on stderr
+/// that scripts and tests wait for), then a scan every poll interval until `stop`. Raises
+/// `startup_scan_done` after the first scan, unless the process stopped during it.
+async fn watch_folder(
     store: Arc<CycleStore>,
-    mut state: WatchState,
     config: WatchConfig,
     ingest: IngestConfig,
     compute: ComputeConfig,
     mut stop: tokio::sync::watch::Receiver<bool>,
+    startup_scan_done: Arc<AtomicBool>,
 ) {
+    let mut state = WatchState::new();
+    let mut report = scan_once(&store, &mut state, &config, &ingest, &compute).await;
+    if hypsogrid::netcdf_session::reads_stopped() {
+        return;
+    }
+    tracing::info!(
+        data = %config.dir.display(),
+        loaded = report.loaded.len(),
+        failed = report.failed.len(),
+        waiting = report.waiting.len(),
+        "startup scan of the data folder done"
+    );
+    eprintln!(
+        "data folder scanned: {} loaded, {} failed, {} waiting",
+        report.loaded.len(),
+        report.failed.len(),
+        report.waiting.len()
+    );
+    startup_scan_done.store(true, Ordering::Release);
     loop {
+        if let Some(error) = &report.folder_error {
+            tracing::warn!(%error, "data folder scan failed");
+        }
         tokio::select! {
             () = tokio::time::sleep(config.poll_interval) => {}
             changed = stop.changed() => {
@@ -749,10 +757,7 @@ async fn watch_from(
                 }
             }
         }
-        let report = scan_once(&store, &mut state, &config, &ingest, &compute).await;
-        if let Some(error) = &report.folder_error {
-            tracing::warn!(%error, "data folder scan failed");
-        }
+        report = scan_once(&store, &mut state, &config, &ingest, &compute).await;
     }
 }
 

@@ -24,8 +24,17 @@ pub struct ServeChild {
 impl ServeChild {
     /// Starts `hypsogrid serve ARGS` with extra environment `env` (an inherited
     /// HYPSOGRID_ALLOW_INSECURE_REMOTE is removed, so that only the test decides) and waits for
-    /// its "listening on" line.
+    /// its "listening on" line, then for the end of its startup scan (its "data folder
+    /// scanned" line), so that the files of its folder are loaded (or failed).
     pub fn start(args: &[&str], env: &[(&str, &str)]) -> ServeChild {
+        let server = Self::start_listening(args, env);
+        server.wait_for_log("data folder scanned");
+        server
+    }
+
+    /// Starts `hypsogrid serve ARGS` as [`ServeChild::start`] does and waits for its
+    /// "listening on" line only: the startup scan may still be loading files.
+    pub fn start_listening(args: &[&str], env: &[(&str, &str)]) -> ServeChild {
         let (mut child, lines, listening) = Self::spawn(args, env);
         let address = match listening.recv_timeout(Duration::from_secs(60)) {
             Ok(a) => a,
