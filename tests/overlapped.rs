@@ -120,15 +120,20 @@ fn variants() -> Vec<(String, FixtureSpec)> {
         time_steps: Some(3),
         ..hybrid[0].1.clone()
     };
-    for (label, base) in [
-        ("deflated-steps", isobaric),
-        ("deflated-hybrid-steps", hybrid_steps),
+    // Chunked the same way but stored uncompressed (netCDF-4's default for a variable with
+    // an unlimited axis): read chunk by chunk on every core as well.
+    for (label, base, plain) in [
+        ("chunked-deflated-steps", isobaric.clone(), false),
+        ("chunked-deflated-hybrid-steps", hybrid_steps.clone(), false),
+        ("chunked-plain-steps", isobaric, true),
+        ("chunked-plain-hybrid-steps", hybrid_steps, true),
     ] {
         let tiles = [1, base.latitudes().len(), base.longitudes().len()];
         v.push((
             label.into(),
             FixtureSpec {
                 deflate_tiles: Some(tiles),
+                tiles_stored_plain: plain,
                 ..base
             },
         ));
@@ -202,11 +207,11 @@ fn every_variant_reads_for_serving_and_finishes_as_the_batch_computes() {
             pending.contains(&(members - 1, times - 1)),
             "{label}: the last step is left to compute after the read: {pending:?}"
         );
-        if label.starts_with("deflated") {
+        if label.starts_with("chunked") {
             assert_eq!(
                 pending.len(),
                 members * times,
-                "{label}: nothing computed while the read inflates on every core"
+                "{label}: nothing computed while the read uses every core"
             );
         }
         // How many steps are in by now depends on how fast the file reads against how fast
@@ -358,15 +363,15 @@ fn chunks_across_time_steps_are_read_whole() {
     }
 }
 
-/// Fields deflated in chunks of one step (whole planes, or tiles with short edges) are read
-/// step by step chunk by chunk, inflated in parallel without the library: the same cycle as
-/// the library's whole read, for every member, step, level order, masked point and packing
-/// (packed fields stay with the library).
+/// Fields deflated in chunks of one step (whole planes, or tiles with short edges), or stored
+/// uncompressed in such chunks, are read step by step chunk by chunk, in parallel without the
+/// library: the same cycle as the library's whole read, for every member, step, level order,
+/// masked point and packing (packed fields stay with the library).
 #[test]
 fn deflated_steps_read_as_the_library_reads_them() {
     let dir = tempfile::tempdir().expect("tempdir");
     let ingest = IngestConfig::default();
-    let variants: [(&str, Option<[usize; 3]>, FixtureSpec); 4] = [
+    let variants: [(&str, Option<[usize; 3]>, FixtureSpec); 6] = [
         (
             "planes",
             Some([1, usize::MAX, usize::MAX]),
@@ -400,6 +405,28 @@ fn deflated_steps_read_as_the_library_reads_them() {
             FixtureSpec {
                 time_steps: Some(2),
                 packed: true,
+                ..FixtureSpec::default()
+            },
+        ),
+        // Chunked so but stored uncompressed: read chunk by chunk on every core as well.
+        (
+            "plain-planes",
+            Some([1, usize::MAX, usize::MAX]),
+            FixtureSpec {
+                time_steps: Some(3),
+                tiles_stored_plain: true,
+                ..FixtureSpec::default()
+            },
+        ),
+        (
+            "plain-tiles-members-top-down-masked",
+            Some([3, 2, 3]),
+            FixtureSpec {
+                members: Some(2),
+                time_steps: Some(2),
+                levels_top_down: true,
+                masked_points: vec![[1, 1, 2, 3, 5]],
+                tiles_stored_plain: true,
                 ..FixtureSpec::default()
             },
         ),

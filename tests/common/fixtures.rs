@@ -254,6 +254,9 @@ pub struct FixtureSpec {
     /// NetCDF-4: store float fields deflated (level 1, shuffled) in chunks of one member and
     /// one time step, tiled as `[level, lat, lon]` lengths (`None`: not compressed).
     pub deflate_tiles: Option<[usize; 3]>,
+    /// With `deflate_tiles`: chunk the fields so but store the chunks uncompressed, as
+    /// netCDF-4 writers do by default for a variable with an unlimited time axis.
+    pub tiles_stored_plain: bool,
     /// Faults for error tests.
     pub faults: Faults,
 }
@@ -283,6 +286,7 @@ impl Default for FixtureSpec {
             transpose_dims: false,
             chunks_across_steps: false,
             deflate_tiles: None,
+            tiles_stored_plain: false,
             faults: Faults::default(),
         }
     }
@@ -1148,6 +1152,40 @@ impl FixtureSpec {
         self.put_encoded(f, pend, name, dims, vals, &masked, conv, pack, units, std)
     }
 
+    /// NetCDF-4 chunking and compression of a 3-D or larger field, as `chunks_across_steps`,
+    /// `deflate_tiles` and `tiles_stored_plain` say (else the library's default layout).
+    fn set_storage(&self, v: &mut netcdf::VariableMut, dims: &[Dim]) -> Result<(), netcdf::Error> {
+        if self.format != Format::Netcdf4 {
+            return Ok(());
+        }
+        if self.chunks_across_steps {
+            let chunks: Vec<usize> = dims
+                .iter()
+                .map(|d| match d {
+                    Dim::Level(_) => 1,
+                    other => other.len().max(1),
+                })
+                .collect();
+            v.set_chunking(&chunks)?;
+        }
+        if let Some([lz, ly, lx]) = self.deflate_tiles {
+            let chunks: Vec<usize> = dims
+                .iter()
+                .map(|d| match d {
+                    Dim::Level(_) => lz,
+                    Dim::Lat(_) => ly,
+                    Dim::Lon(_) => lx,
+                    _ => 1,
+                })
+                .collect();
+            v.set_chunking(&chunks)?;
+            if !self.tiles_stored_plain {
+                v.set_compression(1, true)?;
+            }
+        }
+        Ok(())
+    }
+
     /// Write SI values converted to file units by `conv` (file = si * conv.0 + conv.1),
     /// packed as int16 with SI packing `pack` (step, centre) when the spec says so.
     #[allow(clippy::too_many_arguments)]
@@ -1187,6 +1225,7 @@ impl FixtureSpec {
                 }
             }
             let mut v = f.add_variable::<i16>(name, &dim_names)?;
+            self.set_storage(&mut v, dims)?;
             v.put_attribute("scale_factor", scale)?;
             v.put_attribute("add_offset", offset)?;
             match self.mask {
@@ -1213,29 +1252,7 @@ impl FixtureSpec {
                 .map(|(v, &m)| if m { marker } else { *v as f32 })
                 .collect();
             let mut v = f.add_variable::<f32>(name, &dim_names)?;
-            if self.chunks_across_steps && self.format == Format::Netcdf4 {
-                let chunks: Vec<usize> = dims
-                    .iter()
-                    .map(|d| match d {
-                        Dim::Level(_) => 1,
-                        other => other.len().max(1),
-                    })
-                    .collect();
-                v.set_chunking(&chunks)?;
-            }
-            if let (Some([lz, ly, lx]), Format::Netcdf4) = (self.deflate_tiles, self.format) {
-                let chunks: Vec<usize> = dims
-                    .iter()
-                    .map(|d| match d {
-                        Dim::Level(_) => lz,
-                        Dim::Lat(_) => ly,
-                        Dim::Lon(_) => lx,
-                        _ => 1,
-                    })
-                    .collect();
-                v.set_chunking(&chunks)?;
-                v.set_compression(1, true)?;
-            }
+            self.set_storage(&mut v, dims)?;
             match self.mask {
                 MaskEncoding::FillValue => {
                     v.put_attribute("_FillValue", 1.0e20f32)?;
