@@ -11,6 +11,7 @@ use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex, PoisonError, RwLock};
 use std::time::SystemTime;
 
+use crate::ingest::time::parse_date_time;
 use crate::query::LoadedCycle;
 
 /// How many evictions a snapshot remembers.
@@ -210,6 +211,49 @@ impl CycleStore {
         inserted
     }
 
+    /// Why a file whose cycle has this reference time need not be read, when [`Self::insert`]
+    /// would evict it at once: the store holds `keep_newest` cycles, all with a later
+    /// reference time. `None` (read it) when there is room, for a cycle without a reference
+    /// time (or a store whose oldest cycle has none), and for a file a served cycle came from
+    /// (a new version of it).
+    pub fn passes_over(&self, path: &Path, reference_time: Option<&str>) -> Option<String> {
+        let reference = reference_time.and_then(parse_date_time)?;
+        let s = self.snapshot();
+        let keep = self.config.keep_newest.max(1);
+        if s.cycles.len() < keep || s.cycles.iter().any(|c| c.path == path) {
+            return None;
+        }
+        let oldest_kept = s.cycles.last()?.reference_time_unix_s()?;
+        (reference < oldest_kept).then(|| {
+            format!(
+                "'{}' ({}) was not read: only the newest {keep} cycles are kept and it is older than those",
+                path.display(),
+                reference_time.unwrap_or_default()
+            )
+        })
+    }
+
+    /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,
+    /// so that the catalogue says why it is not served; clears a failure recorded for it.
+    pub fn record_passed_over(&self, path: &Path, reason: String) {
+        let id = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_else(|| path.display().to_string());
+        self.update(|s| {
+            s.failures.retain(|f| f.path != path);
+            s.evictions.insert(
+                0,
+                Eviction {
+                    id,
+                    reason,
+                    at: SystemTime::now(),
+                },
+            );
+            true
+        });
+    }
+
     /// Records that a file failed to load (replacing an earlier failure of the same path).
     /// The cycles already served are untouched, including one loaded earlier from the same
     /// file.
@@ -316,6 +360,53 @@ mod tests {
         assert_eq!(store.find("a.nc").unwrap().id, "a.nc");
         assert!(store.find("missing.nc").is_none());
         assert_eq!(s.generation, 3);
+    }
+
+    #[test]
+    fn a_file_older_than_a_full_store_is_passed_over_and_recorded() {
+        let store = CycleStore::new(StoreConfig {
+            keep_newest: 2,
+            ..StoreConfig::default()
+        });
+        let old = Path::new("/data/old.nc");
+        let day = |d: u32| format!("2030-01-{d:02}T00:00:00Z");
+        store.insert(tiny("a.nc", Some(&day(3)), 2));
+        assert_eq!(store.passes_over(old, Some(&day(1))), None, "room left");
+        store.insert(tiny("b.nc", Some(&day(2)), 2));
+        let reason = store
+            .passes_over(old, Some(&day(1)))
+            .expect("full, and older than the oldest kept");
+        assert!(
+            reason.contains("/data/old.nc") && reason.contains("newest 2"),
+            "{reason}"
+        );
+        // The oldest kept cycle's own time (the newer load would be kept), a later one, none.
+        for read in [Some(day(2)), Some(day(5)), None] {
+            assert_eq!(store.passes_over(old, read.as_deref()), None, "{read:?}");
+        }
+        // A new version of a served cycle's file is read whatever its time.
+        assert_eq!(
+            store.passes_over(Path::new("/data/b.nc"), Some(&day(1))),
+            None
+        );
+        store.record_failure(old, "bad".into());
+        store.record_passed_over(old, reason.clone());
+        let s = store.snapshot();
+        assert!(s.failures.is_empty(), "{:?}", s.failures);
+        assert_eq!(
+            (s.evictions[0].id.as_str(), &s.evictions[0].reason),
+            ("old.nc", &reason)
+        );
+        let ids: Vec<&str> = s.cycles.iter().map(|c| c.id.as_str()).collect();
+        assert_eq!(ids, ["a.nc", "b.nc"]);
+        // A full store whose oldest cycle has no reference time: a file with one sorts
+        // before it, so it is read.
+        let store = CycleStore::new(StoreConfig {
+            keep_newest: 1,
+            ..StoreConfig::default()
+        });
+        store.insert(tiny("c.nc", None, 2));
+        assert_eq!(store.passes_over(old, Some(&day(1))), None);
     }
 
     #[test]

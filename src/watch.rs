@@ -119,14 +119,18 @@ impl WatchState {
     }
 }
 
-/// What one scan did, for tests and logs. `loaded` and `failed` are in the order the files
-/// were read (newest modification time first); the other lists in name order.
+/// What one scan did, for tests and logs. `loaded`, `failed` and `passed_over` are in the
+/// order the files were taken (newest modification time first); the other lists in name
+/// order.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct ScanReport {
     /// Files loaded (new, or changed since their last load).
     pub loaded: Vec<PathBuf>,
     /// Files that failed to load, with the error.
     pub failed: Vec<(PathBuf, String)>,
+    /// Files not read because their cycle is older than the newest `keep_newest` cycles
+    /// already served (recorded in the store as evictions).
+    pub passed_over: Vec<PathBuf>,
     /// Files seen but not yet stable.
     pub waiting: Vec<PathBuf>,
     /// Files reported in this scan as still changing after the longest wait.
@@ -259,9 +263,18 @@ pub async fn scan_once(
             report.waiting.push(path);
             continue;
         }
-        if let Some(tracked) = state.files.get_mut(&path) {
-            load_one(store, tracked, &path, ingest, compute, &mut report).await;
+        let Some(tracked) = state.files.get_mut(&path) else {
+            continue;
+        };
+        if let Some(reason) = passed_over(store, &path, ingest).await {
+            // As if loaded and evicted at once: read again only once the file changes.
+            tracing::info!(file = %path.display(), %reason, "cycle file passed over");
+            store.record_passed_over(&path, reason);
+            tracked.status = Status::Loaded;
+            report.passed_over.push(path);
+            continue;
         }
+        load_one(store, tracked, &path, ingest, compute, &mut report).await;
     }
 
     let present: std::collections::HashSet<&PathBuf> = listing.iter().map(|(p, _)| p).collect();
@@ -286,6 +299,22 @@ pub async fn scan_once(
 /// first too.
 fn sort_newest_first(files: &mut [(PathBuf, Fingerprint)]) {
     files.sort_by(|a, b| b.1.modified.cmp(&a.1.modified).then_with(|| b.0.cmp(&a.0)));
+}
+
+/// Why a file need not be read, when the store is full of newer cycles
+/// ([`CycleStore::passes_over`]): its reference time is peeked from its metadata first (a
+/// few milliseconds), only when the store is full. A file whose metadata cannot be read is
+/// not passed over: its load reports the error.
+async fn passed_over(store: &CycleStore, path: &Path, ingest: &IngestConfig) -> Option<String> {
+    if store.snapshot().cycles.len() < store.config().keep_newest.max(1) {
+        return None;
+    }
+    let (p, i) = (path.to_path_buf(), ingest.clone());
+    let reference = tokio::task::spawn_blocking(move || crate::ingest::read_reference_time(&p, &i))
+        .await
+        .ok()?
+        .ok()?;
+    store.passes_over(path, reference.as_deref())
 }
 
 /// Loads one stable file into the store (or records why not).

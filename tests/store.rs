@@ -323,6 +323,63 @@ async fn a_backlog_is_loaded_newest_first() {
     assert_eq!(store.snapshot().cycles.len(), 4);
 }
 
+/// A good cycle file whose reference time is `reference` (`YYYY-MM-DD hh:mm:ss`, from the
+/// units of its time coordinate) and whose modification time is `hours_old` hours ago.
+fn cycle_file(dir: &Path, name: &str, reference: &str, hours_old: u64) -> PathBuf {
+    let path = FixtureSpec::default().write(&dir.join(name));
+    {
+        let mut f = netcdf::append(&path).unwrap();
+        let mut time = f.variable_mut("time").unwrap();
+        time.put_attribute("units", format!("hours since {reference}"))
+            .unwrap();
+    }
+    let f = std::fs::File::options().write(true).open(&path).unwrap();
+    f.set_modified(SystemTime::now() - Duration::from_secs(3600 * hours_old))
+        .unwrap();
+    path
+}
+
+/// With the store full of newer cycles, a file of an older reference time is not read at all
+/// (its metadata is, to learn that time): it would be evicted the moment it was loaded. The
+/// catalogue says why; a file of a newer time is read whatever its modification time says,
+/// and evicts the oldest.
+#[tokio::test]
+async fn a_file_older_than_the_cycles_kept_is_passed_over_unread() {
+    let tmp = tempfile::tempdir().unwrap();
+    let config = quick(tmp.path());
+    let store = CycleStore::new(StoreConfig {
+        keep_newest: 2,
+        ..StoreConfig::default()
+    });
+    let mut state = WatchState::new();
+    let newest = cycle_file(tmp.path(), "n1.nc", "2030-01-12 00:00:00", 1);
+    let second = cycle_file(tmp.path(), "n2.nc", "2030-01-11 00:00:00", 2);
+    let old = cycle_file(tmp.path(), "old.nc", "2030-01-10 00:00:00", 3);
+    // Delivered late: the oldest file by modification time, but newer than n2 by its cycle.
+    let late = cycle_file(tmp.path(), "late.nc", "2030-01-11 12:00:00", 4);
+    let r = scan(&store, &mut state, &config).await;
+    assert_eq!(
+        r.loaded,
+        [newest.clone(), second.clone(), late.clone()],
+        "{r:?}"
+    );
+    assert_eq!(r.passed_over, [old], "{r:?}");
+    assert!(r.failed.is_empty() && r.waiting.is_empty(), "{r:?}");
+    assert_eq!(ids(&store), ["n1.nc", "late.nc"]);
+    let s = store.snapshot();
+    let evicted: Vec<&str> = s.evictions.iter().map(|e| e.id.as_str()).collect();
+    assert_eq!(evicted, ["n2.nc", "old.nc"]);
+    assert!(
+        s.evictions[1].reason.contains("was not read")
+            && s.evictions[1].reason.contains("2030-01-10T00:00:00Z"),
+        "{}",
+        s.evictions[1].reason
+    );
+    // Not looked at again until it changes.
+    let r = scan(&store, &mut state, &config).await;
+    assert_eq!(r, ScanReport::default());
+}
+
 #[tokio::test]
 async fn a_new_file_is_loaded_once_it_has_settled_and_a_deleted_one_is_dropped() {
     let tmp = tempfile::tempdir().unwrap();

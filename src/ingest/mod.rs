@@ -281,6 +281,20 @@ pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestErr
     reader::Reader::new(&file, label, config).read(path)
 }
 
+/// The reference time of the cycle in a NetCDF file, found as [`read_cycle`] finds it (RFC
+/// 3339 UTC; `None` for a file without one), reading its metadata and time coordinates only:
+/// milliseconds for a file of any size. For a watcher deciding whether a file is worth
+/// reading at all.
+pub fn read_reference_time(
+    path: &Path,
+    config: &IngestConfig,
+) -> Result<Option<String>, IngestError> {
+    let label = checked_label(path)?;
+    let _session = crate::netcdf_session::lock();
+    let file = open_quietly(path, &label)?;
+    reader::Reader::new(&file, label, config).reference_time()
+}
+
 /// The file's label for messages, after the checks that must pass before the NetCDF library
 /// opens it.
 fn checked_label(path: &Path) -> Result<String, IngestError> {

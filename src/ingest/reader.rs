@@ -465,6 +465,13 @@ impl<'f> Reader<'f> {
             .collect())
     }
 
+    /// The reference time [`Self::read`] finds, from the metadata and time coordinates only.
+    pub(super) fn reference_time(&mut self) -> Result<Option<String>, IngestError> {
+        let t_var = self.find_temperature()?;
+        let t_layout = self.layout(&t_var)?;
+        Ok(self.times(&t_layout)?.0)
+    }
+
     pub(super) fn read(&mut self, path: &Path) -> Result<Cycle, IngestError> {
         let t_var = self.find_temperature()?;
         let t_layout = self.layout(&t_var)?;
