@@ -189,6 +189,13 @@ fn kernel_0p25deg(c: &mut Criterion) {
             b.iter(|| narrower.run(&cycle, &|_| {}).expect("computing"))
         });
     }
+    // The same cycle without its surface fields (columns started at the standard
+    // atmosphere's height of 1000 hPa): the kernel too, the lowest level as the surface.
+    let mut surface_less = cycle.clone();
+    surface_less.surface = None;
+    group.bench_function("heights_all_levels_no_surface_fields", |b| {
+        b.iter(|| compute_heights(&surface_less, &no_layers, &|_| {}).expect("computing"))
+    });
     group.bench_function("heights_and_thickness_1000_500", |b| {
         b.iter(|| layer_kernel.run(&cycle, &|_| {}).expect("computing"))
     });
@@ -219,6 +226,12 @@ fn kernel_0p25deg(c: &mut Criterion) {
         .throughput(Throughput::Elements(point_levels));
     group.bench_function("heights_all_levels", |b| {
         b.iter(|| compute_heights_by_columns(&cycle, &no_layers, &|_| {}).expect("computing"))
+    });
+    // What a cycle without surface fields took before the kernel took it.
+    group.bench_function("heights_all_levels_no_surface_fields", |b| {
+        b.iter(|| {
+            compute_heights_by_columns(&surface_less, &no_layers, &|_| {}).expect("computing")
+        })
     });
     group.finish();
 }

@@ -37,7 +37,7 @@ use crate::ingest::{
     read_cycle_in_bands, BadValue, BandDecode, BandReader, InBands, IngestConfig, IngestError,
 };
 use crate::kernel::{IsobaricKernel, NotApplicable, StepFields, StepOutputs};
-use crate::model::{Cycle, Surface};
+use crate::model::Cycle;
 use crate::output::{
     rows_past_sieve, write_heights, FileRows, HeightsAbout, HeightsWriter, OutputError,
     OutputOptions,
@@ -143,10 +143,7 @@ pub fn compute_file_in_bands(
     let streamed = read_cycle_in_bands(input, ingest, |shell, bands| {
         let kernel = kernel_for(shell, config);
         let (how, method) = match &kernel {
-            Some((kernel, method)) => {
-                let surface = shell.surface.as_ref()?;
-                (How::Kernel { kernel, surface }, method.clone())
-            }
+            Some((kernel, method)) => (How::Kernel { kernel }, method.clone()),
             // A cycle the settings cannot compute is declined: the whole read then gives
             // the error `compute_heights` gives.
             None => (How::Columns, heights_method(shell, config).ok()?),
@@ -199,12 +196,9 @@ fn even_bands(rows: usize, band_rows: usize, least: usize) -> Vec<Range<usize>> 
 #[derive(Clone, Copy)]
 enum How<'a> {
     /// The row kernel ([`IsobaricKernel`]), for the cycles it takes.
-    Kernel {
-        kernel: &'a IsobaricKernel,
-        surface: &'a Surface,
-    },
-    /// Column by column ([`StepColumns`]): hybrid levels and cycles without surface fields,
-    /// as [`compute_heights`] does them.
+    Kernel { kernel: &'a IsobaricKernel },
+    /// Column by column ([`StepColumns`]): hybrid levels and the cycles without surface
+    /// fields the kernel does not take, as [`compute_heights`] does them.
     Columns,
 }
 
@@ -681,12 +675,17 @@ impl BandJob<'_> {
         let heights = ArrayViewMut3::from_shape(shape3, out.heights)?;
         let flags = ArrayViewMut3::from_shape(shape3, out.flags)?;
         match self.how {
-            How::Kernel { kernel, surface } => {
+            How::Kernel { kernel } => {
+                let (ps, zs) = kernel.ground(self.shell, (m, t)).ok_or_else(|| {
+                    Failure::Kernel(
+                        "the cycle lacks the surface the kernel was prepared with".into(),
+                    )
+                })?;
                 let fields = StepFields {
                     t: t_band,
                     q: q_band,
-                    ps: surface.pressure_pa.slice(s![m, t, rows.clone(), ..]),
-                    zs: surface.height_m.slice(s![m, t, rows, ..]),
+                    ps: ps.slice_move(s![rows.clone(), ..]),
+                    zs: zs.slice_move(s![rows, ..]),
                 };
                 let mut thickness = Vec::with_capacity(out.thickness.len());
                 for (v, f) in out.thickness {

@@ -1,8 +1,9 @@
 //! The grid kernel: heights and layer thickness for every column of a cycle, in parallel.
 //!
-//! [`compute_heights`] sends the common case (isobaric levels with surface fields, whatever
-//! the humidity) to the row-wise [`crate::kernel::IsobaricKernel`], and everything else
-//! (hybrid levels, no surface fields) to the column path here,
+//! [`compute_heights`] sends isobaric cycles (with surface fields, or without them where every
+//! column starts at the lowest level; whatever the humidity) to the row-wise
+//! [`crate::kernel::IsobaricKernel`], and everything else (hybrid levels, columns started
+//! higher up) to the column path here,
 //! [`compute_heights_by_columns`]: work split by
 //! latitude row (rayon), each row walking its columns with one reused [`ColumnNodes`]
 //! scratch buffer, so the inner loop allocates nothing. Fields are `f32`; every column is
@@ -17,7 +18,9 @@ use rayon::prelude::*;
 
 use crate::buffers::touch_pages;
 use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
-use crate::kernel::{IsobaricKernel, KernelOutput, StepFields, StepOutputs};
+use crate::kernel::{
+    IsobaricKernel, KernelOutput, LowestLevelHeight, NotApplicable, StepFields, StepOutputs,
+};
 use crate::model::{Cycle, Heights, HumidityKind, Layer, LayerThickness, Vertical};
 use crate::physics::column::{
     height_below_surface, height_between_nodes, thickness_between, usable_tv, ColumnAnchor,
@@ -102,10 +105,13 @@ pub enum ComputeError {
 /// [`ColumnNodes::hybrid`] (constant-lapse-rate layers; Simmons & Burridge 1981 on hybrid
 /// levels), and thickness by [`thickness_between`] on the same column.
 ///
-/// Isobaric cycles with surface fields (the common case, whatever their humidity) run the
-/// row-wise [`crate::kernel::IsobaricKernel`], which gives the same answers as the column
-/// path to well within a millimetre and several times faster; everything else (hybrid
-/// levels, no surface fields) runs [`compute_heights_by_columns`].
+/// Isobaric cycles (whatever their humidity) run the row-wise
+/// [`crate::kernel::IsobaricKernel`], which gives the same answers as the column path to
+/// well within a millimetre and several times faster: with surface fields, and without them
+/// where every column starts at the lowest level (the standard atmosphere's height there,
+/// or the file's own; the kernel takes that level as a surface lying on it). Everything else
+/// (hybrid levels, a column started above the lowest level) runs
+/// [`compute_heights_by_columns`].
 pub fn compute_heights(
     cycle: &Cycle,
     config: &ComputeConfig,
@@ -116,7 +122,7 @@ pub fn compute_heights(
         Ok(kernel) => kernel,
         Err(_) => return compute_heights_by_columns(cycle, config, progress),
     };
-    // Same validation as the column path (a cycle with surface fields always resolves).
+    // Same validation as the column path (a cycle the kernel takes always resolves).
     let reference = StepColumns::new(cycle, config, 0, 0)?.reference;
     match kernel.run(cycle, progress) {
         Ok(out) => Ok(kernel_heights(cycle, out, reference)),
@@ -131,12 +137,32 @@ pub(crate) fn row_kernel(
     cycle: &Cycle,
     config: &ComputeConfig,
 ) -> Result<IsobaricKernel, crate::kernel::NotApplicable> {
-    IsobaricKernel::with_saturation(
-        cycle,
-        &config.layers,
-        config.saturation_formula,
-        config.rh_phase,
-    )
+    let (formula, phase) = (config.saturation_formula, config.rh_phase);
+    if cycle.surface.is_some() || matches!(cycle.vertical, Vertical::Hybrid { .. }) {
+        return IsobaricKernel::with_saturation(cycle, &config.layers, formula, phase);
+    }
+    let start = lowest_level_start(cycle, config).ok_or(NotApplicable::NoSurface)?;
+    IsobaricKernel::from_lowest_level(cycle, &config.layers, formula, phase, start)
+}
+
+/// Where the columns of an isobaric cycle without surface fields start, when every one of
+/// them starts at the lowest level (the kernel then takes the cycle): the standard
+/// atmosphere's height there, the file's own height at that level asked for by pressure, or
+/// the file's lowest height column by column where that is the lowest level everywhere.
+/// `None` where some column starts higher, or the reference does not resolve.
+fn lowest_level_start(cycle: &Cycle, config: &ComputeConfig) -> Option<LowestLevelHeight> {
+    match resolve_reference(cycle, config.no_surface_reference).ok()? {
+        Reference::StandardAtmosphere(z) => Some(LowestLevelHeight::Everywhere(z)),
+        Reference::FileHeight(Some(0)) => Some(LowestLevelHeight::FromFile),
+        Reference::FileHeight(None) => {
+            let lowest = cycle.file_heights.as_ref()?.slice(s![.., .., 0, .., ..]);
+            lowest
+                .iter()
+                .all(|z| z.is_finite())
+                .then_some(LowestLevelHeight::FromFile)
+        }
+        Reference::FileHeight(Some(_)) | Reference::Surface => None,
+    }
 }
 
 /// The row kernel for `cycle` and the method sentence its heights carry, when the kernel
@@ -409,8 +435,7 @@ fn kernel_step(
     buffer: Option<KernelOutput>,
     from: usize,
 ) -> Option<StepHeights> {
-    let surface = cycle.surface.as_ref()?;
-    run_one_step(kernel, StepFields::of(cycle, surface, (m, t)), buffer, from).ok()
+    run_one_step(kernel, kernel.step_fields(cycle, (m, t))?, buffer, from).ok()
 }
 
 /// The kernel on one step's fields from row `from` on, into `buffer` (a one-step output of
@@ -780,9 +805,6 @@ fn compute_while_reading(
     out: &mut EachStep,
     (members, times): (usize, usize),
 ) {
-    let Some(surface) = shell.surface.as_ref() else {
-        return;
-    };
     if steps.read_uses_every_core() {
         // See `read_for_serving`: everything is computed after the listing.
         return;
@@ -805,11 +827,14 @@ fn compute_while_reading(
         if m * times + t != done || done + 1 >= total {
             return;
         }
+        let Some((ps, zs)) = kernel.ground(shell, (m, t)) else {
+            return;
+        };
         let fields = StepFields {
             t: step.temperature,
             q: step.humidity,
-            ps: surface.pressure_pa.slice(s![m, t, .., ..]),
-            zs: surface.height_m.slice(s![m, t, .., ..]),
+            ps,
+            zs,
         };
         let computed = match pool.as_ref() {
             Some(pool) => pool.install(|| out.run(kernel, fields, done, &stop)),

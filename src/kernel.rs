@@ -1,10 +1,12 @@
-//! The fast batch kernel for the common case: isobaric levels, heights tied to the surface,
-//! humidity as specific humidity, mixing ratio, relative humidity, dewpoint or none.
+//! The fast batch kernel for isobaric cycles: heights tied to the surface, or for a cycle
+//! without surface fields started at its lowest level; humidity as specific humidity, mixing
+//! ratio, relative humidity, dewpoint or none.
 //!
 //! [`crate::compute::compute_heights`] dispatches here when
-//! [`IsobaricKernel::with_saturation`] accepts the cycle; everything else (hybrid levels,
-//! cycles without surface fields) stays on the column path of
-//! [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint are made specific
+//! [`IsobaricKernel::with_saturation`] (or, without surface fields,
+//! [`IsobaricKernel::from_lowest_level`]) accepts the cycle; everything else (hybrid levels,
+//! cycles without surface fields whose columns start above the lowest level) stays on the
+//! column path of [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint are made specific
 //! humidity a level's row at a time, in SIMD lanes of their own, with the column path's
 //! formulas, before the level step.
 //!
@@ -39,7 +41,7 @@
 //! `tests/kernel.rs` checks them against each other column by column.
 
 use ndarray::{
-    s, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2,
+    s, Array1, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2,
     ArrayViewMut3, Axis,
 };
 use rayon::prelude::*;
@@ -300,6 +302,14 @@ pub enum NotApplicable {
     /// No surface pressure and height to tie the columns to.
     #[error("the cycle has no surface pressure and surface height")]
     NoSurface,
+    /// No surface fields, and the columns' start at the lowest level cannot be put as a
+    /// surface there: its pressure is not exact in single precision, a layer reaches below
+    /// it, or the file's heights at that level are missing.
+    #[error("the cycle has no surface fields, and its columns cannot start at its lowest level here: {why}")]
+    LowestLevel {
+        /// Why not.
+        why: String,
+    },
     /// Humidity that needs a saturation formula per point, where none was given
     /// ([`IsobaricKernel::new`]; [`IsobaricKernel::with_saturation`] takes it).
     #[error(
@@ -657,6 +667,32 @@ pub struct IsobaricKernel {
     captures: Vec<usize>,
     /// Which build of the level and surface steps runs.
     lanes: Lanes,
+    /// What the columns start from.
+    ground: Ground,
+}
+
+/// The height the columns of a cycle without surface fields start from, at its lowest
+/// level ([`IsobaricKernel::from_lowest_level`]).
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum LowestLevelHeight {
+    /// The same height at every column, geopotential metres.
+    Everywhere(f64),
+    /// The file's own geopotential height at the lowest level, column by column.
+    FromFile,
+}
+
+/// What the kernel's columns start from.
+#[derive(Clone, Debug)]
+enum Ground {
+    /// The cycle's surface pressure and height.
+    Surface,
+    /// The lowest level, as a surface lying exactly on it: its pressure along a row, and the
+    /// height along a row (`Everywhere`) or the file's own at that level (`FromFile`).
+    LowestLevel {
+        start: LowestLevelHeight,
+        pressure: Array1<f32>,
+        height: Option<Array1<f32>>,
+    },
 }
 
 /// Surface of one column as the kernel sees it.
@@ -888,10 +924,41 @@ impl IsobaricKernel {
         Self::prepare(cycle, layers, Some((formula, phase)))
     }
 
+    /// [`IsobaricKernel::with_saturation`] for a cycle without surface fields whose columns
+    /// start at the lowest level with the height `start` says: the lowest level is taken as
+    /// a surface lying exactly on it (nothing below ground, its height the start's), which
+    /// gives the column path's answers for a column anchored at that level
+    /// ([`crate::physics::column::ColumnAnchor::LevelHeight`]: upward from it with the same
+    /// layers; a level whose virtual temperature is missing masks itself and every level
+    /// above, a missing one at the lowest level or a missing start height the whole column).
+    ///
+    /// Refused ([`NotApplicable::LowestLevel`]) when the lowest level's pressure is not
+    /// exact in `f32` (the surface pressure the kernel reads), a layer's bottom lies below
+    /// the lowest level (the column path does not extrapolate there without a surface), or
+    /// `FromFile` finds no file heights of the temperature's shape.
+    pub fn from_lowest_level(
+        cycle: &Cycle,
+        layers: &[Layer],
+        formula: SaturationFormula,
+        phase: RelativeHumidityPhase,
+        start: LowestLevelHeight,
+    ) -> Result<Self, NotApplicable> {
+        Self::prepare_from(cycle, layers, Some((formula, phase)), Some(start))
+    }
+
     fn prepare(
         cycle: &Cycle,
         layers: &[Layer],
         saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
+    ) -> Result<Self, NotApplicable> {
+        Self::prepare_from(cycle, layers, saturation, None)
+    }
+
+    fn prepare_from(
+        cycle: &Cycle,
+        layers: &[Layer],
+        saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
+        lowest: Option<LowestLevelHeight>,
     ) -> Result<Self, NotApplicable> {
         let levels = match &cycle.vertical {
             Vertical::Isobaric { pressure_pa } => pressure_pa.clone(),
@@ -903,7 +970,6 @@ impl IsobaricKernel {
         if n == 0 || n > usize::from(u8::MAX) || !ordered {
             return Err(NotApplicable::Levels { levels: n });
         }
-        let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
         let (members, times, nz, rows, cols) = cycle.temperature.dim();
         let expected3 = vec![members, times, nz, rows, cols];
         if nz != n {
@@ -913,19 +979,26 @@ impl IsobaricKernel {
                 expected: vec![members, times, n, rows, cols],
             });
         }
-        let expected2 = vec![members, times, rows, cols];
-        for (field, a) in [
-            ("surface_air_pressure", &surface.pressure_pa),
-            ("surface_height", &surface.height_m),
-        ] {
-            if a.shape() != expected2.as_slice() {
-                return Err(NotApplicable::Shape {
-                    field,
-                    found: a.shape().to_vec(),
-                    expected: expected2.clone(),
-                });
+        let ground = match (&cycle.surface, lowest) {
+            (Some(surface), _) => {
+                let expected2 = vec![members, times, rows, cols];
+                for (field, a) in [
+                    ("surface_air_pressure", &surface.pressure_pa),
+                    ("surface_height", &surface.height_m),
+                ] {
+                    if a.shape() != expected2.as_slice() {
+                        return Err(NotApplicable::Shape {
+                            field,
+                            found: a.shape().to_vec(),
+                            expected: expected2.clone(),
+                        });
+                    }
+                }
+                Ground::Surface
             }
-        }
+            (None, None) => return Err(NotApplicable::NoSurface),
+            (None, Some(start)) => Self::lowest_level_ground(cycle, &levels, layers, start)?,
+        };
         let mut moisture = vec![Moisture::Dry; n];
         if let Some(h) = &cycle.humidity {
             let kind = match (h.kind, saturation) {
@@ -1013,6 +1086,107 @@ impl IsobaricKernel {
             layers: placed,
             captures,
             lanes: Lanes::widest(),
+            ground,
+        })
+    }
+
+    /// The ground of [`IsobaricKernel::from_lowest_level`], or why not.
+    fn lowest_level_ground(
+        cycle: &Cycle,
+        levels: &[f64],
+        layers: &[Layer],
+        start: LowestLevelHeight,
+    ) -> Result<Ground, NotApplicable> {
+        let why = |why: String| NotApplicable::LowestLevel { why };
+        let p0 = levels[0];
+        // Read back as the surface pressure, it must be the level itself, or the level
+        // would lie below ground (or the column start above it).
+        let p0_f32 = p0 as f32;
+        if f64::from(p0_f32) != p0 {
+            return Err(why(format!(
+                "its pressure {p0} Pa is not exact in single precision"
+            )));
+        }
+        if let Some(layer) = layers.iter().find(|l| l.bottom_pa > p0 || l.top_pa > p0) {
+            return Err(why(format!(
+                "a layer from {} Pa reaches below it",
+                layer.bottom_pa.max(layer.top_pa)
+            )));
+        }
+        let cols = cycle.grid.cols();
+        let height = match start {
+            LowestLevelHeight::Everywhere(z) => Some(Array1::from_elem(cols, z as f32)),
+            LowestLevelHeight::FromFile => {
+                let shape_ok = cycle
+                    .file_heights
+                    .as_ref()
+                    .is_some_and(|z| z.dim() == cycle.temperature.dim());
+                if !shape_ok {
+                    return Err(why("the file carries no heights on its levels".into()));
+                }
+                None
+            }
+        };
+        Ok(Ground::LowestLevel {
+            start,
+            pressure: Array1::from_elem(cols, p0_f32),
+            height,
+        })
+    }
+
+    /// Surface pressure and height of step (`m`, `t`) of `cycle` (the cycle the kernel was
+    /// prepared for) as the kernel reads them, `[lat, lon]`: the cycle's surface fields, or
+    /// for a cycle without them the lowest level's pressure and start height
+    /// ([`IsobaricKernel::from_lowest_level`]). `None` where `cycle` lacks what the kernel
+    /// was prepared with.
+    pub fn ground<'s>(
+        &'s self,
+        cycle: &'s Cycle,
+        (m, t): (usize, usize),
+    ) -> Option<(ArrayView2<'s, f32>, ArrayView2<'s, f32>)> {
+        match &self.ground {
+            Ground::Surface => {
+                let surface = cycle.surface.as_ref()?;
+                Some((
+                    surface.pressure_pa.slice(s![m, t, .., ..]),
+                    surface.height_m.slice(s![m, t, .., ..]),
+                ))
+            }
+            Ground::LowestLevel {
+                pressure, height, ..
+            } => {
+                let (.., rows, cols) = cycle.temperature.dim();
+                let ps = pressure.broadcast((rows, cols))?;
+                let zs = match height {
+                    Some(z) => z.broadcast((rows, cols))?,
+                    None => cycle
+                        .file_heights
+                        .as_ref()?
+                        .slice(s![m, t, 0, .., ..])
+                        .into_shape_with_order((rows, cols))
+                        .ok()?,
+                };
+                Some((ps, zs))
+            }
+        }
+    }
+
+    /// The fields of step (`m`, `t`) of `cycle` as [`StepFields::of`] gives them, with the
+    /// surface [`IsobaricKernel::ground`] gives.
+    pub fn step_fields<'s>(
+        &'s self,
+        cycle: &'s Cycle,
+        (m, t): (usize, usize),
+    ) -> Option<StepFields<'s>> {
+        let (ps, zs) = self.ground(cycle, (m, t))?;
+        Some(StepFields {
+            t: cycle.temperature.slice(s![m, t, .., .., ..]),
+            q: cycle
+                .humidity
+                .as_ref()
+                .map(|h| h.values.slice(s![m, t, .., .., ..])),
+            ps,
+            zs,
         })
     }
 
@@ -1080,7 +1254,11 @@ impl IsobaricKernel {
 
     /// Refuses a cycle other than the one the kernel was prepared for.
     fn check_cycle(&self, cycle: &Cycle) -> Result<(), NotApplicable> {
-        let fresh = Self::prepare(cycle, &[], self.saturation)?;
+        let start = match &self.ground {
+            Ground::Surface => None,
+            Ground::LowestLevel { start, .. } => Some(*start),
+        };
+        let fresh = Self::prepare_from(cycle, &[], self.saturation, start)?;
         if fresh.levels != self.levels || fresh.moisture != self.moisture {
             return Err(NotApplicable::OtherCycle {
                 file: cycle.source.display().to_string(),
@@ -1098,7 +1276,6 @@ impl IsobaricKernel {
         thickness: &mut [LayerThickness],
         progress: &(dyn Fn(usize) + Sync),
     ) -> Result<(), NotApplicable> {
-        let surface = cycle.surface.as_ref().ok_or(NotApplicable::NoSurface)?;
         let (members, times, levels, _, _) = cycle.temperature.dim();
         let n_levels = if heights.is_some() {
             levels
@@ -1108,7 +1285,9 @@ impl IsobaricKernel {
         let mut done = 0usize;
         for m in 0..members {
             for t in 0..times {
-                let views = StepFields::of(cycle, surface, (m, t));
+                let views = self
+                    .step_fields(cycle, (m, t))
+                    .ok_or(NotApplicable::NoSurface)?;
                 let step_heights = heights.as_mut().map(|(z, b)| {
                     (
                         z.slice_mut(s![m, t, .., .., ..]),

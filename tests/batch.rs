@@ -1316,7 +1316,7 @@ fn progress_counts_the_steps_up_to_the_total() {
         ("banded", members_and_steps.clone(), Some(1), true),
         ("banded-uneven", members_and_steps.clone(), Some(3), true),
         (
-            "column-path",
+            "no-surface-fields",
             FixtureSpec {
                 surface: None,
                 file_heights: FileHeights::GeopotentialHeight,

@@ -10,11 +10,13 @@ use std::path::PathBuf;
 
 use ndarray::{s, Array4, Array5, ShapeBuilder};
 
-use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
+use hypsogrid::compute::{
+    compute_heights, compute_heights_by_columns, ComputeConfig, NoSurfaceReference,
+};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::kernel::{
-    exp_by_reduction, logarithmic_mean_by_series, IsobaricKernel, KernelOutput, NotApplicable,
-    StepFields, SERIES_LIMIT,
+    exp_by_reduction, logarithmic_mean_by_series, IsobaricKernel, KernelOutput, LowestLevelHeight,
+    NotApplicable, StepFields, SERIES_LIMIT,
 };
 use hypsogrid::lanes::Lanes;
 use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
@@ -653,6 +655,197 @@ fn other_cycles_are_left_to_the_column_path() {
         })
         .expect("run");
     assert_eq!(steps.into_inner(), 6);
+}
+
+/// A cycle without surface fields whose file carries heights on its levels: the invented
+/// cycle's, with its surface dropped, and heights from the column path's own standard
+/// atmosphere plus noise; edge cases in row 0 of step (0, 0).
+fn surface_less_cycle() -> Cycle {
+    let mut cycle = invented_cycle(2, 2, 5, 24, Some(HumidityKind::SpecificHumidity));
+    cycle.surface = None;
+    let (members, times, n, rows, cols) = cycle.temperature.dim();
+    let p = levels_pa();
+    let mut rng = Lcg(7);
+    let mut z = Array5::<f32>::zeros((members, times, n, rows, cols));
+    for ((_, _, k, _, _), v) in z.indexed_iter_mut() {
+        *v = (us_standard_atmosphere_height_at_pressure(p[k]) + 80.0 * rng.next()) as f32;
+    }
+    cycle.file_heights = Some(z);
+    let t = &mut cycle.temperature;
+    // Missing temperature at the lowest level: the whole column is masked.
+    t[[0, 0, 0, 0, 1]] = f32::NAN;
+    // Missing (500 hPa), not positive (250 hPa) and infinite (850 hPa) higher up: masked
+    // from there up.
+    t[[0, 0, 12, 0, 2]] = f32::NAN;
+    t[[0, 0, 17, 0, 3]] = -3.0;
+    t[[0, 0, 5, 0, 4]] = f32::INFINITY;
+    // A jump beyond the series' limit between adjacent levels.
+    t[[0, 0, 8, 0, 5]] = 500.0;
+    // An isothermal column.
+    for k in 0..n {
+        t[[0, 0, k, 0, 6]] = 250.0;
+    }
+    cycle
+}
+
+/// The heights and flags of `out` are those of `heights`, bit for bit.
+fn same_bits_as_kernel(heights: &Heights, out: &KernelOutput) -> bool {
+    let bits = |a: &Array5<f32>| a.iter().map(|v| v.to_bits()).collect::<Vec<_>>();
+    bits(&heights.geopotential_height) == bits(&out.geopotential_height)
+        && heights.below_ground == out.below_ground
+}
+
+/// Cycles without surface fields whose columns all start at the lowest level (the standard
+/// atmosphere's height there, or the file's own height at that level) go through the kernel,
+/// the lowest level taken as a surface lying on it: the column path's answers (1 mm, or one
+/// `f32` step), nothing below ground, the same masking. A column that starts higher (no file
+/// height at the lowest level) or a layer reaching below the lowest level leaves the cycle
+/// to the column path.
+#[test]
+fn cycles_without_surface_fields_start_at_the_lowest_level_in_the_kernel() {
+    let cycle = surface_less_cycle();
+    let (formula, phase) = (
+        SaturationFormula::default(),
+        RelativeHumidityPhase::default(),
+    );
+    let in_range = vec![
+        Layer {
+            bottom_pa: 100_000.0,
+            top_pa: 50_000.0,
+        },
+        Layer {
+            bottom_pa: 96_250.0,
+            top_pa: 41_000.0,
+        },
+        Layer {
+            bottom_pa: 70_500.0,
+            top_pa: 150.0,
+        },
+    ];
+    let z_std = us_standard_atmosphere_height_at_pressure(100_000.0);
+    let mut no_heights = cycle.clone();
+    no_heights.file_heights = None;
+    let mut nan_at_lowest = cycle.clone();
+    if let Some(z) = nan_at_lowest.file_heights.as_mut() {
+        z[[1, 1, 0, 3, 7]] = f32::NAN;
+    }
+    let cases = [
+        // No file heights: the standard atmosphere's height at 1000 hPa everywhere.
+        (
+            "standard atmosphere",
+            &no_heights,
+            NoSurfaceReference::FileHeightAtLowestLevel,
+            LowestLevelHeight::Everywhere(z_std),
+        ),
+        // The file's heights, level 0 everywhere.
+        (
+            "file heights",
+            &cycle,
+            NoSurfaceReference::FileHeightAtLowestLevel,
+            LowestLevelHeight::FromFile,
+        ),
+        // Asked at 1000 hPa: level 0 for every column, a missing height masks its column.
+        (
+            "file heights at 1000 hPa",
+            &nan_at_lowest,
+            NoSurfaceReference::FileHeightAt {
+                pressure_pa: 100_000.0,
+            },
+            LowestLevelHeight::FromFile,
+        ),
+    ];
+    for (label, cycle, reference, start) in cases {
+        let config = ComputeConfig {
+            layers: in_range.clone(),
+            no_surface_reference: reference,
+            ..ComputeConfig::default()
+        };
+        let kernel = IsobaricKernel::from_lowest_level(cycle, &in_range, formula, phase, start)
+            .unwrap_or_else(|e| panic!("{label}: {e}"));
+        let out = kernel.run(cycle, &|_| {}).expect(label);
+        let fast = compute_heights(cycle, &config, &|_| {}).expect(label);
+        assert!(
+            same_bits_as_kernel(&fast, &out),
+            "{label}: computed by the kernel"
+        );
+        let columns = compute_heights_by_columns(cycle, &config, &|_| {}).expect(label);
+        let (worst, n) = compare(&fast, &columns);
+        println!("{label}: {n} values, largest difference {worst:e} m");
+        assert!(fast.below_ground.iter().all(|&b| b == 0), "{label}");
+        assert_eq!(fast.method, columns.method, "{label}");
+        // The masked columns of row 0, step (0, 0).
+        let z = &fast.geopotential_height;
+        assert!(
+            z.slice(s![0, 0, .., 0, 1]).iter().all(|v| v.is_nan()),
+            "{label}"
+        );
+        assert!(
+            z[[0, 0, 11, 0, 2]].is_finite() && z[[0, 0, 12, 0, 2]].is_nan(),
+            "{label}"
+        );
+        assert!(
+            z.slice(s![0, 0, 12.., 0, 2]).iter().all(|v| v.is_nan()),
+            "{label}"
+        );
+    }
+    // The column whose 1000 hPa height is missing, asked at 1000 hPa: masked.
+    let config = ComputeConfig {
+        no_surface_reference: NoSurfaceReference::FileHeightAt {
+            pressure_pa: 100_000.0,
+        },
+        ..ComputeConfig::default()
+    };
+    let z = compute_heights(&nan_at_lowest, &config, &|_| {})
+        .expect("masked column")
+        .geopotential_height;
+    assert!(z.slice(s![1, 1, .., 3, 7]).iter().all(|v| v.is_nan()));
+
+    // At the lowest level that has a height, where that is level 1 for one column: the
+    // column path, which starts that column at 975 hPa.
+    let config = ComputeConfig::default();
+    let fast = compute_heights(&nan_at_lowest, &config, &|_| {}).expect("column path");
+    let columns = compute_heights_by_columns(&nan_at_lowest, &config, &|_| {}).expect("columns");
+    let bits = |h: &Heights| {
+        h.geopotential_height
+            .iter()
+            .map(|v| v.to_bits())
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(bits(&fast), bits(&columns), "the column path's own bits");
+    assert!(fast.geopotential_height[[1, 1, 1, 3, 7]].is_finite());
+    // A layer from below the lowest level, or a lowest level not exact in f32: refused.
+    let below = IsobaricKernel::from_lowest_level(
+        &cycle,
+        &layers(),
+        formula,
+        phase,
+        LowestLevelHeight::FromFile,
+    );
+    assert!(
+        matches!(below, Err(NotApplicable::LowestLevel { .. })),
+        "{below:?}"
+    );
+    let mut odd = no_heights.clone();
+    if let Vertical::Isobaric { pressure_pa } = &mut odd.vertical {
+        pressure_pa[0] = 100_000.3;
+    }
+    let odd_kernel = IsobaricKernel::from_lowest_level(
+        &odd,
+        &[],
+        formula,
+        phase,
+        LowestLevelHeight::Everywhere(z_std),
+    );
+    assert!(matches!(odd_kernel, Err(NotApplicable::LowestLevel { .. })));
+    // Without file heights, `FromFile` has nothing to start from.
+    let none = IsobaricKernel::from_lowest_level(
+        &no_heights,
+        &[],
+        formula,
+        phase,
+        LowestLevelHeight::FromFile,
+    );
+    assert!(matches!(none, Err(NotApplicable::LowestLevel { .. })));
 }
 
 fn shared_data(relative: &str) -> Option<PathBuf> {

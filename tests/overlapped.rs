@@ -17,7 +17,8 @@ use std::path::{Path, PathBuf};
 use ndarray::s;
 
 use common::fixtures::{
-    hybrid_variants, isobaric_variants, two_layer_config, FixtureSpec, HumidityEncoding,
+    hybrid_variants, isobaric_variants, two_layer_config, FileHeights, FixtureSpec,
+    HumidityEncoding,
 };
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig, LoadError};
 use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
@@ -139,6 +140,17 @@ fn variants() -> Vec<(String, FixtureSpec)> {
         ));
     }
     v.extend(hybrid);
+    // No surface fields, the columns started at the file's heights on the lowest level:
+    // the row kernel too, while reading.
+    v.push((
+        "no-surface-steps".into(),
+        FixtureSpec {
+            time_steps: Some(3),
+            surface: None,
+            file_heights: FileHeights::GeopotentialHeight,
+            ..FixtureSpec::default()
+        },
+    ));
     v.push((
         "relative-humidity-steps".into(),
         FixtureSpec {
