@@ -1736,6 +1736,33 @@ mod tests {
         }
     }
 
+    /// A cycle without surface fields, its columns started at the standard atmosphere's
+    /// height of its lowest level: the kernel takes it, and computes its steps while the read
+    /// goes on from the shell the reader hands over (temperature and humidity still empty),
+    /// to the bits of the whole cycle's heights.
+    #[test]
+    fn a_cycle_without_surface_fields_is_computed_while_the_read_goes_on() {
+        let (mut cycle, config, _) = three_steps();
+        cycle.surface = None;
+        assert!(cycle.file_heights.is_none());
+        let reference = compute_heights(&cycle, &config, &|_| {}).expect("reference");
+        let kernel = row_kernel(&cycle, &config).expect("the kernel takes the cycle");
+        let mut shell = cycle.clone();
+        shell.temperature = crate::model::Field5::zeros((0, 0, 0, 0, 0));
+        if let Some(h) = shell.humidity.as_mut() {
+            h.values = crate::model::Field5::zeros((0, 0, 0, 0, 0));
+        }
+        let (members, times, ..) = cycle.temperature.dim();
+        let flag = AtomicBool::new(false);
+        let mut out = each_step(&kernel, &cycle);
+        let feed = StepFeed::new(every_step(&cycle), &flag, false);
+        compute_while_reading(&kernel, &shell, feed, &mut out, (members, times));
+        for t in 0..times - 1 {
+            let got = out.finished[t].as_ref().expect("computed while reading");
+            assert_step(got, &reference, t);
+        }
+    }
+
     /// Where the read keeps every core busy by itself, neither the kernel nor the column path
     /// computes anything while it goes on, and nothing is left part-way: every step is for
     /// `PendingSteps::finish`.

@@ -1155,16 +1155,13 @@ impl IsobaricKernel {
             Ground::LowestLevel {
                 pressure, height, ..
             } => {
-                let (.., rows, cols) = cycle.temperature.dim();
+                // The grid, not the temperature: a shell whose fields are still being read
+                // has an empty temperature.
+                let (rows, cols) = (cycle.grid.rows(), cycle.grid.cols());
                 let ps = pressure.broadcast((rows, cols))?;
                 let zs = match height {
                     Some(z) => z.broadcast((rows, cols))?,
-                    None => cycle
-                        .file_heights
-                        .as_ref()?
-                        .slice(s![m, t, 0, .., ..])
-                        .into_shape_with_order((rows, cols))
-                        .ok()?,
+                    None => cycle.file_heights.as_ref()?.slice(s![m, t, 0, .., ..]),
                 };
                 Some((ps, zs))
             }
