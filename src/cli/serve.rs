@@ -685,8 +685,10 @@ async fn serve(
             let _ = stop_tx.send(true);
             server.await
         }
-        // The server stopped by itself: a transport failure. Stop the watcher too.
+        // The server stopped by itself: a transport failure. Stop the watcher too, and a
+        // file being read at its next step (the exit waits for that read).
         finished = &mut server => {
+            hypsogrid::netcdf_session::stop_reads();
             let _ = stop_tx.send(true);
             finished
         }
