@@ -708,20 +708,15 @@ fn cycles_without_surface_fields_start_at_the_lowest_level_in_the_kernel() {
         SaturationFormula::default(),
         RelativeHumidityPhase::default(),
     );
-    let in_range = vec![
-        Layer {
-            bottom_pa: 100_000.0,
-            top_pa: 50_000.0,
-        },
-        Layer {
-            bottom_pa: 96_250.0,
-            top_pa: 41_000.0,
-        },
-        Layer {
-            bottom_pa: 70_500.0,
-            top_pa: 150.0,
-        },
-    ];
+    // Layers from the lowest level up (none reaches below it).
+    let in_range: Vec<Layer> = [
+        (100_000.0, 50_000.0),
+        (96_250.0, 41_000.0),
+        (70_500.0, 150.0),
+    ]
+    .into_iter()
+    .map(|(bottom_pa, top_pa)| Layer { bottom_pa, top_pa })
+    .collect();
     let z_std = us_standard_atmosphere_height_at_pressure(100_000.0);
     let mut no_heights = cycle.clone();
     no_heights.file_heights = None;

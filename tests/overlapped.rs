@@ -383,28 +383,9 @@ fn chunks_across_time_steps_are_read_whole() {
 fn deflated_steps_read_as_the_library_reads_them() {
     let dir = tempfile::tempdir().expect("tempdir");
     let ingest = IngestConfig::default();
-    let variants: [(&str, Option<[usize; 3]>, FixtureSpec); 6] = [
+    let mut variants: Vec<(String, Option<[usize; 3]>, FixtureSpec)> = vec![
         (
-            "planes",
-            Some([1, usize::MAX, usize::MAX]),
-            FixtureSpec {
-                time_steps: Some(3),
-                ..FixtureSpec::default()
-            },
-        ),
-        (
-            "tiles-members-top-down-masked",
-            Some([3, 2, 3]),
-            FixtureSpec {
-                members: Some(2),
-                time_steps: Some(2),
-                levels_top_down: true,
-                masked_points: vec![[1, 1, 2, 3, 5]],
-                ..FixtureSpec::default()
-            },
-        ),
-        (
-            "one-chunk-a-step",
+            "one-chunk-a-step".into(),
             Some([usize::MAX, usize::MAX, usize::MAX]),
             FixtureSpec {
                 time_steps: Some(2),
@@ -412,7 +393,7 @@ fn deflated_steps_read_as_the_library_reads_them() {
             },
         ),
         (
-            "packed",
+            "packed".into(),
             Some([1, usize::MAX, usize::MAX]),
             FixtureSpec {
                 time_steps: Some(2),
@@ -420,30 +401,34 @@ fn deflated_steps_read_as_the_library_reads_them() {
                 ..FixtureSpec::default()
             },
         ),
-        // Chunked so but stored uncompressed: read chunk by chunk on every core as well.
-        (
-            "plain-planes",
+    ];
+    // Deflated, and chunked so but stored uncompressed: read chunk by chunk on every core
+    // either way.
+    for (kind, plain) in [("deflated", false), ("plain", true)] {
+        variants.push((
+            format!("{kind}-planes"),
             Some([1, usize::MAX, usize::MAX]),
             FixtureSpec {
                 time_steps: Some(3),
-                tiles_stored_plain: true,
+                tiles_stored_plain: plain,
                 ..FixtureSpec::default()
             },
-        ),
-        (
-            "plain-tiles-members-top-down-masked",
+        ));
+        variants.push((
+            format!("{kind}-tiles-members-top-down-masked"),
             Some([3, 2, 3]),
             FixtureSpec {
                 members: Some(2),
                 time_steps: Some(2),
                 levels_top_down: true,
                 masked_points: vec![[1, 1, 2, 3, 5]],
-                tiles_stored_plain: true,
+                tiles_stored_plain: plain,
                 ..FixtureSpec::default()
             },
-        ),
-    ];
+        ));
+    }
     for (label, tiles, spec) in variants {
+        let label = label.as_str();
         // Tile lengths no longer than the fixture's axes.
         let (levels, rows, cols) = (
             spec.levels(),
@@ -462,7 +447,7 @@ fn deflated_steps_read_as_the_library_reads_them() {
             |(), _, steps| (steps.read_uses_every_core(), steps.count()),
         )
         .expect(label);
-        // The feed says whether the read inflates on every core (what the serving read
+        // The feed says whether the read uses every core (what the serving read
         // decides by whether to compute meanwhile): packed fields stay with the library.
         let packed = label == "packed";
         assert_eq!(
