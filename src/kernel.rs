@@ -6,9 +6,9 @@
 //! [`IsobaricKernel::with_saturation`] (or, without surface fields,
 //! [`IsobaricKernel::from_lowest_level`]) accepts the cycle; everything else (hybrid levels,
 //! cycles without surface fields whose columns start above the lowest level) stays on the
-//! column path of [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint are made specific
-//! humidity a level's row at a time, in SIMD lanes of their own, with the column path's
-//! formulas, before the level step.
+//! column path of [`crate::physics::column::ColumnNodes`]. Relative humidity and dewpoint
+//! are made specific humidity a level's row at a time, in SIMD lanes of their own, with the
+//! column path's formulas, before the level step.
 //!
 //! # Why it is fast
 //! The column path gathers one column at a time across 37 level planes that lie megabytes
@@ -37,7 +37,9 @@
 //! the surface pressure has the surface height and is not below ground; a missing (or not
 //! finite and positive) virtual temperature above ground masks that level and every level
 //! above it; a missing surface value, or a surface above the top level, masks the column.
-//! The two paths differ only by rounding in the last bits of `f64`, far below a millimetre;
+//! A cycle without surface fields started at its lowest level is computed with a surface
+//! lying exactly on that level, which is the column path's anchor at a level's height
+//! ([`crate::physics::column::ColumnAnchor::LevelHeight`] at level 0). The two paths differ only by rounding in the last bits of `f64`, far below a millimetre;
 //! `tests/kernel.rs` checks them against each other column by column.
 
 use ndarray::{
