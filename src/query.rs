@@ -124,10 +124,7 @@ impl LoadedCycle {
         let started = Instant::now();
         let config = served_config(compute);
         let (cycle, heights, pending) = read_for_serving(path, ingest, &config)?;
-        let id = path
-            .file_name()
-            .map(|n| n.to_string_lossy().into_owned())
-            .unwrap_or_else(|| path.display().to_string());
+        let id = crate::store::cycle_id(path);
         let bytes = held_bytes(&cycle);
         Ok(Self {
             id,

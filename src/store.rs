@@ -98,6 +98,13 @@ pub struct CycleStore {
     changes: tokio::sync::watch::Sender<u64>,
 }
 
+/// The id of the cycle a file holds: its file name (the whole path where it has none).
+pub fn cycle_id(path: &Path) -> String {
+    path.file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| path.display().to_string())
+}
+
 /// Newest reference time first; no reference time last; then the newest load first.
 fn newest_first(a: &LoadedCycle, b: &LoadedCycle) -> Ordering {
     match (a.reference_time_unix_s(), b.reference_time_unix_s()) {
@@ -227,7 +234,7 @@ impl CycleStore {
         (reference < oldest_kept).then(|| {
             format!(
                 "'{}' ({}) was not read: only the newest {keep} cycles are kept and it is older than those",
-                path.display(),
+                cycle_id(path),
                 reference_time.unwrap_or_default()
             )
         })
@@ -236,10 +243,7 @@ impl CycleStore {
     /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,
     /// so that the catalogue says why it is not served; clears a failure recorded for it.
     pub fn record_passed_over(&self, path: &Path, reason: String) {
-        let id = path
-            .file_name()
-            .map(|n| n.to_string_lossy().into_owned())
-            .unwrap_or_else(|| path.display().to_string());
+        let id = cycle_id(path);
         self.update(|s| {
             s.failures.retain(|f| f.path != path);
             s.evictions.insert(
@@ -377,7 +381,8 @@ mod tests {
             .passes_over(old, Some(&day(1)))
             .expect("full, and older than the oldest kept");
         assert!(
-            reason.contains("/data/old.nc") && reason.contains("newest 2"),
+            reason.starts_with("'old.nc' (2030-01-01T00:00:00Z) was not read")
+                && reason.contains("newest 2"),
             "{reason}"
         );
         // The oldest kept cycle's own time (the newer load would be kept), a later one, none.

@@ -736,13 +736,15 @@ async fn watch_folder(
     tracing::info!(
         data = %config.dir.display(),
         loaded = report.loaded.len(),
+        passed_over = report.passed_over.len(),
         failed = report.failed.len(),
         waiting = report.waiting.len(),
         "startup scan of the data folder done"
     );
     eprintln!(
-        "data folder scanned: {} loaded, {} failed, {} waiting",
+        "data folder scanned: {} loaded, {} passed over, {} failed, {} waiting",
         report.loaded.len(),
+        report.passed_over.len(),
         report.failed.len(),
         report.waiting.len()
     );
