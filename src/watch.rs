@@ -15,10 +15,16 @@
 //! - A file that changes after it was loaded is loaded again once it settles, replacing the
 //!   cycle of the same name; a file deleted from the folder stops being served.
 //!
+//! # Order
+//! Stable files are read one at a time, the newest modification time first, and the folder
+//! is listed again after each: a cycle delivered while a backlog is read (at start-up, after
+//! an outage) is served before the older files. With the store full of newer cycles, a file
+//! whose cycle is older than all of them is not read ([`CycleStore::passes_over`]).
+//!
 //! A file that fails to load is recorded in the store with its error and not retried until it
 //! changes; the cycles already served are untouched, and nothing here ends the process.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime};
@@ -98,6 +104,10 @@ struct Tracked {
     status: Status,
     /// Whether the "still growing" failure has been recorded for this wait.
     growth_reported: bool,
+    /// Whether this version of the file had a modification time at least the settle time
+    /// old when first seen: stable from the start (a file renamed into place, or there at
+    /// start-up).
+    old_when_seen: bool,
 }
 
 /// What the watcher remembers between scans.
@@ -167,8 +177,9 @@ fn list_folder(dir: &Path) -> std::io::Result<Vec<(PathBuf, Fingerprint)>> {
 }
 
 /// One pass over the folder: lists it, loads new or changed files that are stable (in
-/// `spawn_blocking`, one at a time, newest modification time first), records failures, and
-/// drops files that were deleted. Once the process is stopping
+/// `spawn_blocking`, one at a time, the newest modification time first, listing the folder
+/// again after each so that a file arriving or settling meanwhile takes its place in that
+/// order), records failures, and drops files that were deleted. Once the process is stopping
 /// ([`crate::netcdf_session::stop_reads`]) no further file is read: those left are reported
 /// as waiting.
 ///
@@ -182,17 +193,9 @@ pub async fn scan_once(
     compute: &ComputeConfig,
 ) -> ScanReport {
     let mut report = ScanReport::default();
-    let dir = config.dir.clone();
-    let listing = tokio::task::spawn_blocking(move || list_folder(&dir))
-        .await
-        .unwrap_or_else(|e| Err(std::io::Error::other(e.to_string())));
-    let listing = match listing {
+    let mut listing = match list(config).await {
         Ok(l) => l,
-        Err(e) => {
-            let message = format!(
-                "cannot list the data folder '{}': {e}",
-                config.dir.display()
-            );
+        Err(message) => {
             store.record_failure(&config.dir, message.clone());
             state.folder_failed = true;
             report.folder_error = Some(message);
@@ -204,67 +207,31 @@ pub async fn scan_once(
         state.folder_failed = false;
     }
 
-    let now = Instant::now();
-    let wall_now = SystemTime::now();
-    let mut ready: Vec<(PathBuf, Fingerprint)> = Vec::new();
-    for (path, fp) in &listing {
-        let tracked = state.files.entry(path.clone()).or_insert_with(|| Tracked {
-            fingerprint: *fp,
-            changed_at: now,
-            waiting_since: now,
-            status: Status::Waiting,
-            growth_reported: false,
-        });
-        let mut first_sight_of_this_version = tracked.changed_at == now;
-        if tracked.fingerprint != *fp {
-            tracked.fingerprint = *fp;
-            tracked.changed_at = now;
-            first_sight_of_this_version = true;
-            if tracked.status != Status::Waiting {
-                tracked.status = Status::Waiting;
-                tracked.waiting_since = now;
-                tracked.growth_reported = false;
-            }
-        }
-        if tracked.status != Status::Waiting {
-            continue;
-        }
-        let unchanged_for = now.duration_since(tracked.changed_at);
-        let old_mtime = first_sight_of_this_version
-            && fp
-                .modified
-                .and_then(|m| wall_now.duration_since(m).ok())
-                .is_some_and(|age| age >= config.settle);
-        if unchanged_for >= config.settle || old_mtime {
-            ready.push((path.clone(), *fp));
-        } else if now.duration_since(tracked.waiting_since) >= config.max_wait_for_growth
-            && !tracked.growth_reported
-        {
-            let message = format!(
-                "'{}' was still being written after {} s: it will be loaded once its size and modification time stay unchanged for {} s",
-                path.display(),
-                config.max_wait_for_growth.as_secs_f64(),
-                config.settle.as_secs_f64()
-            );
-            store.record_failure(path, message);
-            tracked.growth_reported = true;
-            report.still_growing.push(path.clone());
-        } else {
-            report.waiting.push(path.clone());
-        }
-    }
-
-    // Newest first, so that after an outage or at start-up the cycle forecasters want is
-    // served before the backlog behind it; each load waits for the one before.
-    sort_newest_first(&mut ready);
-    for (path, _) in ready {
+    // One file at a time, the newest ready one first, so that after an outage or at
+    // start-up the cycle forecasters want is served before the backlog behind it. The folder
+    // is listed again after each file: one that arrived or settled meanwhile is weighed with
+    // the rest, rather than waiting for the whole backlog (minutes, with big cycles).
+    let mut taken: HashSet<PathBuf> = HashSet::new();
+    loop {
+        let (ready, waiting) = survey(store, state, config, &listing, &mut report);
+        report.waiting = waiting;
+        // A file taken in this scan and still waiting (stopped, or written to while read)
+        // waits for the next.
+        let (again, mut ready): (Vec<_>, Vec<_>) =
+            ready.into_iter().partition(|(p, _)| taken.contains(p));
+        report.waiting.extend(again.into_iter().map(|(p, _)| p));
+        sort_newest_first(&mut ready);
+        let Some((path, _)) = ready.first().cloned() else {
+            break;
+        };
         if crate::netcdf_session::reads_stopped() {
             // The process is stopping: what is left is read at the next start.
-            report.waiting.push(path);
-            continue;
+            report.waiting.extend(ready.into_iter().map(|(p, _)| p));
+            break;
         }
+        taken.insert(path.clone());
         let Some(tracked) = state.files.get_mut(&path) else {
-            continue;
+            break;
         };
         if let Some(reason) = passed_over(store, &path, ingest).await {
             // As if loaded and evicted at once: read again only once the file changes.
@@ -272,12 +239,19 @@ pub async fn scan_once(
             store.record_passed_over(&path, reason);
             tracked.status = Status::Loaded;
             report.passed_over.push(path);
-            continue;
+        } else {
+            load_one(store, tracked, &path, ingest, compute, &mut report).await;
         }
-        load_one(store, tracked, &path, ingest, compute, &mut report).await;
+        match list(config).await {
+            Ok(l) => listing = l,
+            // The next scan reports it; the files not yet read wait for it.
+            Err(_) => break,
+        }
     }
+    report.waiting.sort();
+    report.waiting.dedup();
 
-    let present: std::collections::HashSet<&PathBuf> = listing.iter().map(|(p, _)| p).collect();
+    let present: HashSet<&PathBuf> = listing.iter().map(|(p, _)| p).collect();
     let mut gone: Vec<PathBuf> = state
         .files
         .keys()
@@ -292,6 +266,84 @@ pub async fn scan_once(
         report.removed.push(path);
     }
     report
+}
+
+/// The folder's cycle files with their fingerprints ([`list_folder`], off the runtime), or
+/// the sentence that says why it cannot be listed.
+async fn list(config: &WatchConfig) -> Result<Vec<(PathBuf, Fingerprint)>, String> {
+    let dir = config.dir.clone();
+    tokio::task::spawn_blocking(move || list_folder(&dir))
+        .await
+        .unwrap_or_else(|e| Err(std::io::Error::other(e.to_string())))
+        .map_err(|e| {
+            format!(
+                "cannot list the data folder '{}': {e}",
+                config.dir.display()
+            )
+        })
+}
+
+/// Brings the tracked files up to date with `listing` and sorts out those waiting to be
+/// loaded: the ones stable now (unchanged for the settle time, or first seen with a
+/// modification time at least that old), and the ones still waiting (in name order). A file
+/// still changing after the longest wait is reported once, here.
+#[allow(clippy::type_complexity)]
+fn survey(
+    store: &CycleStore,
+    state: &mut WatchState,
+    config: &WatchConfig,
+    listing: &[(PathBuf, Fingerprint)],
+    report: &mut ScanReport,
+) -> (Vec<(PathBuf, Fingerprint)>, Vec<PathBuf>) {
+    let now = Instant::now();
+    let wall_now = SystemTime::now();
+    let (mut ready, mut waiting) = (Vec::new(), Vec::new());
+    for (path, fp) in listing {
+        let old = fp
+            .modified
+            .and_then(|m| wall_now.duration_since(m).ok())
+            .is_some_and(|age| age >= config.settle);
+        let tracked = state.files.entry(path.clone()).or_insert_with(|| Tracked {
+            fingerprint: *fp,
+            changed_at: now,
+            waiting_since: now,
+            status: Status::Waiting,
+            growth_reported: false,
+            old_when_seen: old,
+        });
+        if tracked.fingerprint != *fp {
+            tracked.fingerprint = *fp;
+            tracked.changed_at = now;
+            tracked.old_when_seen = old;
+            if tracked.status != Status::Waiting {
+                tracked.status = Status::Waiting;
+                tracked.waiting_since = now;
+                tracked.growth_reported = false;
+            }
+        }
+        if tracked.status != Status::Waiting {
+            continue;
+        }
+        let unchanged_for = now.duration_since(tracked.changed_at);
+        if unchanged_for >= config.settle || tracked.old_when_seen {
+            ready.push((path.clone(), *fp));
+        } else if now.duration_since(tracked.waiting_since) >= config.max_wait_for_growth
+            && !tracked.growth_reported
+        {
+            let message = format!(
+                "'{}' was still being written after {} s: it will be loaded once its size and modification time stay unchanged for {} s",
+                path.display(),
+                config.max_wait_for_growth.as_secs_f64(),
+                config.settle.as_secs_f64()
+            );
+            store.record_failure(path, message);
+            tracked.growth_reported = true;
+            report.still_growing.push(path.clone());
+        } else {
+            waiting.push(path.clone());
+        }
+    }
+    (ready, waiting)
 }
 
 /// Orders files ready to load newest modification time first; files of the same time (or
@@ -348,6 +400,7 @@ async fn load_one(
             tracked.fingerprint = fp;
         }
         tracked.changed_at = Instant::now();
+        tracked.old_when_seen = false;
         report.waiting.push(path.to_path_buf());
         return;
     }

@@ -323,6 +323,58 @@ async fn a_backlog_is_loaded_newest_first() {
     assert_eq!(store.snapshot().cycles.len(), 4);
 }
 
+/// A file that arrives while a backlog is being read takes its place in the newest-first
+/// order within the same scan, rather than after the whole backlog (minutes with big
+/// cycles): the folder is listed again after each file. The new file is renamed into place
+/// once the first file of the backlog is served (the store's change), with a modification
+/// time older than the settle time so that it is stable at first sight; it must come before
+/// the oldest files of the backlog.
+#[tokio::test]
+async fn a_file_arriving_during_a_backlog_is_read_before_the_older_files() {
+    let tmp = tempfile::tempdir().unwrap();
+    let config = quick(tmp.path());
+    let store = CycleStore::new(StoreConfig::default());
+    let mut state = WatchState::new();
+    let bytes = fixture_bytes();
+    let now = SystemTime::now();
+    let put = move |dir: &Path, name: &str, minutes_old: u64, bytes: &[u8]| {
+        let partial = dir.join(format!("{name}.partial"));
+        std::fs::write(&partial, bytes).unwrap();
+        let f = std::fs::File::options().write(true).open(&partial).unwrap();
+        f.set_modified(now - Duration::from_secs(60 * minutes_old))
+            .unwrap();
+        std::fs::rename(&partial, dir.join(name)).unwrap();
+    };
+    for (name, minutes_old) in [
+        ("b1.nc", 60),
+        ("b2.nc", 120),
+        ("b3.nc", 180),
+        ("b4.nc", 240),
+    ] {
+        put(tmp.path(), name, minutes_old, &bytes);
+    }
+    let mut changes = store.on_change();
+    let dir = tmp.path().to_path_buf();
+    let arrival = tokio::spawn(async move {
+        changes.changed().await.expect("the first cycle is served");
+        put(&dir, "new.nc", 30, &bytes);
+    });
+    let r = scan(&store, &mut state, &config).await;
+    arrival.await.unwrap();
+    let names: Vec<String> = r
+        .loaded
+        .iter()
+        .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
+        .collect();
+    assert_eq!(names.len(), 5, "{names:?}");
+    assert_eq!(names[0], "b1.nc", "{names:?}");
+    let new_at = names
+        .iter()
+        .position(|n| n == "new.nc")
+        .expect("read in this scan");
+    assert!(new_at < 4, "after the whole backlog: {names:?}");
+}
+
 /// A good cycle file whose reference time is `reference` (`YYYY-MM-DD hh:mm:ss`, from the
 /// units of its time coordinate) and whose modification time is `hours_old` hours ago.
 fn cycle_file(dir: &Path, name: &str, reference: &str, hours_old: u64) -> PathBuf {
