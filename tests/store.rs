@@ -264,6 +264,25 @@ fn fixture_bytes() -> Vec<u8> {
     std::fs::read(path).unwrap()
 }
 
+/// An empty data folder watched with quick timings, and a store keeping `keep_newest` cycles.
+fn watched_folder(keep_newest: usize) -> (tempfile::TempDir, WatchConfig, CycleStore, WatchState) {
+    let tmp = tempfile::tempdir().unwrap();
+    let config = quick(tmp.path());
+    let store = CycleStore::new(StoreConfig {
+        keep_newest,
+        ..StoreConfig::default()
+    });
+    (tmp, config, store, WatchState::new())
+}
+
+/// The file names of `paths`, in order.
+fn file_names<'a>(paths: impl IntoIterator<Item = &'a PathBuf>) -> Vec<String> {
+    paths
+        .into_iter()
+        .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
+        .collect()
+}
+
 fn set_old_mtime(path: &Path) {
     let f = std::fs::File::options().write(true).open(path).unwrap();
     f.set_modified(SystemTime::now() - Duration::from_secs(30))
@@ -281,10 +300,7 @@ fn the_naming_convention_is_public() {
 /// older ones; files of the same time in reverse name order.
 #[tokio::test]
 async fn a_backlog_is_loaded_newest_first() {
-    let tmp = tempfile::tempdir().unwrap();
-    let config = quick(tmp.path());
-    let store = CycleStore::new(StoreConfig::default());
-    let mut state = WatchState::new();
+    let (tmp, config, store, mut state) = watched_folder(8);
     let bytes = fixture_bytes();
     let now = SystemTime::now();
     let hours_ago = |h: u64| now - Duration::from_secs(3600 * h);
@@ -307,18 +323,12 @@ async fn a_backlog_is_loaded_newest_first() {
         f.set_modified(modified).unwrap();
     }
     let r = scan(&store, &mut state, &config).await;
-    let names = |paths: Vec<&PathBuf>| -> Vec<String> {
-        paths
-            .iter()
-            .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
-            .collect()
-    };
     assert_eq!(
-        names(r.loaded.iter().collect()),
+        file_names(&r.loaded),
         ["a.nc", "c.nc", "e.nc", "d.nc"],
         "{r:?}"
     );
-    assert_eq!(names(r.failed.iter().map(|(p, _)| p).collect()), ["b.nc"]);
+    assert_eq!(file_names(r.failed.iter().map(|(p, _)| p)), ["b.nc"]);
     assert!(r.waiting.is_empty(), "{r:?}");
     assert_eq!(store.snapshot().cycles.len(), 4);
 }
@@ -331,10 +341,7 @@ async fn a_backlog_is_loaded_newest_first() {
 /// the oldest files of the backlog.
 #[tokio::test]
 async fn a_file_arriving_during_a_backlog_is_read_before_the_older_files() {
-    let tmp = tempfile::tempdir().unwrap();
-    let config = quick(tmp.path());
-    let store = CycleStore::new(StoreConfig::default());
-    let mut state = WatchState::new();
+    let (tmp, config, store, mut state) = watched_folder(8);
     let bytes = fixture_bytes();
     let now = SystemTime::now();
     let put = move |dir: &Path, name: &str, minutes_old: u64, bytes: &[u8]| {
@@ -361,11 +368,7 @@ async fn a_file_arriving_during_a_backlog_is_read_before_the_older_files() {
     });
     let r = scan(&store, &mut state, &config).await;
     arrival.await.unwrap();
-    let names: Vec<String> = r
-        .loaded
-        .iter()
-        .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
-        .collect();
+    let names = file_names(&r.loaded);
     assert_eq!(names.len(), 5, "{names:?}");
     assert_eq!(names[0], "b1.nc", "{names:?}");
     let new_at = names
@@ -397,13 +400,7 @@ fn cycle_file(dir: &Path, name: &str, reference: &str, hours_old: u64) -> PathBu
 /// and evicts the oldest.
 #[tokio::test]
 async fn a_file_older_than_the_cycles_kept_is_passed_over_unread() {
-    let tmp = tempfile::tempdir().unwrap();
-    let config = quick(tmp.path());
-    let store = CycleStore::new(StoreConfig {
-        keep_newest: 2,
-        ..StoreConfig::default()
-    });
-    let mut state = WatchState::new();
+    let (tmp, config, store, mut state) = watched_folder(2);
     let newest = cycle_file(tmp.path(), "n1.nc", "2030-01-12 00:00:00", 1);
     let second = cycle_file(tmp.path(), "n2.nc", "2030-01-11 00:00:00", 2);
     let old = cycle_file(tmp.path(), "old.nc", "2030-01-10 00:00:00", 3);
