@@ -234,14 +234,16 @@ pub async fn scan_once(
             break;
         };
         if let Some(reason) = passed_over(store, &path, ingest).await {
-            // As if loaded and evicted at once: read again only once the file changes.
+            // As if loaded and evicted at once: read again only once the file changes. A
+            // millisecond's work: no new listing after it (an archive of thousands of files
+            // would otherwise be listed once per file).
             tracing::info!(file = %path.display(), %reason, "cycle file passed over");
             store.record_passed_over(&path, reason);
             tracked.status = Status::Loaded;
             report.passed_over.push(path);
-        } else {
-            load_one(store, tracked, &path, ingest, compute, &mut report).await;
+            continue;
         }
+        load_one(store, tracked, &path, ingest, compute, &mut report).await;
         match list(config).await {
             Ok(l) => listing = l,
             // The next scan reports it; the files not yet read wait for it.
