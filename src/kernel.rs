@@ -39,12 +39,13 @@
 //! above it; a missing surface value, or a surface above the top level, masks the column.
 //! A cycle without surface fields started at its lowest level is computed with a surface
 //! lying exactly on that level, which is the column path's anchor at a level's height
-//! ([`crate::physics::column::ColumnAnchor::LevelHeight`] at level 0). The two paths differ only by rounding in the last bits of `f64`, far below a millimetre;
-//! `tests/kernel.rs` checks them against each other column by column.
+//! ([`crate::physics::column::ColumnAnchor::LevelHeight`] at level 0). The two paths differ
+//! only by rounding in the last bits of `f64`, far below a millimetre; `tests/kernel.rs`
+//! checks them against each other column by column.
 
 use ndarray::{
-    s, Array1, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2,
-    ArrayViewMut3, Axis,
+    s, Array4, Array5, ArrayView1, ArrayView2, ArrayView3, ArrayViewMut1, ArrayViewMut2,
+    ArrayViewMut3, Axis, ShapeBuilder,
 };
 use rayon::prelude::*;
 
@@ -688,13 +689,15 @@ pub enum LowestLevelHeight {
 enum Ground {
     /// The cycle's surface pressure and height.
     Surface,
-    /// The lowest level, as a surface lying exactly on it: its pressure along a row, and the
-    /// height along a row (`Everywhere`) or the file's own at that level (`FromFile`).
-    LowestLevel {
-        start: LowestLevelHeight,
-        pressure: Array1<f32>,
-        height: Option<Array1<f32>>,
-    },
+    /// The lowest level, as a surface lying exactly on it: its pressure, and the height the
+    /// same at every column (`Everywhere`, as the kernel reads it) or `None` for the file's
+    /// own at that level (`FromFile`).
+    LowestLevel { pressure: f32, height: Option<f32> },
+}
+
+/// `value` at every point of a `rows x cols` grid, without copies (both strides zero).
+fn everywhere(value: &f32, (rows, cols): (usize, usize)) -> Option<ArrayView2<'_, f32>> {
+    ArrayView2::from_shape((rows, cols).strides((0, 0)), std::slice::from_ref(value)).ok()
 }
 
 /// Surface of one column as the kernel sees it.
@@ -905,7 +908,7 @@ impl IsobaricKernel {
     /// order is checked by the caller. Relative humidity and dewpoint need a saturation
     /// formula, and are refused here: see [`IsobaricKernel::with_saturation`].
     pub fn new(cycle: &Cycle, layers: &[Layer]) -> Result<Self, NotApplicable> {
-        Self::prepare(cycle, layers, None)
+        Self::prepare(cycle, layers, None, None)
     }
 
     /// [`IsobaricKernel::new`], also for relative humidity and dewpoint: each level's row is
@@ -923,7 +926,7 @@ impl IsobaricKernel {
         formula: SaturationFormula,
         phase: RelativeHumidityPhase,
     ) -> Result<Self, NotApplicable> {
-        Self::prepare(cycle, layers, Some((formula, phase)))
+        Self::prepare(cycle, layers, Some((formula, phase)), None)
     }
 
     /// [`IsobaricKernel::with_saturation`] for a cycle without surface fields whose columns
@@ -945,18 +948,10 @@ impl IsobaricKernel {
         phase: RelativeHumidityPhase,
         start: LowestLevelHeight,
     ) -> Result<Self, NotApplicable> {
-        Self::prepare_from(cycle, layers, Some((formula, phase)), Some(start))
+        Self::prepare(cycle, layers, Some((formula, phase)), Some(start))
     }
 
     fn prepare(
-        cycle: &Cycle,
-        layers: &[Layer],
-        saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
-    ) -> Result<Self, NotApplicable> {
-        Self::prepare_from(cycle, layers, saturation, None)
-    }
-
-    fn prepare_from(
         cycle: &Cycle,
         layers: &[Layer],
         saturation: Option<(SaturationFormula, RelativeHumidityPhase)>,
@@ -1115,9 +1110,8 @@ impl IsobaricKernel {
                 layer.bottom_pa.max(layer.top_pa)
             )));
         }
-        let cols = cycle.grid.cols();
         let height = match start {
-            LowestLevelHeight::Everywhere(z) => Some(Array1::from_elem(cols, z as f32)),
+            LowestLevelHeight::Everywhere(z) => Some(z as f32),
             LowestLevelHeight::FromFile => {
                 let shape_ok = cycle
                     .file_heights
@@ -1130,8 +1124,7 @@ impl IsobaricKernel {
             }
         };
         Ok(Ground::LowestLevel {
-            start,
-            pressure: Array1::from_elem(cols, p0_f32),
+            pressure: p0_f32,
             height,
         })
     }
@@ -1154,18 +1147,15 @@ impl IsobaricKernel {
                     surface.height_m.slice(s![m, t, .., ..]),
                 ))
             }
-            Ground::LowestLevel {
-                pressure, height, ..
-            } => {
+            Ground::LowestLevel { pressure, height } => {
                 // The grid, not the temperature: a shell whose fields are still being read
                 // has an empty temperature.
-                let (rows, cols) = (cycle.grid.rows(), cycle.grid.cols());
-                let ps = pressure.broadcast((rows, cols))?;
+                let grid = (cycle.grid.rows(), cycle.grid.cols());
                 let zs = match height {
-                    Some(z) => z.broadcast((rows, cols))?,
+                    Some(z) => everywhere(z, grid)?,
                     None => cycle.file_heights.as_ref()?.slice(s![m, t, 0, .., ..]),
                 };
-                Some((ps, zs))
+                Some((everywhere(pressure, grid)?, zs))
             }
         }
     }
@@ -1253,11 +1243,16 @@ impl IsobaricKernel {
 
     /// Refuses a cycle other than the one the kernel was prepared for.
     fn check_cycle(&self, cycle: &Cycle) -> Result<(), NotApplicable> {
+        // The start this kernel was prepared with (an `f32` height reads back exactly).
         let start = match &self.ground {
             Ground::Surface => None,
-            Ground::LowestLevel { start, .. } => Some(*start),
+            Ground::LowestLevel { height, .. } => {
+                Some(height.map_or(LowestLevelHeight::FromFile, |z| {
+                    LowestLevelHeight::Everywhere(f64::from(z))
+                }))
+            }
         };
-        let fresh = Self::prepare_from(cycle, &[], self.saturation, start)?;
+        let fresh = Self::prepare(cycle, &[], self.saturation, start)?;
         if fresh.levels != self.levels || fresh.moisture != self.moisture {
             return Err(NotApplicable::OtherCycle {
                 file: cycle.source.display().to_string(),
