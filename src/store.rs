@@ -225,12 +225,8 @@ impl CycleStore {
     /// (a new version of it).
     pub fn passes_over(&self, path: &Path, reference_time: Option<&str>) -> Option<String> {
         let reference = reference_time.and_then(parse_date_time)?;
-        let s = self.snapshot();
+        let oldest_kept = self.oldest_kept_when_full(path)?;
         let keep = self.config.keep_newest.max(1);
-        if s.cycles.len() < keep || s.cycles.iter().any(|c| c.path == path) {
-            return None;
-        }
-        let oldest_kept = s.cycles.last()?.reference_time_unix_s()?;
         (reference < oldest_kept).then(|| {
             format!(
                 "'{}' ({}) was not read: only the newest {keep} cycles are kept and it is older than those",
@@ -238,6 +234,25 @@ impl CycleStore {
                 reference_time.unwrap_or_default()
             )
         })
+    }
+
+    /// Whether the file at `path` could be passed over at all ([`Self::passes_over`]), before
+    /// its reference time is known: the store is full, no served cycle came from it, and the
+    /// oldest cycle kept has a reference time. Where not, there is no need to learn it.
+    pub fn could_pass_over(&self, path: &Path) -> bool {
+        self.oldest_kept_when_full(path).is_some()
+    }
+
+    /// The reference time (Unix seconds) of the oldest cycle kept, when the store holds
+    /// `keep_newest` cycles and none came from `path`.
+    fn oldest_kept_when_full(&self, path: &Path) -> Option<i64> {
+        let s = self.snapshot();
+        if s.cycles.len() < self.config.keep_newest.max(1)
+            || s.cycles.iter().any(|c| c.path == path)
+        {
+            return None;
+        }
+        s.cycles.last()?.reference_time_unix_s()
     }
 
     /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,

@@ -357,10 +357,11 @@ fn sort_newest_first(files: &mut [(PathBuf, Fingerprint)]) {
 
 /// Why a file need not be read, when the store is full of newer cycles
 /// ([`CycleStore::passes_over`]): its reference time is peeked from its metadata first (a
-/// few milliseconds), only when the store is full. A file whose metadata cannot be read is
-/// not passed over: its load reports the error.
+/// few milliseconds), only where the store could pass it over
+/// ([`CycleStore::could_pass_over`]). A file whose metadata cannot be read is not passed
+/// over: its load reports the error.
 async fn passed_over(store: &CycleStore, path: &Path, ingest: &IngestConfig) -> Option<String> {
-    if store.snapshot().cycles.len() < store.config().keep_newest.max(1) {
+    if !store.could_pass_over(path) {
         return None;
     }
     let (p, i) = (path.to_path_buf(), ingest.clone());
