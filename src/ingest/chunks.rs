@@ -251,15 +251,19 @@ impl StepChunks {
             .chunks
             .get(index)
             .ok_or_else(|| self.error(format!("no chunk {index}")))?;
-        let size = usize::try_from(chunk.size)
-            .map_err(|_| self.error(format!("chunk at byte {} is too large", chunk.addr)))?;
-        packed.resize(size, 0);
-        self.file.read_exact_at(packed, chunk.addr).map_err(|e| {
+        let chunk_error = |what: String| {
             self.error(format!(
-                "reading the chunk of {size} bytes at byte {}: {e}",
-                chunk.addr
+                "the chunk at byte {} ({}) {what}",
+                chunk.addr,
+                self.place(index)
             ))
-        })?;
+        };
+        let size = usize::try_from(chunk.size)
+            .map_err(|_| chunk_error(format!("is too large ({} bytes)", chunk.size)))?;
+        packed.resize(size, 0);
+        self.file
+            .read_exact_at(packed, chunk.addr)
+            .map_err(|e| chunk_error(format!("cannot be read ({size} bytes): {e}")))?;
         let applied = |filter: Option<usize>| {
             filter.is_some_and(|i| i >= 32 || chunk.filter_mask & (1 << i) == 0)
         };
@@ -269,19 +273,25 @@ impl StepChunks {
             let n = inflater
                 .zlib_decompress(packed, inflated)
                 .map_err(|status| {
-                    self.error(format!(
-                        "the chunk at byte {} does not inflate ({status:?})",
-                        chunk.addr
-                    ))
+                    chunk_error(match status {
+                        libdeflater::DecompressionError::BadData => {
+                            "does not inflate: its compressed bytes are damaged".to_string()
+                        }
+                        libdeflater::DecompressionError::InsufficientSpace => {
+                            format!(
+                                "inflates to more than the chunk's {bytes} bytes: its \
+                                 compressed bytes are damaged"
+                            )
+                        }
+                    })
                 })?;
             &inflated[..n]
         } else {
             packed
         };
         if data.len() != bytes {
-            return Err(self.error(format!(
-                "the chunk at byte {} holds {} bytes, not {bytes}",
-                chunk.addr,
+            return Err(chunk_error(format!(
+                "holds {} bytes, not {bytes}",
                 data.len()
             )));
         }
@@ -301,6 +311,48 @@ impl StepChunks {
             }
         }
         Ok(())
+    }
+
+    /// Where chunk `index` lies, for errors: its step and level indices (file order, from
+    /// 0), and its rows and columns where it holds less than whole planes.
+    fn place(&self, index: usize) -> String {
+        let [members, times, levels, rows, cols] = self.shape;
+        let [kb, yb, xb] = self.across;
+        let [tk, ty, tx] = self.tile;
+        let (x, rest) = (index % xb.max(1), index / xb.max(1));
+        let (y, rest) = (rest % yb.max(1), rest / yb.max(1));
+        let (k, step) = (rest % kb.max(1), rest / kb.max(1));
+        let (member, time) = (step / times.max(1), step % times.max(1));
+        let span = |start: usize, len: usize, end: usize| {
+            let last = (start + len).min(end) - 1;
+            if last == start {
+                format!("{start}")
+            } else {
+                format!("{start} to {last}")
+            }
+        };
+        let mut place = String::new();
+        if members > 1 {
+            place.push_str(&format!("member {member}, "));
+        }
+        place.push_str(&format!(
+            "time index {time}, level index {} in file order",
+            span(k * tk, tk, levels)
+        ));
+        if yb > 1 || xb > 1 {
+            place.push_str(&format!(
+                ", rows {}, columns {}",
+                span(y * ty, ty, rows),
+                span(x * tx, tx, cols)
+            ));
+        }
+        place
+    }
+
+    /// The stored chunks, in the order of [`StepChunks::read_step`]'s index.
+    #[cfg(test)]
+    pub(crate) fn stored(&self) -> &[StoredChunk] {
+        &self.chunks
     }
 
     fn error(&self, detail: String) -> IngestError {
@@ -494,5 +546,50 @@ mod tests {
             message.contains("f.nc") && message.contains("'t'"),
             "{message}"
         );
+        // It also says which chunk: its byte offset, step and level.
+        let place = format!(
+            "chunk at byte {} (time index 0, level index 1 in file order)",
+            chunk.addr
+        );
+        assert!(
+            message.contains(&place) && message.contains("damaged"),
+            "{message}"
+        );
+    }
+
+    /// A chunk's place in an error counts member, time, level, row and column from the
+    /// chunk's index, and gives rows and columns only for tiles of planes.
+    #[test]
+    fn a_chunk_is_placed_by_member_time_levels_and_tile() {
+        let _session = crate::netcdf_session::lock();
+        let dir = tempfile::tempdir().expect("tempdir");
+        let path = dir.path().join("p.nc");
+        let (shape, chunks) = ([2usize, 3, 5, 6, 8], [1usize, 1, 2, 4, 5]);
+        fixture(&path, &shape, &chunks, None);
+        let var = variable([2, 3, 5, 6, 8], [true; 5], &chunks);
+        let own = File::open(&path).expect("open");
+        let plan = StepChunks::plan(&path, &own, &var).expect("plan");
+        assert_eq!(plan.across, [3, 2, 2]);
+        // Member 1, time 2 (step 5), the short last level block, the second row and column
+        // tiles (rows 4-5 of 6, columns 5-7 of 8).
+        assert_eq!(
+            plan.place(((5 * 3 + 2) * 2 + 1) * 2 + 1),
+            "member 1, time index 2, level index 4 in file order, rows 4 to 5, columns 5 to 7"
+        );
+        assert_eq!(
+            plan.place(0),
+            "member 0, time index 0, level index 0 to 1 in file order, rows 0 to 3, columns 0 to 4"
+        );
+        // Whole planes without a member axis: no member, rows or columns.
+        let path = dir.path().join("q.nc");
+        fixture(&path, &[2, 3, 6, 8], &[1, 1, 6, 8], None);
+        let var = variable(
+            [1, 2, 3, 6, 8],
+            [false, true, true, true, true],
+            &[1, 1, 6, 8],
+        );
+        let own = File::open(&path).expect("open");
+        let plan = StepChunks::plan(&path, &own, &var).expect("plan");
+        assert_eq!(plan.place(5), "time index 1, level index 2 in file order");
     }
 }

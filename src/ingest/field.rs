@@ -495,6 +495,36 @@ fn read_error(file: &str, var: &Variable<'_>, e: netcdf::Error) -> IngestError {
     }
 }
 
+/// What [`StepwiseField::read_planned`] did with a step.
+enum Planned {
+    /// Read it by the chunk plan.
+    Read,
+    /// Read nothing: the library reads the step. `failed` is the planned read's own error
+    /// where it failed (a damaged chunk there names its step, levels and byte offset, which
+    /// the library's message does not), told with the library's should that fail too.
+    ToLibrary { failed: Option<IngestError> },
+}
+
+/// The library's read error `library`, with the planned read's `planned` of the same step
+/// before it where that failed as well.
+fn with_planned_error(library: IngestError, planned: Option<IngestError>) -> IngestError {
+    match (library, planned) {
+        (
+            IngestError::Read {
+                file,
+                variable,
+                detail,
+            },
+            Some(IngestError::Read { detail: ours, .. }),
+        ) => IngestError::Read {
+            file,
+            variable,
+            detail: format!("{ours}; the NetCDF library: {detail}"),
+        },
+        (library, _) => library,
+    }
+}
+
 /// A variable read and decoded in file order.
 struct Decoded {
     /// The variable's shape in the file.
@@ -927,14 +957,15 @@ impl<'f> StepwiseField<'f> {
             .collect();
         let limits = self.check.as_ref().map(Limits::of);
         let bad = match self.read_planned((member, time), out)? {
-            true => self.decoder.decode_narrow_in_pieces(out, limits),
-            false => read_narrow_in_bands(
+            Planned::Read => self.decoder.decode_narrow_in_pieces(out, limits),
+            Planned::ToLibrary { failed } => read_narrow_in_bands(
                 (file, &self.var, &self.file_shape),
                 &fixed,
                 (&self.decoder, limits),
                 BAND_VALUES,
                 out,
-            )?,
+            )
+            .map_err(|e| with_planned_error(e, failed))?,
         };
         if let Some(i) = bad {
             // File order is canonical order here, steps first.
@@ -987,9 +1018,13 @@ impl<'f> StepwiseField<'f> {
                 ),
             });
         }
-        if rows == (0..y) && self.read_planned((member, time), out)? {
-            return Ok(());
-        }
+        let failed = match rows == (0..y) {
+            true => match self.read_planned((member, time), out)? {
+                Planned::Read => return Ok(()),
+                Planned::ToLibrary { failed } => failed,
+            },
+            false => None,
+        };
         let mut extents: Vec<Extent> = Vec::with_capacity(5);
         for (axis, i) in [(self.axes[0], member), (self.axes[1], time)] {
             if axis.is_some() {
@@ -1007,7 +1042,7 @@ impl<'f> StepwiseField<'f> {
         }
         self.var
             .get_values_into::<f32, _>(out, extents)
-            .map_err(|e| read_error(file, &self.var, e))
+            .map_err(|e| with_planned_error(read_error(file, &self.var, e), failed))
     }
 
     /// Plans whole-step reads chunk by chunk without the library ([`super::chunks`]) for a
@@ -1055,22 +1090,24 @@ impl<'f> StepwiseField<'f> {
     }
 
     /// Reads `step` as stored into `out` (`[level, lat, lon]`, file order) by the planned
-    /// chunk reads, and says so; `false` (nothing read) where there is no plan or it did not
-    /// agree with the library. The caller holds the NetCDF session.
+    /// chunk reads, and says so; [`Planned::ToLibrary`] (nothing read) where there is no plan
+    /// or it did not agree with the library. The caller holds the NetCDF session.
     ///
     /// The first step read checks the plan: the library reads that step's first chunk on
     /// this thread while the planned read of the whole step runs on the others, and the two
     /// must agree bit for bit, or the plan is dropped and this step and every later one go
-    /// through the library. Checked before any read instead, each field's first chunk read
+    /// through the library (where the library cannot read that chunk either, the plan is
+    /// left unjudged until the next step read). Checked before any read instead, each field's first chunk read
     /// both ways, one field after the other, came before everything else: 17 ms of the 0.5°
     /// zlib-1 batch's 96 ms (medians of 15 alternate runs).
-    fn read_planned(&self, step: (usize, usize), out: &mut [f32]) -> Result<bool, IngestError> {
+    fn read_planned(&self, step: (usize, usize), out: &mut [f32]) -> Result<Planned, IngestError> {
+        let library_reads = Planned::ToLibrary { failed: None };
         let Some(chunks) = &self.chunks else {
-            return Ok(false);
+            return Ok(library_reads);
         };
         match self.plan_agrees.get() {
-            Some(true) => return chunks.read_step(step, out).map(|()| true),
-            Some(false) => return Ok(false),
+            Some(true) => return chunks.read_step(step, out).map(|()| Planned::Read),
+            Some(false) => return Ok(library_reads),
             None => {}
         }
         let [lz, ly, lx] = chunks.first_chunk_extent();
@@ -1088,16 +1125,20 @@ impl<'f> StepwiseField<'f> {
         }
         let mut by_library = vec![0f32; lz * ly * lx];
         let (library_read, planned_read) = std::thread::scope(|scope| {
-            let planned = scope.spawn(|| chunks.read_step(step, out).is_ok());
+            let planned = scope.spawn(|| chunks.read_step(step, out));
             let library = self
                 .var
                 .get_values_into::<f32, _>(&mut by_library, extents)
                 .is_ok();
-            (library, planned.join().unwrap_or(false))
+            (library, planned.join())
         });
+        let planned_read = match planned_read {
+            Ok(read) => read,
+            Err(panic) => std::panic::resume_unwind(panic),
+        };
         let [_, _, _, y, x] = self.shape;
         let agrees = library_read
-            && planned_read
+            && planned_read.is_ok()
             && by_library
                 .chunks_exact(lx.max(1))
                 .enumerate()
@@ -1109,9 +1150,21 @@ impl<'f> StepwiseField<'f> {
                         .zip(want)
                         .all(|(a, b)| a.to_bits() == b.to_bits())
                 });
+        if !library_read {
+            // The library cannot read the first chunk (the file is damaged there): nothing to
+            // judge the plan by. The library reads the step (and says what it finds), and the
+            // next step read checks the plan again.
+            return Ok(Planned::ToLibrary {
+                failed: planned_read.err(),
+            });
+        }
         // Only the thread holding the session sets it: the first value stands.
-        let agrees = *self.plan_agrees.get_or_init(|| agrees);
-        Ok(agrees)
+        match *self.plan_agrees.get_or_init(|| agrees) {
+            true => Ok(Planned::Read),
+            false => Ok(Planned::ToLibrary {
+                failed: planned_read.err(),
+            }),
+        }
     }
 
     /// What makes a band read by [`StepwiseField::read_rows_raw`] SI values, bottom-up.
@@ -1593,6 +1646,100 @@ mod tests {
                 }
                 assert_eq!(field.plan_agrees.get(), Some(&!swapped), "{}", field.name());
             }
+        }
+    }
+
+    /// A damaged chunk is reported with its step, level and byte offset: in the first step
+    /// read (where the library then reads the step, and fails too) beside the library's
+    /// message, and in a later step once the plan agreed, alone.
+    #[test]
+    fn a_damaged_chunk_names_its_place_in_the_first_and_later_steps() {
+        let _session = crate::netcdf_session::lock();
+        let dir = tempfile::tempdir().expect("tempdir");
+        let path = dir.path().join("two.nc");
+        two_compressed_fields(&path);
+        crate::hdf5::quiet_on_this_thread();
+        let own = std::fs::File::open(&path).expect("own");
+        fn planned<'f>(
+            file: &'f netcdf::File,
+            name: &str,
+            path: &std::path::Path,
+            own: &std::fs::File,
+        ) -> StepwiseField<'f> {
+            let var = file.variable(name).expect("variable");
+            let req = FieldRequest {
+                file: "two.nc",
+                var: &var,
+                axes: [None, Some(0), Some(1), Some(2), Some(3)],
+                reverse_levels: false,
+                to_si: Linear {
+                    scale: 1.0,
+                    offset: 0.0,
+                },
+                check: None,
+            };
+            let mut field = StepwiseField::plan(&req).expect("plan").expect("stepwise");
+            field.plan_chunk_reads(path, Some(own), "two.nc");
+            field
+        }
+        // One chunk per step: `t`'s second step and `u`'s first.
+        let damaged = {
+            let file = netcdf::open(&path).expect("open");
+            let [t, u] = [
+                planned(&file, "t", &path, &own),
+                planned(&file, "u", &path, &own),
+            ];
+            let at = |field: &StepwiseField<'_>, i: usize| {
+                field.chunks.as_ref().expect("planned").stored()[i].clone()
+            };
+            [at(&t, 1), at(&u, 0)]
+        };
+        use std::os::unix::fs::FileExt;
+        let writer = std::fs::OpenOptions::new()
+            .write(true)
+            .open(&path)
+            .expect("open");
+        for chunk in &damaged {
+            writer
+                .write_all_at(&[0xA5; 64], chunk.addr + chunk.size / 3)
+                .expect("damage");
+        }
+        let file = netcdf::open(&path).expect("open");
+        let [t, u] = [
+            planned(&file, "t", &path, &own),
+            planned(&file, "u", &path, &own),
+        ];
+        let mut out = vec![0f32; 60];
+        t.read_step("two.nc", 0, 0, &mut out)
+            .expect("the first step is whole");
+        assert_eq!(t.plan_agrees.get(), Some(&true));
+        let later = t
+            .read_step("two.nc", 0, 1, &mut out)
+            .expect_err("damaged")
+            .to_string();
+        let place = |chunk: &crate::hdf5::StoredChunk, time: usize| {
+            format!(
+                "chunk at byte {} (time index {time}, level index 0 to 2 in file order)",
+                chunk.addr
+            )
+        };
+        assert!(
+            later.contains("'t' in 'two.nc'")
+                && later.contains(&place(&damaged[0], 1))
+                && !later.contains("NetCDF library"),
+            "{later}"
+        );
+        for first in [
+            u.read_step("two.nc", 0, 0, &mut out),
+            u.read_rows_raw("two.nc", (0, 0), 0..4, &mut out),
+        ] {
+            let first = first.expect_err("damaged").to_string();
+            assert!(
+                first.contains("'u' in 'two.nc'")
+                    && first.contains(&place(&damaged[1], 0))
+                    && first.contains("; the NetCDF library: "),
+                "{first}"
+            );
         }
     }
 
