@@ -230,6 +230,13 @@ fn served_config(compute: &ComputeConfig) -> ComputeConfig {
     }
 }
 
+/// The least [`held_bytes`] of a cycle whose temperature holds `point_levels` values: the
+/// temperature, and a height and a flag per point-level (humidity, surface fields and the
+/// file's heights only add to it).
+pub(crate) fn least_held_bytes(point_levels: usize) -> usize {
+    point_levels.saturating_mul(2 * std::mem::size_of::<f32>() + 1)
+}
+
 /// Bytes held by the fields of a cycle and its heights on every level (an `f32` height and
 /// a `u8` flag per point-level), once all computed.
 pub(crate) fn held_bytes(cycle: &Cycle) -> usize {

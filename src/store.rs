@@ -117,6 +117,15 @@ fn newest_first(a: &LoadedCycle, b: &LoadedCycle) -> Ordering {
     .then_with(|| a.id.cmp(&b.id))
 }
 
+/// The reference time (Unix seconds) of the oldest cycle `s` holds, when it holds one with a
+/// reference time and none came from `path`.
+fn oldest_held(s: &Snapshot, path: &Path) -> Option<i64> {
+    if s.cycles.iter().any(|c| c.path == path) {
+        return None;
+    }
+    s.cycles.last()?.reference_time_unix_s()
+}
+
 fn reference_label(c: &LoadedCycle) -> String {
     c.cycle
         .reference_time
@@ -219,40 +228,48 @@ impl CycleStore {
     }
 
     /// Why a file whose cycle has this reference time need not be read, when [`Self::insert`]
-    /// would evict it at once: the store holds `keep_newest` cycles, all with a later
-    /// reference time. `None` (read it) when there is room, for a cycle without a reference
-    /// time (or a store whose oldest cycle has none), and for a file a served cycle came from
-    /// (a new version of it).
-    pub fn passes_over(&self, path: &Path, reference_time: Option<&str>) -> Option<String> {
+    /// would evict it at once: its reference time is earlier than every cycle held, and
+    /// either the store holds `keep_newest` cycles or the cycles held and the new one's
+    /// `least_bytes` (a lower bound of its [`LoadedCycle::bytes`]) exceed the memory budget.
+    /// `None` (read it) otherwise, for a cycle without a reference time (or a store whose
+    /// oldest cycle has none), and for a file a served cycle came from (a new version of it).
+    pub fn passes_over(
+        &self,
+        path: &Path,
+        reference_time: Option<&str>,
+        least_bytes: usize,
+    ) -> Option<String> {
         let reference = reference_time.and_then(parse_date_time)?;
-        let oldest_kept = self.oldest_kept_when_full(path)?;
+        let s = self.snapshot();
+        if reference >= oldest_held(&s, path)? {
+            return None;
+        }
+        let file = format!(
+            "'{}' ({}) was not read",
+            cycle_id(path),
+            reference_time.unwrap_or_default()
+        );
         let keep = self.config.keep_newest.max(1);
-        (reference < oldest_kept).then(|| {
+        if s.cycles.len() >= keep {
+            return Some(format!(
+                "{file}: only the newest {keep} cycles are kept and it is older than those"
+            ));
+        }
+        let (held, budget) = (s.bytes(), self.config.memory_budget_bytes);
+        (held.saturating_add(least_bytes) > budget).then(|| {
             format!(
-                "'{}' ({}) was not read: only the newest {keep} cycles are kept and it is older than those",
-                cycle_id(path),
-                reference_time.unwrap_or_default()
+                "{file}: the cycles held {held} bytes and it needs at least {least_bytes} more, \
+                 over the memory budget of {budget} bytes, and it is older than those"
             )
         })
     }
 
     /// Whether the file at `path` could be passed over at all ([`Self::passes_over`]), before
-    /// its reference time is known: the store is full, no served cycle came from it, and the
-    /// oldest cycle kept has a reference time. Where not, there is no need to learn it.
+    /// its reference time and size are known: the store holds a cycle, none came from that
+    /// file, and the oldest held has a reference time. Where not, there is no need to learn
+    /// them.
     pub fn could_pass_over(&self, path: &Path) -> bool {
-        self.oldest_kept_when_full(path).is_some()
-    }
-
-    /// The reference time (Unix seconds) of the oldest cycle kept, when the store holds
-    /// `keep_newest` cycles and none came from `path`.
-    fn oldest_kept_when_full(&self, path: &Path) -> Option<i64> {
-        let s = self.snapshot();
-        if s.cycles.len() < self.config.keep_newest.max(1)
-            || s.cycles.iter().any(|c| c.path == path)
-        {
-            return None;
-        }
-        s.cycles.last()?.reference_time_unix_s()
+        oldest_held(&self.snapshot(), path).is_some()
     }
 
     /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,
@@ -390,10 +407,10 @@ mod tests {
         let old = Path::new("/data/old.nc");
         let day = |d: u32| format!("2030-01-{d:02}T00:00:00Z");
         store.insert(tiny("a.nc", Some(&day(3)), 2));
-        assert_eq!(store.passes_over(old, Some(&day(1))), None, "room left");
+        assert_eq!(store.passes_over(old, Some(&day(1)), 0), None, "room left");
         store.insert(tiny("b.nc", Some(&day(2)), 2));
         let reason = store
-            .passes_over(old, Some(&day(1)))
+            .passes_over(old, Some(&day(1)), 0)
             .expect("full, and older than the oldest kept");
         assert!(
             reason.starts_with("'old.nc' (2030-01-01T00:00:00Z) was not read")
@@ -402,11 +419,11 @@ mod tests {
         );
         // The oldest kept cycle's own time (the newer load would be kept), a later one, none.
         for read in [Some(day(2)), Some(day(5)), None] {
-            assert_eq!(store.passes_over(old, read.as_deref()), None, "{read:?}");
+            assert_eq!(store.passes_over(old, read.as_deref(), 0), None, "{read:?}");
         }
         // A new version of a served cycle's file is read whatever its time.
         assert_eq!(
-            store.passes_over(Path::new("/data/b.nc"), Some(&day(1))),
+            store.passes_over(Path::new("/data/b.nc"), Some(&day(1)), 0),
             None
         );
         store.record_failure(old, "bad".into());
@@ -426,7 +443,60 @@ mod tests {
             ..StoreConfig::default()
         });
         store.insert(tiny("c.nc", None, 2));
-        assert_eq!(store.passes_over(old, Some(&day(1))), None);
+        assert_eq!(store.passes_over(old, Some(&day(1)), 0), None);
+    }
+
+    /// Below `keep_newest`, a file older than every cycle held is passed over when the
+    /// cycles held and its least size exceed the memory budget, where [`CycleStore::insert`]
+    /// would evict it at once; not when it fits, nor when it is not the oldest.
+    #[test]
+    fn a_file_older_than_the_cycles_held_is_passed_over_beyond_the_memory_budget() {
+        let bytes = tiny("x.nc", None, 2).bytes;
+        // The lower bound the watcher gives is exact for a cycle of temperature alone.
+        let point_levels = tiny("x.nc", None, 2).cycle.temperature.len();
+        assert_eq!(crate::query::least_held_bytes(point_levels), bytes);
+        let store = CycleStore::new(StoreConfig {
+            keep_newest: 8,
+            memory_budget_bytes: 2 * bytes + bytes / 2,
+        });
+        let old = Path::new("/data/old.nc");
+        let day = |d: u32| format!("2030-01-{d:02}T00:00:00Z");
+        assert!(!store.could_pass_over(old), "nothing held");
+        store.insert(tiny("a.nc", Some(&day(3)), 2));
+        store.insert(tiny("b.nc", Some(&day(2)), 2));
+        assert!(store.could_pass_over(old));
+        assert_eq!(
+            store.passes_over(old, Some(&day(1)), bytes / 2),
+            None,
+            "fits"
+        );
+        let reason = store
+            .passes_over(old, Some(&day(1)), bytes)
+            .expect("over the budget, and older than the cycles held");
+        assert!(
+            reason.starts_with("'old.nc' (2030-01-01T00:00:00Z) was not read")
+                && reason.contains(&format!("the cycles held {} bytes", 2 * bytes))
+                && reason.contains(&format!("memory budget of {} bytes", 2 * bytes + bytes / 2)),
+            "{reason}"
+        );
+        // Not the oldest (the oldest held's own time, a later one), or no reference time.
+        for read in [Some(day(2)), Some(day(5)), None] {
+            assert_eq!(
+                store.passes_over(old, read.as_deref(), bytes),
+                None,
+                "{read:?}"
+            );
+        }
+        // What the store does with such a cycle once read: it is evicted at once.
+        store.insert(tiny("old.nc", Some(&day(1)), 2));
+        let s = store.snapshot();
+        let ids: Vec<&str> = s.cycles.iter().map(|c| c.id.as_str()).collect();
+        assert_eq!(ids, ["a.nc", "b.nc"]);
+        assert!(
+            s.evictions[0].reason.contains("memory budget"),
+            "{:?}",
+            s.evictions
+        );
     }
 
     #[test]

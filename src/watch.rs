@@ -18,8 +18,9 @@
 //! # Order
 //! Stable files are read one at a time, the newest modification time first, and the folder
 //! is listed again after each: a cycle delivered while a backlog is read (at start-up, after
-//! an outage) is served before the older files. With the store full of newer cycles, a file
-//! whose cycle is older than all of them is not read ([`CycleStore::passes_over`]).
+//! an outage) is served before the older files. A file whose cycle is older than all those
+//! served is not read where loading it would evict it at once, beyond `keep_newest` cycles
+//! or the memory budget ([`CycleStore::passes_over`]).
 //!
 //! A file that fails to load is recorded in the store with its error and not retried until it
 //! changes; the cycles already served are untouched, and nothing here ends the process.
@@ -355,21 +356,22 @@ fn sort_newest_first(files: &mut [(PathBuf, Fingerprint)]) {
     files.sort_by(|a, b| b.1.modified.cmp(&a.1.modified).then_with(|| b.0.cmp(&a.0)));
 }
 
-/// Why a file need not be read, when the store is full of newer cycles
-/// ([`CycleStore::passes_over`]): its reference time is peeked from its metadata first (a
-/// few milliseconds), only where the store could pass it over
-/// ([`CycleStore::could_pass_over`]). A file whose metadata cannot be read is not passed
-/// over: its load reports the error.
+/// Why a file need not be read, when its cycle would be evicted at once as older than those
+/// served, beyond `keep_newest` cycles or the memory budget ([`CycleStore::passes_over`]):
+/// its reference time and size are peeked from its metadata first (a few milliseconds),
+/// only where the store could pass it over ([`CycleStore::could_pass_over`]). A file whose
+/// metadata cannot be read is not passed over: its load reports the error.
 async fn passed_over(store: &CycleStore, path: &Path, ingest: &IngestConfig) -> Option<String> {
     if !store.could_pass_over(path) {
         return None;
     }
     let (p, i) = (path.to_path_buf(), ingest.clone());
-    let reference = tokio::task::spawn_blocking(move || crate::ingest::read_reference_time(&p, &i))
+    let peek = tokio::task::spawn_blocking(move || crate::ingest::peek_cycle(&p, &i))
         .await
         .ok()?
         .ok()?;
-    store.passes_over(path, reference.as_deref())
+    let least_bytes = crate::query::least_held_bytes(peek.point_levels);
+    store.passes_over(path, peek.reference_time.as_deref(), least_bytes)
 }
 
 /// Loads one stable file into the store (or records why not).

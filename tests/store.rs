@@ -429,6 +429,40 @@ async fn a_file_older_than_the_cycles_kept_is_passed_over_unread() {
     assert_eq!(r, ScanReport::default());
 }
 
+/// The same below `keep_newest`, by the memory budget: with room for two cycles, a file
+/// older than both is not read (its load would evict it at once), while a late delivery of
+/// a newer cycle is read and evicts the oldest held.
+#[tokio::test]
+async fn a_file_older_than_the_cycles_held_is_passed_over_beyond_the_memory_budget() {
+    let tmp = tempfile::tempdir().unwrap();
+    let config = quick(tmp.path());
+    let newest = cycle_file(tmp.path(), "n1.nc", "2030-01-12 00:00:00", 1);
+    let one = LoadedCycle::read(&newest, &IngestConfig::default(), &ComputeConfig::default())
+        .unwrap()
+        .bytes;
+    let store = CycleStore::new(StoreConfig {
+        keep_newest: 8,
+        memory_budget_bytes: 2 * one + one / 2,
+    });
+    let mut state = WatchState::new();
+    let second = cycle_file(tmp.path(), "n2.nc", "2030-01-11 00:00:00", 2);
+    let old = cycle_file(tmp.path(), "old.nc", "2030-01-10 00:00:00", 3);
+    let late = cycle_file(tmp.path(), "late.nc", "2030-01-11 12:00:00", 4);
+    let r = scan(&store, &mut state, &config).await;
+    assert_eq!(r.loaded, [newest, second, late], "{r:?}");
+    assert_eq!(r.passed_over, [old], "{r:?}");
+    assert_eq!(ids(&store), ["n1.nc", "late.nc"]);
+    let s = store.snapshot();
+    let evicted: Vec<&str> = s.evictions.iter().map(|e| e.id.as_str()).collect();
+    assert_eq!(evicted, ["n2.nc", "old.nc"]);
+    assert!(
+        s.evictions[1].reason.contains("was not read")
+            && s.evictions[1].reason.contains("memory budget"),
+        "{}",
+        s.evictions[1].reason
+    );
+}
+
 #[tokio::test]
 async fn a_new_file_is_loaded_once_it_has_settled_and_a_deleted_one_is_dropped() {
     let tmp = tempfile::tempdir().unwrap();

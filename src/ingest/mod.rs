@@ -281,18 +281,29 @@ pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestErr
     reader::Reader::new(&file, label, config).read(path)
 }
 
-/// The reference time of the cycle in a NetCDF file, found as [`read_cycle`] finds it (RFC
-/// 3339 UTC; `None` for a file without one), reading its metadata and time coordinates only:
-/// milliseconds for a file of any size. For a watcher deciding whether a file is worth
-/// reading at all.
-pub fn read_reference_time(
-    path: &Path,
-    config: &IngestConfig,
-) -> Result<Option<String>, IngestError> {
+/// What [`peek_cycle`] learns of a cycle file without reading its fields.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct CyclePeek {
+    /// The reference time, as [`read_cycle`] finds it (RFC 3339 UTC; `None` for a file
+    /// without one).
+    pub reference_time: Option<String>,
+    /// The temperature's point-levels (members × times × levels × latitudes × longitudes):
+    /// the cycle's `temperature` holds as many values once read.
+    pub point_levels: usize,
+}
+
+/// The reference time and size of the cycle in a NetCDF file, reading its metadata and time
+/// coordinates only: milliseconds for a file of any size. For a watcher deciding whether a
+/// file is worth reading at all.
+pub fn peek_cycle(path: &Path, config: &IngestConfig) -> Result<CyclePeek, IngestError> {
     let label = checked_label(path)?;
     let _session = crate::netcdf_session::lock();
     let file = open_quietly(path, &label)?;
-    reader::Reader::new(&file, label, config).reference_time()
+    let (reference_time, point_levels) = reader::Reader::new(&file, label, config).peek()?;
+    Ok(CyclePeek {
+        reference_time,
+        point_levels,
+    })
 }
 
 /// The file's label for messages, after the checks that must pass before the NetCDF library

@@ -466,10 +466,17 @@ impl<'f> Reader<'f> {
     }
 
     /// The reference time [`Self::read`] finds, from the metadata and time coordinates only.
-    pub(super) fn reference_time(&mut self) -> Result<Option<String>, IngestError> {
+    /// The reference time (as [`Reader::read`] finds it) and the temperature's point-levels
+    /// (members × times × levels × latitudes × longitudes), from metadata and time
+    /// coordinates only.
+    pub(super) fn peek(&mut self) -> Result<(Option<String>, usize), IngestError> {
         let t_var = self.find_temperature()?;
         let t_layout = self.layout(&t_var)?;
-        Ok(self.times(&t_layout)?.0)
+        let point_levels = [Axis::Member, Axis::Time, Axis::Level, Axis::Lat, Axis::Lon]
+            .into_iter()
+            .map(|axis| t_layout.len(axis))
+            .product();
+        Ok((self.times(&t_layout)?.0, point_levels))
     }
 
     pub(super) fn read(&mut self, path: &Path) -> Result<Cycle, IngestError> {
