@@ -439,8 +439,8 @@ fn kernel_step(
 }
 
 /// The kernel on one step's fields from row `from` on, into `buffer` (a one-step output of
-/// the kernel whose rows before `from` are already computed, or any when `from` is 0) or a
-/// fresh one sized from the fields.
+/// the kernel, from [`IsobaricKernel::outputs`], whose rows before `from` are already
+/// computed and the others not yet, see [`run_rows`]) or a fresh one sized from the fields.
 fn run_one_step(
     kernel: &IsobaricKernel,
     fields: StepFields<'_>,
@@ -457,8 +457,9 @@ fn run_one_step(
 }
 
 /// The kernel on the latitude rows `rows` of one step, into the same rows of `out` (a
-/// one-step output of the kernel): each column is computed on its own, so a step computed
-/// in pieces of rows is the step computed whole, bit for bit.
+/// one-step output of the kernel, from [`IsobaricKernel::outputs`], whose rows `rows` are
+/// not computed yet: their flags are still zero): each column is computed on its own, so a
+/// step computed in pieces of rows is the step computed whole, bit for bit.
 fn run_rows(
     kernel: &IsobaricKernel,
     fields: &StepFields<'_>,
@@ -487,7 +488,7 @@ fn run_rows(
             })
             .collect(),
     };
-    kernel.run_into(band, outputs)
+    kernel.run_into_zeroed(band, outputs)
 }
 
 /// The heights of a one-step output of the kernel, as a served cycle holds them.

@@ -770,6 +770,9 @@ struct RowOut<'o> {
     /// Heights and flags on every level, or `None` when only layers are wanted.
     z: Option<ArrayViewMut2<'o, f32>>,
     below: Option<ArrayViewMut2<'o, u8>>,
+    /// Whether `below` is known to hold zeros only (fresh from [`IsobaricKernel::outputs`]),
+    /// so that the levels no column is below ground at need not look at it.
+    below_zeroed: bool,
     thick: Vec<ArrayViewMut1<'o, f32>>,
     thick_below: Vec<ArrayViewMut1<'o, u8>>,
 }
@@ -1289,7 +1292,8 @@ impl IsobaricKernel {
                     )
                 });
                 let step_layers = step_thickness(thickness, (m, t));
-                self.step_into(&views, n_levels, step_heights, step_layers);
+                // Fresh from `outputs` (`run`, `run_layers`): zero until written.
+                self.step_into(&views, n_levels, step_heights, step_layers, true);
                 done += 1;
                 progress(done);
             }
@@ -1371,6 +1375,29 @@ impl IsobaricKernel {
         step: StepFields<'_>,
         out: StepOutputs<'_>,
     ) -> Result<(), NotApplicable> {
+        self.run_into_flags(step, out, false)
+    }
+
+    /// [`IsobaricKernel::run_into`] into outputs whose below-ground flags hold zeros only
+    /// (from [`IsobaricKernel::outputs`], the rows not computed yet): the flags of a level
+    /// where no column of a row is below ground are left as they are, unread (reading them
+    /// costs a page fault per page of a fresh allocation, a tenth of the kernel's time).
+    /// Flags set beforehand would stay set.
+    pub(crate) fn run_into_zeroed(
+        &self,
+        step: StepFields<'_>,
+        out: StepOutputs<'_>,
+    ) -> Result<(), NotApplicable> {
+        self.run_into_flags(step, out, true)
+    }
+
+    /// [`IsobaricKernel::run_into`], told whether the outputs' flags are known to be zero.
+    fn run_into_flags(
+        &self,
+        step: StepFields<'_>,
+        out: StepOutputs<'_>,
+        below_zeroed: bool,
+    ) -> Result<(), NotApplicable> {
         let (rows, cols) = step.ps.dim();
         let shape = |field: &'static str, found: &[usize], expected: Vec<usize>| {
             if found == expected.as_slice() {
@@ -1406,7 +1433,7 @@ impl IsobaricKernel {
             shape("thickness", below.shape(), vec![rows, cols])?;
         }
         let heights = Some((out.geopotential_height, out.below_ground));
-        self.step_into(&step, n, heights, out.thickness);
+        self.step_into(&step, n, heights, out.thickness, below_zeroed);
         Ok(())
     }
 
@@ -1418,6 +1445,7 @@ impl IsobaricKernel {
         n_levels: usize,
         heights: Option<(ArrayViewMut3<'_, f32>, ArrayViewMut3<'_, u8>)>,
         thickness: Vec<(ArrayViewMut2<'_, f32>, ArrayViewMut2<'_, u8>)>,
+        below_zeroed: bool,
     ) {
         let (rows, cols) = views.ps.dim();
         let nl = self.layers.len();
@@ -1425,6 +1453,7 @@ impl IsobaricKernel {
             .map(|_| RowOut {
                 z: None,
                 below: None,
+                below_zeroed,
                 thick: Vec::with_capacity(nl),
                 thick_below: Vec::with_capacity(nl),
             })
@@ -1661,10 +1690,11 @@ impl IsobaricKernel {
             if let Some(row) = b_row.as_mut() {
                 if !p.full {
                     // No column of the row is below ground at this level. Output fresh from
-                    // the system is zero already, and reading it maps no memory of its own
-                    // (writing would fault in and clear every page): most levels of a step
-                    // never touch their flags' pages. A reused buffer is cleared as before.
-                    if any_set(row.view()) {
+                    // the system is zero already, and is left untouched (writing would fault
+                    // in and clear every page; even reading it faults in the zero page): most
+                    // levels of a step never touch their flags' pages. A buffer that may have
+                    // been used before is cleared where it holds a flag.
+                    if !out.below_zeroed && any_set(row.view()) {
                         row.fill(0);
                     }
                 } else if !b_direct {

@@ -1010,22 +1010,31 @@ fn steps_run_one_at_a_time_equal_the_whole_run() {
 }
 
 /// The level step writes heights and flags straight into contiguous output rows; outputs laid
-/// out otherwise (here column-major, and pre-filled with garbage) go through scratch rows and
-/// must come out the same, every element written.
+/// out otherwise (here column-major) go through scratch rows and must come out the same,
+/// every element written. Both layouts are pre-filled with garbage, flags set everywhere:
+/// `run` leaves the flags of levels where no column is below ground unread in its zeroed
+/// outputs, and steps run into used outputs must clear them.
 #[test]
 fn steps_into_outputs_of_another_layout_equal_the_whole_run() {
+    for column_major in [true, false] {
+        steps_into_used_outputs_equal_the_whole_run(column_major);
+    }
+}
+
+fn steps_into_used_outputs_equal_the_whole_run(column_major: bool) {
     let mut cycle = invented_cycle(1, 2, 5, 40, Some(HumidityKind::SpecificHumidity));
     plant_edge_cases(&mut cycle);
     let kernel = IsobaricKernel::new(&cycle, &layers()).expect("kernel");
     let whole = kernel.run(&cycle, &|_| {}).expect("run");
     let dim = cycle.temperature.dim();
     let fresh = kernel.outputs(dim);
+    let shape = dim.set_f(column_major);
     let mut out = KernelOutput {
-        geopotential_height: Array5::from_elem(dim.f(), -1.0e9_f32),
-        below_ground: Array5::from_elem(dim.f(), 7_u8),
+        geopotential_height: Array5::from_elem(shape, -1.0e9_f32),
+        below_ground: Array5::from_elem(shape, 7_u8),
         thickness: fresh.thickness,
     };
-    assert!(!out.geopotential_height.is_standard_layout());
+    assert_eq!(out.geopotential_height.is_standard_layout(), !column_major);
     let surface = cycle.surface.as_ref().expect("surface");
     let humidity = cycle.humidity.as_ref().expect("humidity");
     for t in 0..2 {
