@@ -401,29 +401,9 @@ fn cycle_file(dir: &Path, name: &str, reference: &str, hours_old: u64) -> PathBu
 #[tokio::test]
 async fn a_file_older_than_the_cycles_kept_is_passed_over_unread() {
     let (tmp, config, store, mut state) = watched_folder(2);
-    let newest = cycle_file(tmp.path(), "n1.nc", "2030-01-12 00:00:00", 1);
-    let second = cycle_file(tmp.path(), "n2.nc", "2030-01-11 00:00:00", 2);
-    let old = cycle_file(tmp.path(), "old.nc", "2030-01-10 00:00:00", 3);
-    // Delivered late: the oldest file by modification time, but newer than n2 by its cycle.
-    let late = cycle_file(tmp.path(), "late.nc", "2030-01-11 12:00:00", 4);
+    let files = archive_and_a_late_delivery(tmp.path());
     let r = scan(&store, &mut state, &config).await;
-    assert_eq!(
-        r.loaded,
-        [newest.clone(), second.clone(), late.clone()],
-        "{r:?}"
-    );
-    assert_eq!(r.passed_over, [old], "{r:?}");
-    assert!(r.failed.is_empty() && r.waiting.is_empty(), "{r:?}");
-    assert_eq!(ids(&store), ["n1.nc", "late.nc"]);
-    let s = store.snapshot();
-    let evicted: Vec<&str> = s.evictions.iter().map(|e| e.id.as_str()).collect();
-    assert_eq!(evicted, ["n2.nc", "old.nc"]);
-    assert!(
-        s.evictions[1].reason.contains("was not read")
-            && s.evictions[1].reason.contains("2030-01-10T00:00:00Z"),
-        "{}",
-        s.evictions[1].reason
-    );
+    the_old_file_was_passed_over(&r, &store, &files, "2030-01-10T00:00:00Z");
     // Not looked at again until it changes.
     let r = scan(&store, &mut state, &config).await;
     assert_eq!(r, ScanReport::default());
@@ -436,28 +416,52 @@ async fn a_file_older_than_the_cycles_kept_is_passed_over_unread() {
 async fn a_file_older_than_the_cycles_held_is_passed_over_beyond_the_memory_budget() {
     let tmp = tempfile::tempdir().unwrap();
     let config = quick(tmp.path());
-    let newest = cycle_file(tmp.path(), "n1.nc", "2030-01-12 00:00:00", 1);
-    let one = LoadedCycle::read(&newest, &IngestConfig::default(), &ComputeConfig::default())
-        .unwrap()
-        .bytes;
+    let files = archive_and_a_late_delivery(tmp.path());
+    let one = LoadedCycle::read(
+        &files[0],
+        &IngestConfig::default(),
+        &ComputeConfig::default(),
+    )
+    .unwrap()
+    .bytes;
     let store = CycleStore::new(StoreConfig {
         keep_newest: 8,
         memory_budget_bytes: 2 * one + one / 2,
     });
     let mut state = WatchState::new();
-    let second = cycle_file(tmp.path(), "n2.nc", "2030-01-11 00:00:00", 2);
-    let old = cycle_file(tmp.path(), "old.nc", "2030-01-10 00:00:00", 3);
-    let late = cycle_file(tmp.path(), "late.nc", "2030-01-11 12:00:00", 4);
     let r = scan(&store, &mut state, &config).await;
+    the_old_file_was_passed_over(&r, &store, &files, "memory budget");
+}
+
+/// Cycle files n1 (newest), n2, old and late, newest modification time first; late was
+/// delivered late: the oldest file by modification time, but newer than n2 by its cycle.
+fn archive_and_a_late_delivery(dir: &Path) -> [PathBuf; 4] {
+    [
+        cycle_file(dir, "n1.nc", "2030-01-12 00:00:00", 1),
+        cycle_file(dir, "n2.nc", "2030-01-11 00:00:00", 2),
+        cycle_file(dir, "old.nc", "2030-01-10 00:00:00", 3),
+        cycle_file(dir, "late.nc", "2030-01-11 12:00:00", 4),
+    ]
+}
+
+/// After a scan of [`archive_and_a_late_delivery`] with room for two cycles: n1, n2 and
+/// late were read (n2 evicted by late), old was passed over with a reason naming `why`.
+fn the_old_file_was_passed_over(
+    r: &ScanReport,
+    store: &CycleStore,
+    files: &[PathBuf; 4],
+    why: &str,
+) {
+    let [newest, second, old, late] = files.clone();
     assert_eq!(r.loaded, [newest, second, late], "{r:?}");
     assert_eq!(r.passed_over, [old], "{r:?}");
-    assert_eq!(ids(&store), ["n1.nc", "late.nc"]);
+    assert!(r.failed.is_empty() && r.waiting.is_empty(), "{r:?}");
+    assert_eq!(ids(store), ["n1.nc", "late.nc"]);
     let s = store.snapshot();
     let evicted: Vec<&str> = s.evictions.iter().map(|e| e.id.as_str()).collect();
     assert_eq!(evicted, ["n2.nc", "old.nc"]);
     assert!(
-        s.evictions[1].reason.contains("was not read")
-            && s.evictions[1].reason.contains("memory budget"),
+        s.evictions[1].reason.contains("was not read") && s.evictions[1].reason.contains(why),
         "{}",
         s.evictions[1].reason
     );

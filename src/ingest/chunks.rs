@@ -415,6 +415,21 @@ mod tests {
         }
     }
 
+    /// A `[time, level, lat, lon]` fixture (`shape`, no member axis) written at `path`,
+    /// chunked as `chunks`, and its plan.
+    fn planned_fixture(
+        path: &Path,
+        shape: [usize; 4],
+        chunks: [usize; 4],
+        deflate: Option<(i32, bool)>,
+    ) -> StepChunks {
+        fixture(path, &shape, &chunks, deflate);
+        let [t, k, y, x] = shape;
+        let var = variable([1, t, k, y, x], [false, true, true, true, true], &chunks);
+        let own = File::open(path).expect("open");
+        StepChunks::plan(path, &own, &var).expect("plan")
+    }
+
     fn bits(v: &[f32]) -> Vec<u32> {
         v.iter().map(|x| x.to_bits()).collect()
     }
@@ -521,14 +536,7 @@ mod tests {
         let _session = crate::netcdf_session::lock();
         let dir = tempfile::tempdir().expect("tempdir");
         let path = dir.path().join("d.nc");
-        fixture(&path, &[1, 2, 40, 50], &[1, 1, 40, 50], Some((1, true)));
-        let var = variable(
-            [1, 1, 2, 40, 50],
-            [false, true, true, true, true],
-            &[1, 1, 40, 50],
-        );
-        let own = File::open(&path).expect("open");
-        let plan = StepChunks::plan(&path, &own, &var).expect("plan");
+        let plan = planned_fixture(&path, [1, 2, 40, 50], [1, 1, 40, 50], Some((1, true)));
         // Overwrite the middle of the second chunk's stored bytes.
         let chunk = &plan.chunks[1];
         let file = std::fs::OpenOptions::new()
@@ -581,15 +589,7 @@ mod tests {
             "member 0, time index 0, level index 0 to 1 in file order, rows 0 to 3, columns 0 to 4"
         );
         // Whole planes without a member axis: no member, rows or columns.
-        let path = dir.path().join("q.nc");
-        fixture(&path, &[2, 3, 6, 8], &[1, 1, 6, 8], None);
-        let var = variable(
-            [1, 2, 3, 6, 8],
-            [false, true, true, true, true],
-            &[1, 1, 6, 8],
-        );
-        let own = File::open(&path).expect("open");
-        let plan = StepChunks::plan(&path, &own, &var).expect("plan");
+        let plan = planned_fixture(&dir.path().join("q.nc"), [2, 3, 6, 8], [1, 1, 6, 8], None);
         assert_eq!(plan.place(5), "time index 1, level index 2 in file order");
     }
 }

@@ -1593,6 +1593,32 @@ mod tests {
         values
     }
 
+    /// Variable `name` of `file` (a `[time, level, lat, lon]` field of
+    /// [`two_compressed_fields`], written at `path`) as a stepwise field, its chunk reads
+    /// planned through `own`.
+    fn planned<'f>(
+        file: &'f netcdf::File,
+        name: &str,
+        path: &std::path::Path,
+        own: &std::fs::File,
+    ) -> StepwiseField<'f> {
+        let var = file.variable(name).expect("variable");
+        let req = FieldRequest {
+            file: "two.nc",
+            var: &var,
+            axes: [None, Some(0), Some(1), Some(2), Some(3)],
+            reverse_levels: false,
+            to_si: Linear {
+                scale: 1.0,
+                offset: 0.0,
+            },
+            check: None,
+        };
+        let mut field = StepwiseField::plan(&req).expect("plan").expect("stepwise");
+        field.plan_chunk_reads(path, Some(own), "two.nc");
+        field
+    }
+
     /// The planned chunk reads are checked against the library on the first step read: a
     /// plan that agrees is kept, one that does not (here each field given the other's
     /// chunks) is dropped, and that step and every later one come from the library.
@@ -1605,27 +1631,14 @@ mod tests {
         let own = std::fs::File::open(&path).expect("own");
         crate::hdf5::quiet_on_this_thread();
         let file = netcdf::open(&path).expect("open");
-        let vars = ["t", "u"].map(|n| file.variable(n).expect("variable"));
-        let plan = |var| {
-            let req = FieldRequest {
-                file: "two.nc",
-                var,
-                axes: [None, Some(0), Some(1), Some(2), Some(3)],
-                reverse_levels: false,
-                to_si: Linear {
-                    scale: 1.0,
-                    offset: 0.0,
-                },
-                check: None,
-            };
-            let mut field = StepwiseField::plan(&req).expect("plan").expect("stepwise");
-            field.plan_chunk_reads(&path, Some(&own), "two.nc");
+        let plan = |name| {
+            let field = planned(&file, name, &path, &own);
             assert!(field.chunks.is_some(), "{}: no chunk plan", field.name());
             field
         };
         let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
         for swapped in [false, true] {
-            let [mut t, mut u] = [plan(&vars[0]), plan(&vars[1])];
+            let [mut t, mut u] = [plan("t"), plan("u")];
             if swapped {
                 std::mem::swap(&mut t.chunks, &mut u.chunks);
             }
@@ -1660,28 +1673,6 @@ mod tests {
         two_compressed_fields(&path);
         crate::hdf5::quiet_on_this_thread();
         let own = std::fs::File::open(&path).expect("own");
-        fn planned<'f>(
-            file: &'f netcdf::File,
-            name: &str,
-            path: &std::path::Path,
-            own: &std::fs::File,
-        ) -> StepwiseField<'f> {
-            let var = file.variable(name).expect("variable");
-            let req = FieldRequest {
-                file: "two.nc",
-                var: &var,
-                axes: [None, Some(0), Some(1), Some(2), Some(3)],
-                reverse_levels: false,
-                to_si: Linear {
-                    scale: 1.0,
-                    offset: 0.0,
-                },
-                check: None,
-            };
-            let mut field = StepwiseField::plan(&req).expect("plan").expect("stepwise");
-            field.plan_chunk_reads(path, Some(own), "two.nc");
-            field
-        }
         // One chunk per step: `t`'s second step and `u`'s first.
         let damaged = {
             let file = netcdf::open(&path).expect("open");
