@@ -1097,9 +1097,10 @@ impl<'f> StepwiseField<'f> {
     /// this thread while the planned read of the whole step runs on the others, and the two
     /// must agree bit for bit, or the plan is dropped and this step and every later one go
     /// through the library (where the library cannot read that chunk either, the plan is
-    /// left unjudged until the next step read). Checked before any read instead, each field's first chunk read
-    /// both ways, one field after the other, came before everything else: 17 ms of the 0.5°
-    /// zlib-1 batch's 96 ms (medians of 15 alternate runs).
+    /// left unjudged until the next step read). Checked before any read instead, each
+    /// field's first chunk read both ways, one field after the other, came before
+    /// everything else: 17 ms of the 0.5° zlib-1 batch's 96 ms (medians of 15 alternate
+    /// runs).
     fn read_planned(&self, step: (usize, usize), out: &mut [f32]) -> Result<Planned, IngestError> {
         let library_reads = Planned::ToLibrary { failed: None };
         let Some(chunks) = &self.chunks else {
@@ -1132,9 +1133,12 @@ impl<'f> StepwiseField<'f> {
                 .is_ok();
             (library, planned.join())
         });
+        // A planned read that panicked counts as one that failed without saying why: the
+        // library reads the step instead.
         let planned_read = match planned_read {
-            Ok(read) => read,
-            Err(panic) => std::panic::resume_unwind(panic),
+            Ok(Ok(())) => Ok(()),
+            Ok(Err(e)) => Err(Some(e)),
+            Err(_) => Err(None),
         };
         let [_, _, _, y, x] = self.shape;
         let agrees = library_read
@@ -1155,14 +1159,14 @@ impl<'f> StepwiseField<'f> {
             // judge the plan by. The library reads the step (and says what it finds), and the
             // next step read checks the plan again.
             return Ok(Planned::ToLibrary {
-                failed: planned_read.err(),
+                failed: planned_read.err().flatten(),
             });
         }
         // Only the thread holding the session sets it: the first value stands.
         match *self.plan_agrees.get_or_init(|| agrees) {
             true => Ok(Planned::Read),
             false => Ok(Planned::ToLibrary {
-                failed: planned_read.err(),
+                failed: planned_read.err().flatten(),
             }),
         }
     }
