@@ -465,7 +465,6 @@ impl<'f> Reader<'f> {
             .collect())
     }
 
-    /// The reference time [`Self::read`] finds, from the metadata and time coordinates only.
     /// The reference time (as [`Reader::read`] finds it) and the temperature's point-levels
     /// (members × times × levels × latitudes × longitudes), from metadata and time
     /// coordinates only.
