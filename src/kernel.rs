@@ -770,9 +770,6 @@ struct RowOut<'o> {
     /// Heights and flags on every level, or `None` when only layers are wanted.
     z: Option<ArrayViewMut2<'o, f32>>,
     below: Option<ArrayViewMut2<'o, u8>>,
-    /// Whether `below` is known to hold zeros only (fresh from [`IsobaricKernel::outputs`]),
-    /// so that the levels no column is below ground at need not look at it.
-    below_zeroed: bool,
     thick: Vec<ArrayViewMut1<'o, f32>>,
     thick_below: Vec<ArrayViewMut1<'o, u8>>,
 }
@@ -794,14 +791,29 @@ pub struct StepFields<'a> {
 impl<'a> StepFields<'a> {
     /// Member `m`, time step `t` of a cycle held in memory with its `surface` fields.
     pub fn of(cycle: &'a Cycle, surface: &'a Surface, (m, t): (usize, usize)) -> Self {
+        let ps = surface.pressure_pa.slice(s![m, t, .., ..]);
+        Self::on(
+            cycle,
+            (m, t),
+            (ps, surface.height_m.slice(s![m, t, .., ..])),
+        )
+    }
+
+    /// Member `m`, time step `t` of a cycle held in memory, on the surface pressure and
+    /// height `ps`, `zs` (`[lat, lon]`).
+    fn on(
+        cycle: &'a Cycle,
+        (m, t): (usize, usize),
+        (ps, zs): (ArrayView2<'a, f32>, ArrayView2<'a, f32>),
+    ) -> Self {
         Self {
             t: cycle.temperature.slice(s![m, t, .., .., ..]),
             q: cycle
                 .humidity
                 .as_ref()
                 .map(|h| h.values.slice(s![m, t, .., .., ..])),
-            ps: surface.pressure_pa.slice(s![m, t, .., ..]),
-            zs: surface.height_m.slice(s![m, t, .., ..]),
+            ps,
+            zs,
         }
     }
 }
@@ -1170,16 +1182,7 @@ impl IsobaricKernel {
         cycle: &'s Cycle,
         (m, t): (usize, usize),
     ) -> Option<StepFields<'s>> {
-        let (ps, zs) = self.ground(cycle, (m, t))?;
-        Some(StepFields {
-            t: cycle.temperature.slice(s![m, t, .., .., ..]),
-            q: cycle
-                .humidity
-                .as_ref()
-                .map(|h| h.values.slice(s![m, t, .., .., ..])),
-            ps,
-            zs,
-        })
+        Some(StepFields::on(cycle, (m, t), self.ground(cycle, (m, t))?))
     }
 
     /// The same kernel running the build `wanted` of its inner loops, or the widest one
@@ -1453,7 +1456,6 @@ impl IsobaricKernel {
             .map(|_| RowOut {
                 z: None,
                 below: None,
-                below_zeroed,
                 thick: Vec::with_capacity(nl),
                 thick_below: Vec::with_capacity(nl),
             })
@@ -1476,7 +1478,7 @@ impl IsobaricKernel {
         }
         outs.into_par_iter().enumerate().for_each_init(
             || RowScratch::new(cols, self.captures.len()),
-            |scratch, (row, out)| self.row(views, row, n_levels, scratch, out),
+            |scratch, (row, out)| self.row(views, row, n_levels, scratch, out, below_zeroed),
         );
     }
 }
@@ -1518,7 +1520,19 @@ impl IsobaricKernel {
     ///
     /// Only levels `0..n` are integrated (all when heights are wanted; up to the highest
     /// level a layer needs otherwise).
-    fn row(&self, v: &StepFields<'_>, r: usize, n: usize, s: &mut RowScratch, mut out: RowOut<'_>) {
+    ///
+    /// `below_zeroed`: the flags in `out` hold zeros only (fresh from
+    /// [`IsobaricKernel::outputs`]), so that the levels no column is below ground at need not
+    /// look at them.
+    fn row(
+        &self,
+        v: &StepFields<'_>,
+        r: usize,
+        n: usize,
+        s: &mut RowScratch,
+        mut out: RowOut<'_>,
+        below_zeroed: bool,
+    ) {
         let all = self.levels.len();
         let cols = s.ps.len();
         // The surface of every column and the lowest level above it (`k0`), as the column
@@ -1694,7 +1708,7 @@ impl IsobaricKernel {
                     // in and clear every page; even reading it faults in the zero page): most
                     // levels of a step never touch their flags' pages. A buffer that may have
                     // been used before is cleared where it holds a flag.
-                    if !out.below_zeroed && any_set(row.view()) {
+                    if !below_zeroed && any_set(row.view()) {
                         row.fill(0);
                     }
                 } else if !b_direct {

@@ -440,7 +440,7 @@ impl Recorder {
             &mut out,
             "hypsogrid_cycle_evictions_total",
             "counter",
-            "Cycles that stopped being served: beyond keep_newest, over the memory budget, or removed from the folder; and files passed over unread as older than the newest keep_newest.",
+            "Cycles that stopped being served: beyond keep_newest, over the memory budget, or removed from the folder; and files passed over unread as older than every cycle served where they would be evicted at once (beyond keep_newest or the memory budget).",
         );
         let _ = writeln!(out, "hypsogrid_cycle_evictions_total {}", self.evictions());
         out

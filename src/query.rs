@@ -240,15 +240,14 @@ pub(crate) fn least_held_bytes(point_levels: usize) -> usize {
 /// Bytes held by the fields of a cycle and its heights on every level (an `f32` height and
 /// a `u8` flag per point-level), once all computed.
 pub(crate) fn held_bytes(cycle: &Cycle) -> usize {
-    let f32s = cycle.temperature.len()
-        + cycle.humidity.as_ref().map_or(0, |h| h.values.len())
+    // Beyond temperature, heights and flags ([`least_held_bytes`]): the other fields.
+    let other_f32s = cycle.humidity.as_ref().map_or(0, |h| h.values.len())
         + cycle
             .surface
             .as_ref()
             .map_or(0, |s| s.pressure_pa.len() + s.height_m.len())
         + cycle.file_heights.as_ref().map_or(0, |z| z.len());
-    let point_levels = cycle.temperature.len();
-    f32s * std::mem::size_of::<f32>() + point_levels * (std::mem::size_of::<f32>() + 1)
+    least_held_bytes(cycle.temperature.len()) + other_f32s * std::mem::size_of::<f32>()
 }
 
 /// What to compute.

@@ -139,8 +139,9 @@ pub struct ScanReport {
     pub loaded: Vec<PathBuf>,
     /// Files that failed to load, with the error.
     pub failed: Vec<(PathBuf, String)>,
-    /// Files not read because their cycle is older than the newest `keep_newest` cycles
-    /// already served (recorded in the store as evictions).
+    /// Files not read because their cycle is older than every cycle served and would be
+    /// evicted at once, beyond `keep_newest` or the memory budget (recorded in the store as
+    /// evictions).
     pub passed_over: Vec<PathBuf>,
     /// Files seen but not yet stable.
     pub waiting: Vec<PathBuf>,
