@@ -1355,6 +1355,21 @@ fn check_box_longitude(field: &str, lon: f64) -> Result<(), QueryError> {
     Ok(())
 }
 
+/// `x.rem_euclid(360.0)`, bit for bit, without its `fmod` for the offsets a box edge and a
+/// grid longitude give (within a turn either side of zero): area selection runs it for every
+/// longitude of the grid on every request, and `fmod` was a third of that selection's time.
+fn within_one_turn(x: f64) -> f64 {
+    if (0.0..360.0).contains(&x) {
+        x
+    } else if x > -360.0 && x < 0.0 {
+        x + 360.0
+    } else if (360.0..720.0).contains(&x) {
+        x - 360.0
+    } else {
+        x.rem_euclid(360.0)
+    }
+}
+
 /// Grid columns inside the box's longitudes, west to east, with their longitudes in the
 /// box's frame.
 fn select_longitudes(grid_lons: &[f64], west: f64, east: f64) -> Vec<(f64, usize, f64)> {
@@ -1369,7 +1384,7 @@ fn select_longitudes(grid_lons: &[f64], west: f64, east: f64) -> Vec<(f64, usize
         if !lon.is_finite() {
             continue;
         }
-        let mut d = (lon - west).rem_euclid(360.0);
+        let mut d = within_one_turn(lon - west);
         if d > 360.0 - EDGE_DEGREES {
             d = 0.0;
         }
@@ -2189,6 +2204,17 @@ mod tests {
                 thickness_in(lanes, &bottom, &top, &below, &mut got.0, &mut got.1);
                 prop_assert_eq!(bits(&got.0), bits(&want_thick.0), "{:?}", lanes);
                 prop_assert_eq!(&got.1, &want_thick.1, "{:?}", lanes);
+            }
+        }
+
+        #[test]
+        fn one_turn_offsets_are_those_of_rem_euclid(x in -1000.0f64..1000.0, k in -3i32..4) {
+            // Random offsets, and those at and next to whole turns, where the sign of a zero
+            // and rounding would show.
+            let edge = f64::from(k) * 360.0;
+            let near = [edge * (1.0 + f64::EPSILON), edge * (1.0 - f64::EPSILON), edge + 1e-9, edge - 1e-9];
+            for v in [x, edge, -0.0, -1e-300, 1e-300].into_iter().chain(near) {
+                prop_assert_eq!(within_one_turn(v).to_bits(), v.rem_euclid(360.0).to_bits(), "{}", v);
             }
         }
 
