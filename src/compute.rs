@@ -17,7 +17,7 @@ use ndarray::{s, Array3, Array5, ArrayView2, ArrayView3, ArrayViewMut2, ArrayVie
 use rayon::prelude::*;
 
 use crate::buffers::touch_pages;
-use crate::ingest::{read_cycle_overlapped, IngestConfig, IngestError};
+use crate::ingest::{read_cycle_overlapped_unless, IngestConfig, IngestError, PassOverTest};
 use crate::kernel::{
     IsobaricKernel, KernelOutput, LowestLevelHeight, NotApplicable, StepFields, StepOutputs,
 };
@@ -221,7 +221,7 @@ pub fn read_and_compute(
 }
 
 /// Reads the cycle in `path` for serving: each step is computed while later ones are read
-/// ([`read_cycle_overlapped`]), by the row kernel where it takes the cycle and column by
+/// ([`crate::ingest::read_cycle_overlapped`]), by the row kernel where it takes the cycle and column by
 /// column otherwise, but the last step is left to compute, and so is whatever is not done
 /// when the read ends (from the next piece of rows of the step it is on; the column path
 /// also stops early where a step could not finish before the read does, see
@@ -239,13 +239,18 @@ pub fn read_and_compute(
 ///
 /// The heights are those of [`compute_heights`], step for step, bit for bit.
 ///
+/// With `pass_over`, the file's reference time and size are put to it before any field is
+/// read ([`crate::ingest::read_cycle_overlapped_unless`]).
+///
 /// # Errors
 /// The file cannot be read as a cycle ([`crate::ingest::read_cycle`]), or the cycle cannot be
-/// computed with `config` (checked here, before anything is served).
+/// computed with `config` (checked here, before anything is served);
+/// [`IngestError::PassedOver`] when `pass_over` gives a reason not to read it.
 pub fn read_for_serving(
     path: &Path,
     ingest: &IngestConfig,
     config: &ComputeConfig,
+    pass_over: Option<&PassOverTest<'_>>,
 ) -> Result<(Cycle, ServedHeights, PendingSteps), LoadError> {
     check_layers(config)?;
     let prepare = |cycle: &Cycle| {
@@ -294,7 +299,7 @@ pub fn read_for_serving(
                 (None, Vec::new(), out, None)
             }
         };
-    let (cycle, overlapped) = read_cycle_overlapped(path, ingest, prepare, work)?;
+    let (cycle, overlapped) = read_cycle_overlapped_unless(path, ingest, pass_over, prepare, work)?;
     // The same validation as compute_heights, before the cycle is served.
     let method = heights_method(&cycle, config)?;
     let (members, times, ..) = cycle.temperature.dim();

@@ -88,6 +88,48 @@ impl Snapshot {
     }
 }
 
+/// What the store held when a file's read began, for deciding whether the file need not be
+/// read once its reference time and size are known ([`CycleStore::pass_over_test`]). The
+/// folder watcher, the store's writer, reads one file at a time, so the store does not
+/// change under it; [`CycleStore::insert`] decides again whatever this lets through.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct PassOver {
+    id: String,
+    oldest_held: i64,
+    cycles_held: usize,
+    bytes_held: usize,
+    keep_newest: usize,
+    budget: usize,
+}
+
+impl PassOver {
+    /// Why the file need not be read, or `None`: as [`CycleStore::passes_over`].
+    pub fn passes(&self, reference_time: Option<&str>, least_bytes: usize) -> Option<String> {
+        let reference = reference_time.and_then(parse_date_time)?;
+        if reference >= self.oldest_held {
+            return None;
+        }
+        let file = format!(
+            "'{}' ({}) was not read",
+            self.id,
+            reference_time.unwrap_or_default()
+        );
+        let keep = self.keep_newest;
+        if self.cycles_held >= keep {
+            return Some(format!(
+                "{file}: only the newest {keep} cycles are kept and it is older than those"
+            ));
+        }
+        let (held, budget) = (self.bytes_held, self.budget);
+        (held.saturating_add(least_bytes) > budget).then(|| {
+            format!(
+                "{file}: the cycles held {held} bytes and it needs at least {least_bytes} more, \
+                 over the memory budget of {budget} bytes, and it is older than those"
+            )
+        })
+    }
+}
+
 /// The cycles being served, shared between the folder watcher (writer) and requests (readers).
 #[derive(Debug)]
 pub struct CycleStore {
@@ -239,37 +281,25 @@ impl CycleStore {
         reference_time: Option<&str>,
         least_bytes: usize,
     ) -> Option<String> {
-        let reference = reference_time.and_then(parse_date_time)?;
-        let s = self.snapshot();
-        if reference >= oldest_held(&s, path)? {
-            return None;
-        }
-        let file = format!(
-            "'{}' ({}) was not read",
-            cycle_id(path),
-            reference_time.unwrap_or_default()
-        );
-        let keep = self.config.keep_newest.max(1);
-        if s.cycles.len() >= keep {
-            return Some(format!(
-                "{file}: only the newest {keep} cycles are kept and it is older than those"
-            ));
-        }
-        let (held, budget) = (s.bytes(), self.config.memory_budget_bytes);
-        (held.saturating_add(least_bytes) > budget).then(|| {
-            format!(
-                "{file}: the cycles held {held} bytes and it needs at least {least_bytes} more, \
-                 over the memory budget of {budget} bytes, and it is older than those"
-            )
-        })
+        self.pass_over_test(path)?
+            .passes(reference_time, least_bytes)
     }
 
-    /// Whether the file at `path` could be passed over at all ([`Self::passes_over`]), before
-    /// its reference time and size are known: the store holds a cycle, none came from that
-    /// file, and the oldest held has a reference time. Where not, there is no need to learn
-    /// them.
-    pub fn could_pass_over(&self, path: &Path) -> bool {
-        oldest_held(&self.snapshot(), path).is_some()
+    /// The store's side of [`Self::passes_over`] for the file at `path`, taken now, to put
+    /// the file's reference time and size to once its read has learnt them
+    /// ([`LoadedCycle::read_unless_passed_over`]); `None` where no file could be passed over
+    /// (nothing held, a cycle from that file held, or the oldest held without a reference
+    /// time), so that the read need not ask.
+    pub fn pass_over_test(&self, path: &Path) -> Option<PassOver> {
+        let s = self.snapshot();
+        Some(PassOver {
+            id: cycle_id(path),
+            oldest_held: oldest_held(&s, path)?,
+            cycles_held: s.cycles.len(),
+            bytes_held: s.bytes(),
+            keep_newest: self.config.keep_newest.max(1),
+            budget: self.config.memory_budget_bytes,
+        })
     }
 
     /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,
@@ -461,10 +491,10 @@ mod tests {
         });
         let old = Path::new("/data/old.nc");
         let day = |d: u32| format!("2030-01-{d:02}T00:00:00Z");
-        assert!(!store.could_pass_over(old), "nothing held");
+        assert!(store.pass_over_test(old).is_none(), "nothing held");
         store.insert(tiny("a.nc", Some(&day(3)), 2));
         store.insert(tiny("b.nc", Some(&day(2)), 2));
-        assert!(store.could_pass_over(old));
+        assert!(store.pass_over_test(old).is_some());
         assert_eq!(
             store.passes_over(old, Some(&day(1)), bytes / 2),
             None,

@@ -20,7 +20,7 @@
 //! is listed again after each: a cycle delivered while a backlog is read (at start-up, after
 //! an outage) is served before the older files. A file whose cycle is older than all those
 //! served is not read where loading it would evict it at once, beyond `keep_newest` cycles
-//! or the memory budget ([`CycleStore::passes_over`]).
+//! or the memory budget ([`CycleStore::passes_over`]): its read stops after the metadata.
 //!
 //! A file that fails to load is recorded in the store with its error and not retried until it
 //! changes; the cycles already served are untouched, and nothing here ends the process.
@@ -31,8 +31,8 @@ use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime};
 
 use crate::compute::ComputeConfig;
-use crate::ingest::IngestConfig;
-use crate::query::LoadedCycle;
+use crate::ingest::{IngestConfig, IngestError};
+use crate::query::{LoadError, LoadedCycle};
 use crate::store::CycleStore;
 
 /// Settings of the folder watcher.
@@ -235,17 +235,12 @@ pub async fn scan_once(
         let Some(tracked) = state.files.get_mut(&path) else {
             break;
         };
-        if let Some(reason) = passed_over(store, &path, ingest).await {
-            // As if loaded and evicted at once: read again only once the file changes. A
-            // millisecond's work: no new listing after it (an archive of thousands of files
+        if load_one(store, tracked, &path, ingest, compute, &mut report).await == Taken::PassedOver
+        {
+            // A millisecond's work: no new listing after it (an archive of thousands of files
             // would otherwise be listed once per file).
-            tracing::info!(file = %path.display(), %reason, "cycle file passed over");
-            store.record_passed_over(&path, reason);
-            tracked.status = Status::Loaded;
-            report.passed_over.push(path);
             continue;
         }
-        load_one(store, tracked, &path, ingest, compute, &mut report).await;
         match list(config).await {
             Ok(l) => listing = l,
             // The next scan reports it; the files not yet read wait for it.
@@ -357,25 +352,31 @@ fn sort_newest_first(files: &mut [(PathBuf, Fingerprint)]) {
     files.sort_by(|a, b| b.1.modified.cmp(&a.1.modified).then_with(|| b.0.cmp(&a.0)));
 }
 
-/// Why a file need not be read, when its cycle would be evicted at once as older than those
-/// served, beyond `keep_newest` cycles or the memory budget ([`CycleStore::passes_over`]):
-/// its reference time and size are peeked from its metadata first (a few milliseconds),
-/// only where the store could pass it over ([`CycleStore::could_pass_over`]). A file whose
-/// metadata cannot be read is not passed over: its load reports the error.
-async fn passed_over(store: &CycleStore, path: &Path, ingest: &IngestConfig) -> Option<String> {
-    if !store.could_pass_over(path) {
-        return None;
-    }
-    let (p, i) = (path.to_path_buf(), ingest.clone());
-    let peek = tokio::task::spawn_blocking(move || crate::ingest::peek_cycle(&p, &i))
-        .await
-        .ok()?
-        .ok()?;
-    let least_bytes = crate::query::least_held_bytes(peek.point_levels);
-    store.passes_over(path, peek.reference_time.as_deref(), least_bytes)
+/// What [`load_one`] did with a file.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Taken {
+    /// Read (loaded, failed or left waiting).
+    Read,
+    /// Passed over after its metadata: its cycle would be evicted at once.
+    PassedOver,
+}
+
+/// Why [`load_one`]'s read gave no cycle.
+enum LoadFailure {
+    /// The store's reason for passing the file over.
+    PassedOver(String),
+    /// The error, as reported.
+    Error(String),
 }
 
 /// Loads one stable file into the store (or records why not).
+///
+/// A file whose cycle is older than all those served is passed over where loading it would
+/// evict it at once, beyond `keep_newest` cycles or the memory budget
+/// ([`CycleStore::pass_over_test`]): the read asks once it knows the cycle's reference time
+/// and size, before any field. As if loaded and evicted at once, it is read again only once
+/// the file changes. A file whose metadata cannot be read is not passed over: its load
+/// reports the error.
 async fn load_one(
     store: &CycleStore,
     tracked: &mut Tracked,
@@ -383,11 +384,21 @@ async fn load_one(
     ingest: &IngestConfig,
     compute: &ComputeConfig,
     report: &mut ScanReport,
-) {
+) -> Taken {
     let (p, i, c) = (path.to_path_buf(), ingest.clone(), compute.clone());
+    let pass_over = store.pass_over_test(path);
     let loaded = tokio::task::spawn_blocking(move || {
         // Read and checked: servable now; the heights of its last step(s) follow below.
-        let result = LoadedCycle::read(&p, &i, &c).map_err(|e| e.to_string());
+        let result = match &pass_over {
+            Some(test) => LoadedCycle::read_unless_passed_over(&p, &i, &c, test),
+            None => LoadedCycle::read(&p, &i, &c),
+        }
+        .map_err(|e| match e {
+            LoadError::Ingest(IngestError::PassedOver { reason, .. }) => {
+                LoadFailure::PassedOver(reason)
+            }
+            e => LoadFailure::Error(e.to_string()),
+        });
         // The fingerprint after the read: if it moved, the read may have seen a partial file.
         let after = std::fs::metadata(&p).ok().map(|m| fingerprint(&m));
         (result, after)
@@ -396,7 +407,10 @@ async fn load_one(
     let (result, after) = match loaded {
         Ok(r) => r,
         Err(e) => (
-            Err(format!("loading '{}' stopped: {e}", path.display())),
+            Err(LoadFailure::Error(format!(
+                "loading '{}' stopped: {e}",
+                path.display()
+            ))),
             None,
         ),
     };
@@ -408,8 +422,19 @@ async fn load_one(
         tracked.changed_at = Instant::now();
         tracked.old_when_seen = false;
         report.waiting.push(path.to_path_buf());
-        return;
+        return Taken::Read;
     }
+    let result = match result {
+        Err(LoadFailure::PassedOver(reason)) => {
+            tracing::info!(file = %path.display(), %reason, "cycle file passed over");
+            store.record_passed_over(path, reason);
+            tracked.status = Status::Loaded;
+            report.passed_over.push(path.to_path_buf());
+            return Taken::PassedOver;
+        }
+        Err(LoadFailure::Error(error)) => Err(error),
+        Ok(cycle) => Ok(cycle),
+    };
     match result {
         Ok(cycle) => {
             tracing::info!(
@@ -456,6 +481,7 @@ async fn load_one(
             report.failed.push((path.to_path_buf(), error));
         }
     }
+    Taken::Read
 }
 
 /// Scans the folder every `poll_interval` until `shutdown` turns true (or its sender is

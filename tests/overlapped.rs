@@ -21,7 +21,9 @@ use common::fixtures::{
     HumidityEncoding,
 };
 use hypsogrid::compute::{compute_heights, read_and_compute, ComputeConfig, LoadError};
-use hypsogrid::ingest::{read_cycle, read_cycle_overlapped, IngestConfig, IngestError};
+use hypsogrid::ingest::{
+    read_cycle, read_cycle_overlapped, read_cycle_overlapped_unless, IngestConfig, IngestError,
+};
 use hypsogrid::model::{Cycle, Heights};
 use hypsogrid::query::LoadedCycle;
 
@@ -504,6 +506,81 @@ fn a_bad_value_in_a_later_step_gives_the_whole_read_error() {
             "{whole}"
         );
     }
+}
+
+/// A read asked whether to go on ([`read_cycle_overlapped_unless`]) asks once, with the
+/// reference time and the temperature's size of the cycle the whole read gives, before any
+/// field: a file whose temperature holds a bad value is passed over with the caller's reason
+/// and no error of its own, and neither the preparation nor the work runs. Told to go on, it
+/// reads the same cycle as the whole read.
+#[test]
+fn a_read_passed_over_stops_before_any_field() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let ingest = IngestConfig::default();
+    let mut bad = 0;
+    for (label, spec) in variants() {
+        let path = write(dir.path(), &label, &spec);
+        let whole = read_cycle(&path, &ingest).expect(&label);
+        let expected = (whole.reference_time.clone(), whole.temperature.len());
+        let asked = std::cell::RefCell::new(Vec::new());
+        let answer = std::cell::Cell::new(None);
+        let test = |reference_time: Option<&str>, point_levels: usize| {
+            asked
+                .borrow_mut()
+                .push((reference_time.map(str::to_string), point_levels));
+            answer.get().map(str::to_string)
+        };
+        let (cycle, _) = read_cycle_overlapped_unless(
+            &path,
+            &ingest,
+            Some(&test),
+            |_| Some(()),
+            |(), _, steps| steps.count(),
+        )
+        .expect(&label);
+        same_cycle(&label, &whole, &cycle);
+        assert_eq!(*asked.borrow(), std::slice::from_ref(&expected), "{label}");
+
+        // A bad value where the temperature is stored as plain floats (the others, packed in
+        // integers, would take 400 as a raw value).
+        let (rank, plain_floats) = temperature_storage(&path);
+        if plain_floats {
+            overwrite(&path, "t", &[0, 0, 0, 0, 0][..rank], 400.0);
+            let read = read_cycle(&path, &ingest);
+            assert!(
+                matches!(read, Err(IngestError::Implausible { .. })),
+                "{label}: the bad value is found by a read"
+            );
+            bad += 1;
+        }
+        asked.borrow_mut().clear();
+        answer.set(Some("older than the cycles held"));
+        let passed = read_cycle_overlapped_unless(
+            &path,
+            &ingest,
+            Some(&test),
+            |_| -> Option<()> { panic!("{label}: prepared") },
+            |(), _, _| -> usize { panic!("{label}: worked") },
+        );
+        match passed {
+            Err(IngestError::PassedOver { file, reason }) => {
+                assert_eq!(file, path.display().to_string(), "{label}");
+                assert_eq!(reason, "older than the cycles held", "{label}");
+            }
+            Err(e) => panic!("{label}: {e}"),
+            Ok(_) => panic!("{label}: read"),
+        }
+        assert_eq!(*asked.borrow(), [expected], "{label}");
+    }
+    assert!(bad >= 10, "only {bad} variants with a bad value");
+}
+
+/// The rank of the fixture's temperature variable, and whether it is stored as `f32`.
+fn temperature_storage(path: &Path) -> (usize, bool) {
+    let file = netcdf::open(path).expect("opening the fixture");
+    let t = file.variable("t").expect("t");
+    let f32_type = netcdf::types::NcVariableType::Float(netcdf::types::FloatType::F32);
+    (t.dimensions().len(), t.vartype() == f32_type)
 }
 
 /// A temperature with no valid value anywhere is refused by name, as by the whole read.

@@ -32,6 +32,7 @@ use std::sync::mpsc;
 use ndarray::ArrayView3;
 
 pub use names::{load_config, NameMap, Role};
+pub use reader::PassOverTest;
 
 use crate::model::{Cycle, Field5};
 
@@ -166,6 +167,15 @@ pub enum IngestError {
         /// The variable.
         variable: String,
     },
+    /// The caller's test ([`PassOverTest`]) gave a reason not to read the file, once its
+    /// reference time and size were known: no field was read. Not a fault of the file.
+    #[error("{reason}")]
+    PassedOver {
+        /// The file.
+        file: String,
+        /// Why it was not read.
+        reason: String,
+    },
     /// A field in which no value is present: every point is a fill value, a `missing_value`
     /// or outside the valid range. Served, it would be a cycle of missing heights that
     /// displaces a good one as the newest.
@@ -279,31 +289,6 @@ pub fn read_cycle(path: &Path, config: &IngestConfig) -> Result<Cycle, IngestErr
     let _session = crate::netcdf_session::lock();
     let file = open_quietly(path, &label)?;
     reader::Reader::new(&file, label, config).read(path)
-}
-
-/// What [`peek_cycle`] learns of a cycle file without reading its fields.
-#[derive(Clone, Debug, PartialEq, Eq)]
-pub struct CyclePeek {
-    /// The reference time, as [`read_cycle`] finds it (RFC 3339 UTC; `None` for a file
-    /// without one).
-    pub reference_time: Option<String>,
-    /// The temperature's point-levels (members × times × levels × latitudes × longitudes):
-    /// the cycle's `temperature` holds as many values once read.
-    pub point_levels: usize,
-}
-
-/// The reference time and size of the cycle in a NetCDF file, reading its metadata and time
-/// coordinates only: milliseconds for a file of any size. For a watcher deciding whether a
-/// file is worth reading at all.
-pub fn peek_cycle(path: &Path, config: &IngestConfig) -> Result<CyclePeek, IngestError> {
-    let label = checked_label(path)?;
-    let _session = crate::netcdf_session::lock();
-    let file = open_quietly(path, &label)?;
-    let (reference_time, point_levels) = reader::Reader::new(&file, label, config).peek()?;
-    Ok(CyclePeek {
-        reference_time,
-        point_levels,
-    })
 }
 
 /// The file's label for messages, after the checks that must pass before the NetCDF library
@@ -437,6 +422,28 @@ where
     P: FnOnce(&Cycle) -> Option<W>,
     F: for<'a> FnOnce(W, &'a Cycle, StepFeed<'a>) -> R + Send,
 {
+    read_cycle_overlapped_unless(path, config, None, prepare, work)
+}
+
+/// [`read_cycle_overlapped`], asking `pass_over` whether to go on once the cycle's reference
+/// time and size are known, in the same open of the file: a reason given ends the read
+/// before any field with [`IngestError::PassedOver`], and neither `prepare` nor `work` runs.
+///
+/// # Errors
+/// As [`read_cycle_overlapped`], and [`IngestError::PassedOver`].
+pub fn read_cycle_overlapped_unless<W, R, P, F>(
+    path: &Path,
+    config: &IngestConfig,
+    pass_over: Option<&PassOverTest<'_>>,
+    prepare: P,
+    work: F,
+) -> Result<(Cycle, Option<R>), IngestError>
+where
+    W: Send,
+    R: Send,
+    P: FnOnce(&Cycle) -> Option<W>,
+    F: for<'a> FnOnce(W, &'a Cycle, StepFeed<'a>) -> R + Send,
+{
     let label = checked_label(path)?;
     // Held outside the scope, so that the worker may borrow them while this thread reads:
     // the cycle without its two large fields, and those fields.
@@ -451,7 +458,9 @@ where
         // Opened before the library opens it: see `chunks::StepChunks::plan`.
         let own = std::fs::File::open(path).ok();
         let file = open_quietly(path, label_ref)?;
-        let mut reader = reader::Reader::new(&file, label_ref.clone(), config).stepwise();
+        let mut reader = reader::Reader::new(&file, label_ref.clone(), config)
+            .stepwise()
+            .passing_over(pass_over);
         let mut cycle = reader.read(path)?;
         let planned = reader.take_stepwise(path, own.as_ref());
         let fields = Stepwise::of(label_ref, &planned);

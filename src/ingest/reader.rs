@@ -80,7 +80,16 @@ pub(super) struct Reader<'f> {
     /// When set, temperature and humidity that can be read step by step are planned here
     /// (their arrays left zero) instead of being read.
     stepwise: Option<Vec<(Bulk, StepwiseField<'f>)>>,
+    /// When set, asked once the reference time and size are known, before any field is
+    /// read: a reason given ends the read with [`IngestError::PassedOver`].
+    pass_over: Option<&'f PassOverTest<'f>>,
 }
+
+/// Whether a file need not be read, from its cycle's reference time (RFC 3339 UTC, `None`
+/// without one) and its temperature's point-levels (members × times × levels × latitudes ×
+/// longitudes, as many values as the cycle's `temperature` will hold): the reason, or `None`
+/// to read it.
+pub type PassOverTest<'a> = dyn Fn(Option<&str>, usize) -> Option<String> + 'a;
 
 /// The two large fields that may be read step by step.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -162,7 +171,15 @@ impl<'f> Reader<'f> {
             variables: Vec::new(),
             dim_axes: HashMap::new(),
             stepwise: None,
+            pass_over: None,
         }
+    }
+
+    /// The same reader, asking `test` whether to go on once the cycle's reference time and
+    /// size are known (metadata and coordinates read, no field yet).
+    pub(super) fn passing_over(mut self, test: Option<&'f PassOverTest<'f>>) -> Self {
+        self.pass_over = test;
+        self
     }
 
     /// The same reader, planning temperature and humidity for stepwise reading where their
@@ -465,19 +482,6 @@ impl<'f> Reader<'f> {
             .collect())
     }
 
-    /// The reference time (as [`Reader::read`] finds it) and the temperature's point-levels
-    /// (members × times × levels × latitudes × longitudes), from metadata and time
-    /// coordinates only.
-    pub(super) fn peek(&mut self) -> Result<(Option<String>, usize), IngestError> {
-        let t_var = self.find_temperature()?;
-        let t_layout = self.layout(&t_var)?;
-        let point_levels = [Axis::Member, Axis::Time, Axis::Level, Axis::Lat, Axis::Lon]
-            .into_iter()
-            .map(|axis| t_layout.len(axis))
-            .product();
-        Ok((self.times(&t_layout)?.0, point_levels))
-    }
-
     pub(super) fn read(&mut self, path: &Path) -> Result<Cycle, IngestError> {
         let t_var = self.find_temperature()?;
         let t_layout = self.layout(&t_var)?;
@@ -499,6 +503,15 @@ impl<'f> Reader<'f> {
             grid.rows(),
             grid.cols(),
         ];
+        if let Some(reason) = self
+            .pass_over
+            .and_then(|test| test(reference_time.as_deref(), target.iter().product()))
+        {
+            return Err(IngestError::PassedOver {
+                file: self.label.clone(),
+                reason,
+            });
+        }
         let t_read = FieldRead {
             var: &t_var,
             layout: &t_layout,
