@@ -154,5 +154,13 @@ for label in sorted({r.get("grid") or r.get("grid_label") for r in records if r.
           f"{ratio(np_stage['whole'], rust_all):.1f} (all cores), {ratio(np_stage['whole'], rust_one):.1f} (one thread)")
     print(f"  ratio NumPy whole Python process / Rust whole process, median of pairs: "
           f"{ratio(np_stage['numpy_process'], rust_all):.1f} (all cores), {ratio(np_stage['numpy_process'], rust_one):.1f} (one thread)")
+    # On shared machines one side's speed can move several times over from pair to pair
+    # (NumPy's compute 0.21-1.21 s within one run in docs/SPEED.md (O)): the spread says how
+    # far the medians can be trusted.
+    spread = lambda values: f"{min(values):.3f}-{max(values):.3f}" if values else "none"
+    pair_ratios = [np_stage["whole"][i] / rust_all[i]["seconds"] for i in pairs]
+    print(f"  spread over the pairs: NumPy compute {spread(list(np_stage['compute'].values()))} s, "
+          f"Rust whole process (all cores) {spread([rust_all[i]['seconds'] for i in pairs])} s, "
+          f"ratio (read+compute+write, all cores) {min(pair_ratios or [0]):.1f}-{max(pair_ratios or [0]):.1f}")
     print(f"  heights NumPy - Rust: max |d| {diff.get('max_abs_m')} m, rms {diff.get('rms_m')} m over {diff.get('compared')} values")
 EOF
