@@ -158,9 +158,9 @@ for label in sorted({r.get("grid") or r.get("grid_label") for r in records if r.
     # (NumPy's compute 0.21-1.21 s within one run in docs/SPEED.md (O)): the spread says how
     # far the medians can be trusted.
     spread = lambda values: f"{min(values):.3f}-{max(values):.3f}" if values else "none"
-    pair_ratios = [np_stage["whole"][i] / rust_all[i]["seconds"] for i in pairs]
+    pair_ratios = [np_stage["whole"][i] / rust_all[i]["seconds"] for i in pairs] or [0.0]
     print(f"  spread over the pairs: NumPy compute {spread(list(np_stage['compute'].values()))} s, "
           f"Rust whole process (all cores) {spread([rust_all[i]['seconds'] for i in pairs])} s, "
-          f"ratio (read+compute+write, all cores) {min(pair_ratios or [0]):.1f}-{max(pair_ratios or [0]):.1f}")
+          f"ratio (read+compute+write, all cores) {min(pair_ratios):.1f}-{max(pair_ratios):.1f}")
     print(f"  heights NumPy - Rust: max |d| {diff.get('max_abs_m')} m, rms {diff.get('rms_m')} m over {diff.get('compared')} values")
 EOF

@@ -2241,9 +2241,11 @@ mod tests {
             // Random offsets, and those at and next to whole turns, where the sign of a zero
             // and rounding would show.
             let edge = f64::from(k) * 360.0;
-            let near = [edge * (1.0 + f64::EPSILON), edge * (1.0 - f64::EPSILON), edge + 1e-9, edge - 1e-9];
+            let e = f64::EPSILON;
+            let near = [edge * (1.0 + e), edge * (1.0 - e), edge + 1e-9, edge - 1e-9];
             for v in [x, edge, -0.0, -1e-300, 1e-300].into_iter().chain(near) {
-                prop_assert_eq!(within_one_turn(v).to_bits(), v.rem_euclid(360.0).to_bits(), "{}", v);
+                let (ours, std) = (within_one_turn(v), v.rem_euclid(360.0));
+                prop_assert_eq!(ours.to_bits(), std.to_bits(), "{}", v);
             }
         }
 
