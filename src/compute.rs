@@ -223,8 +223,8 @@ pub fn read_and_compute(
 /// Reads the cycle in `path` for serving: each step is computed while later ones are read
 /// ([`crate::ingest::read_cycle_overlapped`]), by the row kernel where it takes the cycle
 /// and column by column otherwise, but the last step is left to compute, and so is whatever
-/// is not done when the read ends (from the next piece of rows of the step it is on; the column path
-/// also stops early where a step could not finish before the read does, see
+/// is not done when the read ends (from the next piece of rows of the step it is on; the
+/// column path also stops early where a step could not finish before the read does, see
 /// `columns_while_reading`), so that the cycle can be served the moment its file has been
 /// read. [`PendingSteps::finish`] computes the rest.
 ///

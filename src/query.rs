@@ -121,13 +121,13 @@ impl LoadedCycle {
         ingest: &IngestConfig,
         compute: &ComputeConfig,
     ) -> Result<Self, LoadError> {
-        Self::read_with(path, ingest, compute, None)
+        Self::read_unless_passed_over(path, ingest, compute, None)
     }
 
-    /// [`LoadedCycle::read`], unless the store's `pass_over` passes the file over
-    /// ([`crate::store::PassOver::passes`]) once its reference time and size are known: in
-    /// the same open of the file, before any field is read (metadata and coordinates only,
-    /// milliseconds for a file of any size).
+    /// [`LoadedCycle::read`], unless the store's `pass_over` (where given) passes the file
+    /// over ([`crate::store::PassOver::passes`]) once its reference time and size are known:
+    /// in the same open of the file, before any field is read (metadata and coordinates
+    /// only, milliseconds for a file of any size).
     ///
     /// # Errors
     /// As [`LoadedCycle::read`]; [`crate::ingest::IngestError::PassedOver`] with the store's
@@ -136,23 +136,16 @@ impl LoadedCycle {
         path: &Path,
         ingest: &IngestConfig,
         compute: &ComputeConfig,
-        pass_over: &crate::store::PassOver,
-    ) -> Result<Self, LoadError> {
-        let test = |reference_time: Option<&str>, point_levels: usize| {
-            pass_over.passes(reference_time, least_held_bytes(point_levels))
-        };
-        Self::read_with(path, ingest, compute, Some(&test))
-    }
-
-    fn read_with(
-        path: &Path,
-        ingest: &IngestConfig,
-        compute: &ComputeConfig,
-        pass_over: Option<&crate::ingest::PassOverTest<'_>>,
+        pass_over: Option<&crate::store::PassOver>,
     ) -> Result<Self, LoadError> {
         let started = Instant::now();
         let config = served_config(compute);
-        let (cycle, heights, pending) = read_for_serving(path, ingest, &config, pass_over)?;
+        let test = |reference_time: Option<&str>, point_levels: usize| {
+            pass_over?.passes(reference_time, least_held_bytes(point_levels))
+        };
+        // Asked only where the store could pass a file over at all.
+        let test = pass_over.map(|_| &test as &crate::ingest::PassOverTest<'_>);
+        let (cycle, heights, pending) = read_for_serving(path, ingest, &config, test)?;
         let id = crate::store::cycle_id(path);
         let bytes = held_bytes(&cycle);
         Ok(Self {

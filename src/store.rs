@@ -103,7 +103,12 @@ pub struct PassOver {
 }
 
 impl PassOver {
-    /// Why the file need not be read, or `None`: as [`CycleStore::passes_over`].
+    /// Why a file whose cycle has this reference time need not be read, when
+    /// [`CycleStore::insert`] would evict it at once: its reference time is earlier than
+    /// every cycle held, and either the store holds `keep_newest` cycles or the cycles held
+    /// and the new one's `least_bytes` (a lower bound of its [`LoadedCycle::bytes`]) exceed
+    /// the memory budget. `None` (read it) otherwise, and for a cycle without a reference
+    /// time.
     pub fn passes(&self, reference_time: Option<&str>, least_bytes: usize) -> Option<String> {
         let reference = reference_time.and_then(parse_date_time)?;
         if reference >= self.oldest_held {
@@ -269,24 +274,8 @@ impl CycleStore {
         inserted
     }
 
-    /// Why a file whose cycle has this reference time need not be read, when [`Self::insert`]
-    /// would evict it at once: its reference time is earlier than every cycle held, and
-    /// either the store holds `keep_newest` cycles or the cycles held and the new one's
-    /// `least_bytes` (a lower bound of its [`LoadedCycle::bytes`]) exceed the memory budget.
-    /// `None` (read it) otherwise, for a cycle without a reference time (or a store whose
-    /// oldest cycle has none), and for a file a served cycle came from (a new version of it).
-    pub fn passes_over(
-        &self,
-        path: &Path,
-        reference_time: Option<&str>,
-        least_bytes: usize,
-    ) -> Option<String> {
-        self.pass_over_test(path)?
-            .passes(reference_time, least_bytes)
-    }
-
-    /// The store's side of [`Self::passes_over`] for the file at `path`, taken now, to put
-    /// the file's reference time and size to once its read has learnt them
+    /// What decides whether the file at `path` need not be read ([`PassOver::passes`]), taken
+    /// now, to put the file's reference time and size to once its read has learnt them
     /// ([`LoadedCycle::read_unless_passed_over`]); `None` where no file could be passed over
     /// (nothing held, a cycle from that file held, or the oldest held without a reference
     /// time), so that the read need not ask.
@@ -302,7 +291,7 @@ impl CycleStore {
         })
     }
 
-    /// Records a file passed over unread ([`Self::passes_over`]) as an eviction of its cycle,
+    /// Records a file passed over unread ([`PassOver::passes`]) as an eviction of its cycle,
     /// so that the catalogue says why it is not served; clears a failure recorded for it.
     pub fn record_passed_over(&self, path: &Path, reason: String) {
         let id = cycle_id(path);
@@ -381,6 +370,18 @@ impl CycleStore {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Why `store` would pass the file at `path` over, as the watcher asks it.
+    fn passes_over(
+        store: &CycleStore,
+        path: &Path,
+        reference_time: Option<&str>,
+        least_bytes: usize,
+    ) -> Option<String> {
+        store
+            .pass_over_test(path)?
+            .passes(reference_time, least_bytes)
+    }
     use crate::compute::ComputeConfig;
     use crate::model::{Cycle, Grid, Vertical};
     use crate::physics::Constants;
@@ -437,10 +438,13 @@ mod tests {
         let old = Path::new("/data/old.nc");
         let day = |d: u32| format!("2030-01-{d:02}T00:00:00Z");
         store.insert(tiny("a.nc", Some(&day(3)), 2));
-        assert_eq!(store.passes_over(old, Some(&day(1)), 0), None, "room left");
+        assert_eq!(
+            passes_over(&store, old, Some(&day(1)), 0),
+            None,
+            "room left"
+        );
         store.insert(tiny("b.nc", Some(&day(2)), 2));
-        let reason = store
-            .passes_over(old, Some(&day(1)), 0)
+        let reason = passes_over(&store, old, Some(&day(1)), 0)
             .expect("full, and older than the oldest kept");
         assert!(
             reason.starts_with("'old.nc' (2030-01-01T00:00:00Z) was not read")
@@ -449,11 +453,15 @@ mod tests {
         );
         // The oldest kept cycle's own time (the newer load would be kept), a later one, none.
         for read in [Some(day(2)), Some(day(5)), None] {
-            assert_eq!(store.passes_over(old, read.as_deref(), 0), None, "{read:?}");
+            assert_eq!(
+                passes_over(&store, old, read.as_deref(), 0),
+                None,
+                "{read:?}"
+            );
         }
         // A new version of a served cycle's file is read whatever its time.
         assert_eq!(
-            store.passes_over(Path::new("/data/b.nc"), Some(&day(1)), 0),
+            passes_over(&store, Path::new("/data/b.nc"), Some(&day(1)), 0),
             None
         );
         store.record_failure(old, "bad".into());
@@ -473,7 +481,7 @@ mod tests {
             ..StoreConfig::default()
         });
         store.insert(tiny("c.nc", None, 2));
-        assert_eq!(store.passes_over(old, Some(&day(1)), 0), None);
+        assert_eq!(passes_over(&store, old, Some(&day(1)), 0), None);
     }
 
     /// Below `keep_newest`, a file older than every cycle held is passed over when the
@@ -496,12 +504,11 @@ mod tests {
         store.insert(tiny("b.nc", Some(&day(2)), 2));
         assert!(store.pass_over_test(old).is_some());
         assert_eq!(
-            store.passes_over(old, Some(&day(1)), bytes / 2),
+            passes_over(&store, old, Some(&day(1)), bytes / 2),
             None,
             "fits"
         );
-        let reason = store
-            .passes_over(old, Some(&day(1)), bytes)
+        let reason = passes_over(&store, old, Some(&day(1)), bytes)
             .expect("over the budget, and older than the cycles held");
         assert!(
             reason.starts_with("'old.nc' (2030-01-01T00:00:00Z) was not read")
@@ -512,7 +519,7 @@ mod tests {
         // Not the oldest (the oldest held's own time, a later one), or no reference time.
         for read in [Some(day(2)), Some(day(5)), None] {
             assert_eq!(
-                store.passes_over(old, read.as_deref(), bytes),
+                passes_over(&store, old, read.as_deref(), bytes),
                 None,
                 "{read:?}"
             );

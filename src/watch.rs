@@ -20,7 +20,8 @@
 //! is listed again after each: a cycle delivered while a backlog is read (at start-up, after
 //! an outage) is served before the older files. A file whose cycle is older than all those
 //! served is not read where loading it would evict it at once, beyond `keep_newest` cycles
-//! or the memory budget ([`CycleStore::passes_over`]): its read stops after the metadata.
+//! or the memory budget ([`crate::store::PassOver::passes`]): its read stops after the
+//! metadata.
 //!
 //! A file that fails to load is recorded in the store with its error and not retried until it
 //! changes; the cycles already served are untouched, and nothing here ends the process.
@@ -389,16 +390,14 @@ async fn load_one(
     let pass_over = store.pass_over_test(path);
     let loaded = tokio::task::spawn_blocking(move || {
         // Read and checked: servable now; the heights of its last step(s) follow below.
-        let result = match &pass_over {
-            Some(test) => LoadedCycle::read_unless_passed_over(&p, &i, &c, test),
-            None => LoadedCycle::read(&p, &i, &c),
-        }
-        .map_err(|e| match e {
-            LoadError::Ingest(IngestError::PassedOver { reason, .. }) => {
-                LoadFailure::PassedOver(reason)
-            }
-            e => LoadFailure::Error(e.to_string()),
-        });
+        let result = LoadedCycle::read_unless_passed_over(&p, &i, &c, pass_over.as_ref()).map_err(
+            |e| match e {
+                LoadError::Ingest(IngestError::PassedOver { reason, .. }) => {
+                    LoadFailure::PassedOver(reason)
+                }
+                e => LoadFailure::Error(e.to_string()),
+            },
+        );
         // The fingerprint after the read: if it moved, the read may have seen a partial file.
         let after = std::fs::metadata(&p).ok().map(|m| fingerprint(&m));
         (result, after)
@@ -424,7 +423,7 @@ async fn load_one(
         report.waiting.push(path.to_path_buf());
         return Taken::Read;
     }
-    let result = match result {
+    match result {
         Err(LoadFailure::PassedOver(reason)) => {
             tracing::info!(file = %path.display(), %reason, "cycle file passed over");
             store.record_passed_over(path, reason);
@@ -432,10 +431,6 @@ async fn load_one(
             report.passed_over.push(path.to_path_buf());
             return Taken::PassedOver;
         }
-        Err(LoadFailure::Error(error)) => Err(error),
-        Ok(cycle) => Ok(cycle),
-    };
-    match result {
         Ok(cycle) => {
             tracing::info!(
                 file = %path.display(),
@@ -469,12 +464,12 @@ async fn load_one(
             tracked.status = Status::Loaded;
             report.loaded.push(path.to_path_buf());
         }
-        Err(error) if crate::netcdf_session::reads_stopped() => {
+        Err(LoadFailure::Error(error)) if crate::netcdf_session::reads_stopped() => {
             // The process is stopping: the file is not at fault, and is read at the next start.
             tracing::info!(file = %path.display(), %error, "cycle file not loaded: stopping");
             report.waiting.push(path.to_path_buf());
         }
-        Err(error) => {
+        Err(LoadFailure::Error(error)) => {
             tracing::warn!(file = %path.display(), %error, "cycle file failed to load");
             store.record_failure(path, error.clone());
             tracked.status = Status::Failed;
