@@ -453,6 +453,8 @@ struct StepParams {
 struct StepIn<'s> {
     t: &'s [f32],
     q: &'s [f32],
+    /// The next level's temperature and humidity rows, asked for ahead ([`prefetch_next`]);
+    /// empty where there is none (the last level, or a field not in standard layout).
     t_next: &'s [f32],
     q_next: &'s [f32],
     zp: &'s [f64],
