@@ -16,7 +16,9 @@ use ndarray::{Array4, Array5, Axis, Zip};
 use hypsogrid::compute::{compute_heights, compute_heights_by_columns, ComputeConfig};
 use hypsogrid::kernel::IsobaricKernel;
 use hypsogrid::lanes::Lanes;
-use hypsogrid::model::{Cycle, Grid, Humidity, HumidityKind, Layer, Surface, Vertical};
+use hypsogrid::model::{
+    zeroed_field, Cycle, Grid, Humidity, HumidityKind, Layer, Surface, Vertical,
+};
 use hypsogrid::physics::Constants;
 
 const ROWS: usize = 721;
@@ -80,8 +82,9 @@ fn global_cycle(rows: usize, cols: usize) -> Cycle {
     let wave = |r: usize, c: usize| {
         (3.0 * lon[c].to_radians()).cos() * (2.0 * lat[r].to_radians()).sin().powi(2)
     };
-    let mut t = Array5::<f32>::zeros((1, 1, n, rows, cols));
-    let mut q = Array5::<f32>::zeros((1, 1, n, rows, cols));
+    // Laid out as the reader lays out the fields it reads (huge pages where offered).
+    let mut t = zeroed_field((1, 1, n, rows, cols));
+    let mut q = zeroed_field((1, 1, n, rows, cols));
     Zip::indexed(&mut t)
         .and(&mut q)
         .par_for_each(|(_, _, k, r, c), tv, qv| {
