@@ -207,6 +207,12 @@ pub struct Heights {
 /// transparent huge pages. A cycle built in memory (benchmarks, tests, programs using this
 /// crate) then lays its fields out as one read from a file; on fields of 4 KiB pages the
 /// kernel ran 3–4 % slower on the 0.25° grid (`benches/kernel.rs`, alternate runs).
+///
+/// ```
+/// let t = hypsogrid::model::zeroed_field((1, 2, 3, 4, 5));
+/// assert_eq!(t.dim(), (1, 2, 3, 4, 5));
+/// assert!(t.is_standard_layout() && t.iter().all(|&v| v == 0.0));
+/// ```
 pub fn zeroed_field(dim: (usize, usize, usize, usize, usize)) -> Field5 {
     crate::buffers::zeroed_field_array(dim)
 }

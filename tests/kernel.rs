@@ -417,6 +417,55 @@ fn kernel_matches_the_column_path_when_the_fields_are_not_contiguous() {
 }
 
 #[test]
+fn kernel_matches_the_column_path_across_blocks_of_columns() {
+    // Rows of 600 columns: the level step runs in blocks of columns (256 at a time, each
+    // asking for the next level's rows ahead), so these rows take two whole blocks and a
+    // part. The planted cases (columns 0–20 of row 0) are copied across the first block's
+    // end (columns 245–265) and into the row's last columns (579–599).
+    let mut cycle = invented_cycle(1, 1, 3, 600, Some(HumidityKind::SpecificHumidity));
+    plant_edge_cases(&mut cycle);
+    let planted = 21;
+    let copies = [245, 600 - planted];
+    for &at in &copies {
+        let t = cycle
+            .temperature
+            .slice(s![.., .., .., 0, ..planted])
+            .to_owned();
+        let t_to = s![.., .., .., 0, at..at + planted];
+        cycle.temperature.slice_mut(t_to).assign(&t);
+        let h = cycle.humidity.as_mut().expect("humidity");
+        let q = h.values.slice(s![.., .., .., 0, ..planted]).to_owned();
+        h.values.slice_mut(t_to).assign(&q);
+        let sf = cycle.surface.as_mut().expect("surface fields");
+        for field in [&mut sf.pressure_pa, &mut sf.height_m] {
+            let v = field.slice(s![.., .., 0, ..planted]).to_owned();
+            field.slice_mut(s![.., .., 0, at..at + planted]).assign(&v);
+        }
+    }
+    let (fast, columns) = both_paths(&cycle, layers());
+    let (worst, n) = compare(&fast, &columns);
+    println!("600 columns: {n} values, largest difference {worst:e} m");
+    assert!(n > 3 * 600 * 25, "most values are finite ({n})");
+    // Every copy gives the bits of the planted columns, wherever the block boundary falls.
+    let bits = |c: usize| {
+        let z = fast.geopotential_height.slice(s![0, 0, .., 0, c]);
+        let b = fast.below_ground.slice(s![0, 0, .., 0, c]);
+        let z: Vec<u32> = z.iter().map(|v| v.to_bits()).collect();
+        (z, b.to_vec())
+    };
+    for &at in &copies {
+        for c in 0..planted {
+            assert_eq!(
+                bits(at + c),
+                bits(c),
+                "column {} against column {c}",
+                at + c
+            );
+        }
+    }
+}
+
+#[test]
 fn every_simd_build_gives_identical_bits() {
     // Specific humidity, and relative humidity (converted in lanes of its own).
     for kind in [
