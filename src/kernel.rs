@@ -60,10 +60,16 @@ use crate::physics::humidity::{MagnusTerms, RelativeHumidityPhase, SaturationFor
 use crate::physics::hypsometric::logarithmic_mean_temperature;
 
 /// Largest `|u| = |Tv1 − Tv2| / (Tv1 + Tv2)` for which the kernel trusts
-/// [`logarithmic_mean_by_series`]; layers beyond it (a 22 % jump in virtual temperature
-/// between adjacent levels, which no real atmosphere has) are recomputed with
-/// [`logarithmic_mean_temperature`].
-pub const SERIES_LIMIT: f64 = 0.1;
+/// [`logarithmic_mean_by_series`]; layers beyond it (a 10.5 % jump in virtual temperature
+/// between adjacent levels, 25 K near 240 K: only the strongest surface inversions come
+/// near it) are recomputed with [`logarithmic_mean_temperature`], row by row where they
+/// occur.
+pub const SERIES_LIMIT: f64 = 0.05;
+
+/// Largest `w = (p_s − p_k0)/(p_s + p_k0)` for which the surface set-up takes its series
+/// (of `artanh` and of `exp`): a surface pressure up to 11/9 of its lowest level
+/// above ground. Surfaces beyond it (only high in a column) take the exact forms.
+pub const SURFACE_SERIES_LIMIT: f64 = 0.1;
 
 /// `1 / (2j + 1)` for `j = 1..=7`: the coefficients of `artanh(u)/u` in powers of `u²`.
 const ATANH_COEFFS: [f64; 7] = [
@@ -76,10 +82,10 @@ const ATANH_COEFFS: [f64; 7] = [
     1.0 / 15.0,
 ];
 
-/// `u/artanh(u)` in powers of `s = u²`: `r_0..r_8` of `R(s) = 1/S(s)`, where
+/// `u/artanh(u)` in powers of `s = u²`: `r_0..r_6` of `R(s) = 1/S(s)`, where
 /// `S(s) = artanh(u)/u = Σ s^j/(2j + 1)`. Exact rationals from `R·S = 1`
 /// (`r_n = −Σ_{k=1..n} r_{n−k}/(2k + 1)`), rounded to `f64`.
-const INV_ATANH_COEFFS: [f64; 9] = [
+const INV_ATANH_COEFFS: [f64; 7] = [
     1.0,
     -1.0 / 3.0,
     -4.0 / 45.0,
@@ -87,8 +93,6 @@ const INV_ATANH_COEFFS: [f64; 9] = [
     -428.0 / 14175.0,
     -10196.0 / 467775.0,
     -10719068.0 / 638512875.0,
-    -25865068.0 / 1915538625.0,
-    -5472607916.0 / 488462349375.0,
 ];
 
 /// Logarithmic mean of two virtual temperatures without a logarithm, by the series of
@@ -101,19 +105,22 @@ const INV_ATANH_COEFFS: [f64; 9] = [
 /// # Method
 /// With `u = (t1 − t2)/(t1 + t2)`, `ln(t1/t2) = 2 artanh u`, so the logarithmic mean is
 /// `(t1 − t2)/ln(t1/t2) = ((t1 + t2)/2) · R(u²)` with `R(s) = u/artanh(u)`, the reciprocal of
-/// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁸` (`INV_ATANH_COEFFS`),
+/// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁶` (`INV_ATANH_COEFFS`),
 /// evaluated by Estrin's scheme. Taking the reciprocal series instead of dividing by `S`
 /// saves the second of two divisions per point-level, the slowest instruction of the loop.
 ///
 /// Truncation bound: `S(s) = ∫₀¹ dt/(1 − s t²)`, and for `|s| ≤ ρ < 1` each `1/(1 − s t²)`
 /// has real part at least `1/(1 + ρ)`, so `S` has no zero in the disc and `|R| ≤ 1 + ρ` on
 /// `|s| = ρ`. Cauchy's estimate gives `|r_j| ≤ (1 + ρ)/ρ^j`, and the omitted terms sum to at
-/// most `(1 + ρ)(s/ρ)⁹ / (1 − s/ρ)`. With `ρ = 0.9` and `|u| ≤ SERIES_LIMIT = 0.1`
-/// (`s ≤ 0.01`) that is below `5.0e-18`; since `R ≥ 0.996` there, it is also the relative
+/// most `(1 + ρ)(s/ρ)⁷ / (1 − s/ρ)`. With `ρ = 0.9` and `|u| ≤ SERIES_LIMIT = 0.05`
+/// (`s ≤ 0.0025`) that is below `2.5e-18`; since `R ≥ 0.999` there, it is also the relative
 /// error of the mean, below half an ulp of `f64` (1.1e-16). The actual coefficients are
-/// far smaller than the estimate (`|r_9| ≈ 0.0095`). Adjacent isobaric levels of real
-/// atmospheres have `|u|` below about 0.05 (30 K across a layer near 250 K). Outside the
-/// limit the function still answers, less accurately, and `t1 = t2` gives `t1` exactly.
+/// far smaller than the estimate (`|r_7| ≈ 0.0135`). Adjacent isobaric levels of real
+/// atmospheres have `|u|` below 0.05 but in the strongest inversions (the GFS 2.5° file of
+/// `tests/kernel.rs` peaks at 0.06, in 2 of every 10,000 pairs of adjacent levels, those
+/// below ground counted); the kernel recomputes those layers exactly. Kept to `s⁸` with a limit of 0.1, as before,
+/// the series cost 7 % more of the kernel's time. Outside the limit the function still
+/// answers, less accurately, and `t1 = t2` gives `t1` exactly.
 /// Inputs that are not finite and positive give meaningless values: the kernel turns such
 /// virtual temperatures into `NaN` first.
 ///
@@ -129,7 +136,7 @@ pub fn logarithmic_mean_by_series(t1: f64, t2: f64) -> f64 {
     0.5 * sum * inv_atanh_over_u(u * u)
 }
 
-/// `u/artanh(u)` as the series `Σ_{j=0}^{8} r_j s^j` in `s = u²` (bound in
+/// `u/artanh(u)` as the series `Σ_{j=0}^{6} r_j s^j` in `s = u²` (bound in
 /// [`logarithmic_mean_by_series`]), by Estrin's scheme.
 #[inline(always)]
 fn inv_atanh_over_u(s: f64) -> f64 {
@@ -137,8 +144,8 @@ fn inv_atanh_over_u(s: f64) -> f64 {
     let s2 = s * s;
     let s4 = s2 * s2;
     let low = (r[0] + r[1] * s) + s2 * (r[2] + r[3] * s);
-    let high = (r[4] + r[5] * s) + s2 * (r[6] + r[7] * s);
-    (low + s4 * high) + (s4 * s4) * r[8]
+    let high = (r[4] + r[5] * s) + s2 * r[6];
+    low + s4 * high
 }
 
 /// `artanh(u)/u` as the series `Σ_{j=0}^{7} s^j/(2j + 1)` in `s = u²`, for the logarithm
@@ -271,7 +278,7 @@ lane_builds! {
 /// Largest `|x|` for which [`exp_by_series`] is used in the surface set-up.
 ///
 /// `x = κ ln(p_s/p_k0)` with `κ = R_d Γ/g0 ≈ 0.190` and `p_s/p_k0 ≤ 11/9` (the range of
-/// [`SERIES_LIMIT`] for the ratio), so `|x| ≤ 0.0382` for the usual constants.
+/// [`SURFACE_SERIES_LIMIT`] for the ratio), so `|x| ≤ 0.0382` for the usual constants.
 const EXP_LIMIT: f64 = 0.04;
 
 /// `e^x` by its Taylor series to `x⁸/8!`, for `|x| ≤ EXP_LIMIT`.
@@ -614,10 +621,11 @@ fn surface_lanes(kappa: f64, rd_g0: f64, i: &SurfaceIn<'_>, o: &mut SurfaceOut<'
         let w = (rho - 1.0) / (rho + 1.0);
         let ln_rho = 2.0 * w * atanh_over_u(w * w);
         let x = kappa * ln_rho;
-        large += u64::from((w > SERIES_LIMIT) | (x.abs() > EXP_LIMIT));
+        large += u64::from((w > SURFACE_SERIES_LIMIT) | (x.abs() > EXP_LIMIT));
         let tvs = tv0[c] * exp_by_series(x);
         tvs_out[c] = tvs;
         tvsop_out[c] = tv0[c] * ipk0[c];
+        // `tvs/tv0 = e^x` with `|x| ≤ EXP_LIMIT`: `|u| ≤ tanh(0.02)`, inside `SERIES_LIMIT`.
         z0_out[c] = zs[c] + rd_g0 * logarithmic_mean_by_series(tvs, tv0[c]) * ln_rho;
     }
     large
@@ -1661,7 +1669,7 @@ impl IsobaricKernel {
                 let rho = ps / pk0;
                 let w = (rho - 1.0) / (rho + 1.0);
                 let x = self.kappa * 2.0 * w * atanh_over_u(w * w);
-                if s.alive[c] && ((w > SERIES_LIMIT) | (x.abs() > EXP_LIMIT)) {
+                if s.alive[c] && ((w > SURFACE_SERIES_LIMIT) | (x.abs() > EXP_LIMIT)) {
                     let k0 = usize::from(s.k0[c]);
                     let tv0 = s.tvp_in[c];
                     let ln_ps = ps.ln();

@@ -16,7 +16,7 @@ use hypsogrid::compute::{
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::kernel::{
     exp_by_reduction, logarithmic_mean_by_series, IsobaricKernel, KernelOutput, LowestLevelHeight,
-    NotApplicable, StepFields, SERIES_LIMIT,
+    NotApplicable, StepFields, SERIES_LIMIT, SURFACE_SERIES_LIMIT,
 };
 use hypsogrid::lanes::Lanes;
 use hypsogrid::model::{Cycle, Grid, Heights, Humidity, HumidityKind, Layer, Surface, Vertical};
@@ -276,6 +276,10 @@ fn plant_edge_cases(cycle: &mut Cycle) {
     // surface set-up, exact forms) and 1.12 (inside it).
     set_surface(19, 180.0, 45_000.0);
     set_surface(20, 560.0, 36_000.0);
+    // A strong inversion just beyond the layer series' limit: virtual temperature 14 %
+    // warmer at 700 hPa than at 750 hPa (u about 0.066), recomputed exactly.
+    set_surface(21, 101_000.0, 20.0);
+    t[[0, 0, 8, 0, 21]] = t[[0, 0, 7, 0, 21]] * 1.14;
     let _ = p;
 }
 
@@ -420,11 +424,11 @@ fn kernel_matches_the_column_path_when_the_fields_are_not_contiguous() {
 fn kernel_matches_the_column_path_across_blocks_of_columns() {
     // Rows of 600 columns: the level step runs in blocks of columns (256 at a time, each
     // asking for the next level's rows ahead), so these rows take two whole blocks and a
-    // part. The planted cases (columns 0–20 of row 0) are copied across the first block's
-    // end (columns 245–265) and into the row's last columns (579–599).
+    // part. The planted cases (columns 0–21 of row 0) are copied across the first block's
+    // end (columns 245–266) and into the row's last columns (578–599).
     let mut cycle = invented_cycle(1, 1, 3, 600, Some(HumidityKind::SpecificHumidity));
     plant_edge_cases(&mut cycle);
-    let planted = 21;
+    let planted = 22;
     let copies = [245, 600 - planted];
     for &at in &copies {
         let t = cycle
@@ -578,9 +582,15 @@ fn series_log_mean_agrees_with_the_exact_formula_within_its_bound() {
         logarithmic_mean_by_series(231.5, 244.25),
         logarithmic_mean_by_series(244.25, 231.5)
     );
-    // The truncation bound of the documentation: the omitted tail Σ_{j≥8} s^j/(2j+1) at
-    // the limit, summed on its own, stays under s⁸/(17(1 − s)) < 6.0e-18.
-    let s2 = SERIES_LIMIT * SERIES_LIMIT;
+    // The documented bound on the omitted terms of u/artanh(u) (Cauchy's estimate with
+    // ρ = 0.9, the series kept to s⁶) at the limit.
+    let (s_max, rho) = (SERIES_LIMIT * SERIES_LIMIT, 0.9);
+    let cauchy = (1.0 + rho) * (s_max / rho).powi(7) / (1.0 - s_max / rho);
+    assert!(cauchy < 2.5e-18, "{cauchy:e}");
+    // The truncation bound of the documentation of the surface set-up's artanh(w)/w: the
+    // omitted tail Σ_{j≥8} s^j/(2j+1) at its limit, summed on its own, stays under
+    // s⁸/(17(1 − s)) < 6.0e-18.
+    let s2 = SURFACE_SERIES_LIMIT * SURFACE_SERIES_LIMIT;
     let tail: f64 = (8..80).map(|j| s2.powi(j) / f64::from(2 * j + 1)).sum();
     let bound = s2.powi(8) / (17.0 * (1.0 - s2));
     assert!(tail <= bound && bound < 6.0e-18, "{tail:e} {bound:e}");
