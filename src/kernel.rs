@@ -28,7 +28,7 @@
 //! allocations, offered for transparent huge pages (`src/buffers.rs`); the system still
 //! zeroes and maps them, which is most of the memory floor that `benches/kernel.rs` times
 //! (a pass that only reads temperature and humidity and writes one value per point-level).
-//! With the output paged in, the arithmetic dominates: one division, a nine-term polynomial
+//! With the output paged in, the arithmetic dominates: one division, a seven-term polynomial
 //! and the virtual temperature per point-level, in `f64`.
 //!
 //! # Same answers as the column path
