@@ -118,9 +118,9 @@ const INV_ATANH_COEFFS: [f64; 7] = [
 /// far smaller than the estimate (`|r_7| ≈ 0.0135`). Adjacent isobaric levels of real
 /// atmospheres have `|u|` below 0.05 but in the strongest inversions (the GFS 2.5° file of
 /// `tests/kernel.rs` peaks at 0.06, in 2 of every 10,000 pairs of adjacent levels, those
-/// below ground counted); the kernel recomputes those layers exactly. Kept to `s⁸` with a limit of 0.1, as before,
-/// the series cost 7 % more of the kernel's time. Outside the limit the function still
-/// answers, less accurately, and `t1 = t2` gives `t1` exactly.
+/// below ground counted); the kernel recomputes those layers exactly. Kept to `s⁸` with a
+/// limit of 0.1, as before, the series cost 7–11 % more of the kernel's time. Outside the
+/// limit the function still answers, less accurately, and `t1 = t2` gives `t1` exactly.
 /// Inputs that are not finite and positive give meaningless values: the kernel turns such
 /// virtual temperatures into `NaN` first.
 ///
