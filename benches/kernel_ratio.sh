@@ -28,13 +28,17 @@ fi
 WORK=$(mktemp -d)
 trap 'rm -rf "$WORK"' EXIT
 echo "# $(date -u +%Y-%m-%dT%H:%M:%SZ), load average: $(cut -d' ' -f1-3 /proc/loadavg), $(nproc) cores"
-cargo bench --quiet --bench kernel --no-run 2>/dev/null
+cargo bench --quiet --bench kernel --no-run
 for round in $(seq "$ROUNDS"); do
     "$PY" benches/numpy_baseline.py --grid 0.25 --layers '' --repeat "$REPEAT" |
         grep '"stage": "compute"' | sed "s/^/{\"round\": $round, \"numpy\": /; s/\$/}/" >>"$WORK/numpy.jsonl"
     # Criterion's line `time: [low estimate high]`, the estimate in ms or s.
-    cargo bench --quiet --bench kernel -- "${BENCH[@]}" >"$WORK/bench.txt" 2>/dev/null
-    grep -m1 'time:' "$WORK/bench.txt" | sed "s/^/$round /" >>"$WORK/kernel.txt"
+    cargo bench --quiet --bench kernel -- "${BENCH[@]}" >"$WORK/bench.txt" 2>"$WORK/bench.err"
+    if ! grep -m1 'time:' "$WORK/bench.txt" | sed "s/^/$round /" >>"$WORK/kernel.txt"; then
+        echo "kernel_ratio.sh: the kernel bench printed no time; it said:" >&2
+        cat "$WORK/bench.txt" "$WORK/bench.err" >&2
+        exit 1
+    fi
 done
 
 "$PY" - "$WORK" <<'EOF'

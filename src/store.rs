@@ -370,6 +370,11 @@ impl CycleStore {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::compute::ComputeConfig;
+    use crate::model::{Cycle, Grid, Vertical};
+    use crate::physics::Constants;
+    use ndarray::Array5;
+    use proptest::prelude::*;
 
     /// Why `store` would pass the file at `path` over, as the watcher asks it.
     fn passes_over(
@@ -382,11 +387,6 @@ mod tests {
             .pass_over_test(path)?
             .passes(reference_time, least_bytes)
     }
-    use crate::compute::ComputeConfig;
-    use crate::model::{Cycle, Grid, Vertical};
-    use crate::physics::Constants;
-    use ndarray::Array5;
-    use proptest::prelude::*;
 
     fn tiny(id: &str, reference: Option<&str>, nlat: usize) -> LoadedCycle {
         // An invented two-level isothermal column on a tiny grid, only to exercise the store.
