@@ -29,7 +29,7 @@
 //! zeroes and maps them, which is most of the memory floor that `benches/kernel.rs` times
 //! (a pass that only reads temperature and humidity and writes one value per point-level).
 //! With the output paged in, the arithmetic dominates: one division, a seven-term polynomial
-//! and the virtual temperature per point-level, in `f64`.
+//! and the virtual temperature per point-level, in `f64`, with fused multiply-adds.
 //!
 //! # Same answers as the column path
 //! The arithmetic is that of [`crate::physics::column::ColumnNodes::isobaric`] step for step
@@ -106,7 +106,8 @@ const INV_ATANH_COEFFS: [f64; 7] = [
 /// With `u = (t1 − t2)/(t1 + t2)`, `ln(t1/t2) = 2 artanh u`, so the logarithmic mean is
 /// `(t1 − t2)/ln(t1/t2) = ((t1 + t2)/2) · R(u²)` with `R(s) = u/artanh(u)`, the reciprocal of
 /// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁶` (`INV_ATANH_COEFFS`),
-/// evaluated by Estrin's scheme. Taking the reciprocal series instead of dividing by `S`
+/// evaluated by Estrin's scheme with fused multiply-adds (the same bits in every SIMD build
+/// and in scalar code: see [`crate::lanes`]). Taking the reciprocal series instead of dividing by `S`
 /// saves the second of two divisions per point-level, the slowest instruction of the loop.
 ///
 /// Truncation bound: `S(s) = ∫₀¹ dt/(1 − s t²)`, and for `|s| ≤ ρ < 1` each `1/(1 − s t²)`
@@ -137,15 +138,16 @@ pub fn logarithmic_mean_by_series(t1: f64, t2: f64) -> f64 {
 }
 
 /// `u/artanh(u)` as the series `Σ_{j=0}^{6} r_j s^j` in `s = u²` (bound in
-/// [`logarithmic_mean_by_series`]), by Estrin's scheme.
+/// [`logarithmic_mean_by_series`]), by Estrin's scheme with fused multiply-adds (six of
+/// its eight operations; with separate products and sums it took fourteen).
 #[inline(always)]
 fn inv_atanh_over_u(s: f64) -> f64 {
     let r = &INV_ATANH_COEFFS;
     let s2 = s * s;
     let s4 = s2 * s2;
-    let low = (r[0] + r[1] * s) + s2 * (r[2] + r[3] * s);
-    let high = (r[4] + r[5] * s) + s2 * r[6];
-    low + s4 * high
+    let low = s2.mul_add(r[3].mul_add(s, r[2]), r[1].mul_add(s, r[0]));
+    let high = s2.mul_add(r[6], r[5].mul_add(s, r[4]));
+    s4.mul_add(high, low)
 }
 
 /// `artanh(u)/u` as the series `Σ_{j=0}^{7} s^j/(2j + 1)` in `s = u²`, for the logarithm
@@ -500,16 +502,17 @@ const INV_STANDARD_LAPSE_RATE: f64 = 1.0 / STANDARD_LAPSE_RATE;
 
 /// Virtual temperature from temperature and humidity, as the column path forms it
 /// ([`crate::physics::humidity::virtual_temperature_from_specific_humidity`] and
-/// [`crate::physics::humidity::virtual_temperature_from_mixing_ratio`]), with anything not
-/// finite and positive turned into `NaN` (the column path's "usable" test).
+/// [`crate::physics::humidity::virtual_temperature_from_mixing_ratio`]) but with the
+/// multiply-add fused (a last-bit difference at most), with anything not finite and positive
+/// turned into `NaN` (the column path's "usable" test).
 #[inline(always)]
 fn virtual_temperature<const M: u8>(t: f32, q: f32, kq: f64, inv_eps: f64) -> f64 {
     let t = f64::from(t);
     let tv = match M {
-        MOIST_SPECIFIC => t * (1.0 + kq * f64::from(q)),
+        MOIST_SPECIFIC => t * kq.mul_add(f64::from(q), 1.0),
         MOIST_MIXING => {
             let r = f64::from(q);
-            t * (1.0 + r * inv_eps) / (1.0 + r)
+            t * r.mul_add(inv_eps, 1.0) / (1.0 + r)
         }
         _ => t,
     };
@@ -556,7 +559,7 @@ fn level_lanes<const M: u8, const FULL: bool>(
                 let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
                 let a = tvp[c];
                 let u = (a - tv) / (a + tv);
-                let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
+                let z_up = p.c1.mul_add(logarithmic_mean_by_series(a, tv), zp[c]);
                 let above = p.k_f > k0f[c];
                 let below = p.k_f < k0f[c];
                 large += u64::from(above & (u.abs() > SERIES_LIMIT));
@@ -572,7 +575,7 @@ fn level_lanes<const M: u8, const FULL: bool>(
                 let tv = virtual_temperature::<M>(t[c], q[c], p.kq, p.inv_eps);
                 let a = tvp[c];
                 let u = (a - tv) / (a + tv);
-                let z_up = zp[c] + p.c1 * logarithmic_mean_by_series(a, tv);
+                let z_up = p.c1.mul_add(logarithmic_mean_by_series(a, tv), zp[c]);
                 large += u64::from(u.abs() > SERIES_LIMIT);
                 tvp_out[c] = tv;
                 zp_out[c] = z_up;

@@ -6,13 +6,22 @@
 //! [`crate::ingest`]) are written without a branch on the data, so that the compiler turns
 //! them into SIMD lanes of whatever width the build allows; `lane_builds!` compiles one
 //! such body three times and dispatches on a [`Lanes`]. Every build does the same IEEE
-//! operations in the same order (no fused multiply-add is enabled), so all three give the
-//! same bits; `tests/kernel.rs` checks that on the builds this processor has.
+//! operations in the same order, so all three give the same bits; `tests/kernel.rs` checks
+//! that on the builds this processor has.
+//!
+//! A multiply-add is fused only where a body asks for it (`f64::mul_add`), and then in every
+//! build: the AVX2 and AVX-512 builds require the processor's FMA instructions, and the
+//! baseline build is compiled a second time with them (and with AVX, which FMA needs: four
+//! `f64` lanes), which runs wherever the processor has them ([`fused_multiply_add`]). Only a processor without FMA (x86-64 from before
+//! about 2013) runs the plain baseline build, where each `mul_add` is a call to the C
+//! library's `fma`: correctly rounded like the instruction, so the same bits, but several
+//! times slower.
 
 /// A build of the inner loops, narrowest first.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub enum Lanes {
-    /// The target's baseline instruction set (SSE2 on x86-64: two `f64` lanes).
+    /// The target's baseline instruction set (SSE2 on x86-64: two `f64` lanes), with AVX and
+    /// FMA where the processor has them ([`fused_multiply_add`]).
     Portable,
     /// AVX2: four `f64` or eight `f32` lanes.
     Avx2,
@@ -29,10 +38,10 @@ impl Lanes {
         match self {
             Lanes::Portable => true,
             #[cfg(target_arch = "x86_64")]
-            Lanes::Avx2 => std::is_x86_feature_detected!("avx2"),
+            Lanes::Avx2 => std::is_x86_feature_detected!("avx2") && fused_multiply_add(),
             #[cfg(target_arch = "x86_64")]
             Lanes::Avx512 => {
-                std::is_x86_feature_detected!("avx2")
+                Lanes::Avx2.available()
                     && std::is_x86_feature_detected!("avx512f")
                     && std::is_x86_feature_detected!("avx512vl")
                     && std::is_x86_feature_detected!("avx512dq")
@@ -67,9 +76,20 @@ impl Lanes {
     }
 }
 
+/// Whether the processor has fused multiply-add instructions: on x86-64 FMA3, which comes
+/// with AVX and needs it (the baseline build's second compilation enables both); on other
+/// targets `true`, where `f64::mul_add` compiles to the target's own instruction or call.
+pub fn fused_multiply_add() -> bool {
+    #[cfg(target_arch = "x86_64")]
+    return std::is_x86_feature_detected!("avx") && std::is_x86_feature_detected!("fma");
+    #[cfg(not(target_arch = "x86_64"))]
+    true
+}
+
 /// Defines `fn $name(lanes: Lanes, args…) -> R` that runs `$body(args…)` compiled for the
-/// build `lanes` names: the baseline instruction set, AVX2 or AVX-512. A build the processor
-/// lacks falls back to the next narrower one, so any `Lanes` is safe to pass.
+/// build `lanes` names: the baseline instruction set (with FMA where the processor has it),
+/// AVX2 or AVX-512, the last two with FMA. A build the processor lacks falls back to the
+/// next narrower one, so any `Lanes` is safe to pass.
 ///
 /// `$body` must be `#[inline(always)]`, so that each build compiles its own copy of it.
 macro_rules! lane_builds {
@@ -79,11 +99,15 @@ macro_rules! lane_builds {
         fn $name(lanes: $crate::lanes::Lanes, $($arg: $ty),*) -> $ret {
             #[cfg(target_arch = "x86_64")]
             {
-                #[target_feature(enable = "avx2")]
+                #[target_feature(enable = "avx,fma")]
+                fn baseline_fma($($arg: $ty),*) -> $ret {
+                    $body($($arg),*)
+                }
+                #[target_feature(enable = "avx2,fma")]
                 fn avx2($($arg: $ty),*) -> $ret {
                     $body($($arg),*)
                 }
-                #[target_feature(enable = "avx2,avx512f,avx512vl,avx512dq,avx512bw")]
+                #[target_feature(enable = "avx2,fma,avx512f,avx512vl,avx512dq,avx512bw")]
                 fn avx512($($arg: $ty),*) -> $ret {
                     $body($($arg),*)
                 }
@@ -96,6 +120,10 @@ macro_rules! lane_builds {
                 if lanes >= Lanes::Avx2 && Lanes::Avx2.available() {
                     // SAFETY: as above, for AVX2.
                     return unsafe { avx2($($arg),*) };
+                }
+                if $crate::lanes::fused_multiply_add() {
+                    // SAFETY: as above, for FMA.
+                    return unsafe { baseline_fma($($arg),*) };
                 }
             }
             let _ = lanes;
@@ -118,6 +146,50 @@ mod tests {
     lane_builds! {
         /// A dispatcher over a small body, for the test.
         fn scaled_sum_in(x: &[f64], k: f64) -> f64 = scaled_sum;
+    }
+
+    /// Products of neighbours added with fused multiply-adds, in lanes.
+    #[inline(always)]
+    fn fused_products(x: &[f64], out: &mut [f64]) {
+        for (o, w) in out.iter_mut().zip(x.windows(2)) {
+            *o = w[0].mul_add(w[1], *o);
+        }
+    }
+
+    lane_builds! {
+        /// A dispatcher over a body with fused multiply-adds, for the test.
+        fn fused_products_in(x: &[f64], out: &mut [f64]) -> () = fused_products;
+    }
+
+    #[test]
+    fn a_fused_multiply_add_gives_the_same_bits_in_every_build() {
+        // Values whose products are not exact in `f64`, so that fusing shows in the bits.
+        let x: Vec<f64> = (0..1001)
+            .map(|i| (f64::from(i) * 0.37).sin() * 1e3)
+            .collect();
+        let start: Vec<f64> = (0..1000).map(|i| (f64::from(i) * 0.11).cos()).collect();
+        // The body called directly: the baseline build, `mul_add` as the C library's `fma`.
+        let mut library = start.clone();
+        fused_products(&x, &mut library);
+        let unfused: Vec<f64> = (0..1000).map(|i| x[i] * x[i + 1] + start[i]).collect();
+        let differ = library.iter().zip(&unfused).filter(|(a, b)| a != b).count();
+        assert!(
+            differ > 100,
+            "only {differ} of 1000 sums show the fused rounding"
+        );
+        for lanes in Lanes::ALL {
+            let mut out = start.clone();
+            fused_products_in(lanes, &x, &mut out);
+            let same = out
+                .iter()
+                .zip(&library)
+                .all(|(a, b)| a.to_bits() == b.to_bits());
+            assert!(same, "{} build", lanes.name());
+        }
+        #[cfg(target_arch = "x86_64")]
+        if Lanes::Avx2.available() {
+            assert!(fused_multiply_add());
+        }
     }
 
     #[test]
