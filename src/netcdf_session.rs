@@ -6,8 +6,13 @@
 //! `netcdf: hdf error` on reading a demo file that two test threads wrote together). Every
 //! code path that opens or creates a file therefore holds this lock for the whole life of the
 //! file handle: take the guard *before* opening, so that it is dropped after the file.
+//!
+//! The same lock keeps child processes from inheriting open files: HDF5 opens files without
+//! close-on-exec and locks each one (`flock`), so a child started while a file is open holds
+//! its lock until the child exits. Start children with [`NoFileOpen`].
 
 use std::path::Path;
+use std::process::{Child, Command, Output, Stdio};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Mutex, MutexGuard, OnceLock};
 
@@ -52,6 +57,46 @@ pub fn lock() -> MutexGuard<'static, ()> {
     SESSION
         .lock()
         .unwrap_or_else(|poisoned| poisoned.into_inner())
+}
+
+/// Starting a child process while no NetCDF file is open in this process.
+///
+/// The HDF5 library under NetCDF-4 opens files without close-on-exec and locks each one
+/// (`flock`: exclusive while it is written, shared while it is read). A child started while
+/// a file is open inherits the descriptor, and with it the lock, until the child exits; the
+/// file then cannot be opened again in this process meanwhile (`netcdf: hdf error`). A test
+/// that wrote a file and read it back failed this way whenever another test of the same
+/// process had a Python process running (74 runs in 80 with the two tests alone). Holding
+/// the session ([`lock`]) while the child starts means that no such descriptor exists at that
+/// moment. This crate's own programs start no children; tests, and programs that use this
+/// crate and start children, do so through these methods.
+pub trait NoFileOpen {
+    /// `Command::spawn`, while no NetCDF file is open in this process.
+    ///
+    /// # Errors
+    /// As `Command::spawn`.
+    fn spawn_with_no_file_open(&mut self) -> std::io::Result<Child>;
+
+    /// `Command::output`, the child started while no NetCDF file is open in this process:
+    /// standard input empty, standard output and error captured.
+    ///
+    /// # Errors
+    /// As `Command::output`.
+    fn output_with_no_file_open(&mut self) -> std::io::Result<Output>;
+}
+
+impl NoFileOpen for Command {
+    fn spawn_with_no_file_open(&mut self) -> std::io::Result<Child> {
+        let _session = lock();
+        self.spawn()
+    }
+
+    fn output_with_no_file_open(&mut self) -> std::io::Result<Output> {
+        self.stdin(Stdio::null())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped());
+        self.spawn_with_no_file_open()?.wait_with_output()
+    }
 }
 
 extern "C" {
@@ -120,6 +165,52 @@ fn set_up() -> i32 {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A child started while another thread writes a NetCDF-4 file waits for the file to be
+    /// closed, and the file then opens again in this process while the child still runs.
+    #[test]
+    fn a_child_starts_only_once_no_file_is_open() {
+        let dir = tempfile::tempdir().expect("temporary folder");
+        let path = dir.path().join("written.nc");
+        let (opened_tx, opened_rx) = std::sync::mpsc::channel();
+        let writer = {
+            let path = path.clone();
+            std::thread::spawn(move || {
+                let _session = lock();
+                crate::hdf5::quiet_on_this_thread();
+                let mut file = netcdf::create_with(&path, netcdf::Options::NETCDF4)
+                    .expect("creating the file");
+                file.add_dimension("x", 3).expect("dimension");
+                let mut var = file.add_variable::<f32>("v", &["x"]).expect("variable");
+                var.put_values(&[1.0f32, 2.0, 3.0], ..).expect("values");
+                opened_tx.send(()).expect("telling the test");
+                // The child must not start while the file is open.
+                std::thread::sleep(std::time::Duration::from_millis(200));
+            })
+        };
+        opened_rx.recv().expect("the writer has the file open");
+        let mut child = Command::new("sleep")
+            .arg("2")
+            .spawn_with_no_file_open()
+            .expect("starting sleep");
+        writer.join().expect("the writer");
+        let reopened = {
+            let _session = lock();
+            crate::hdf5::quiet_on_this_thread();
+            netcdf::open(&path).map(|file| file.variable("v").is_some())
+        };
+        let running = child.try_wait().expect("the child's state").is_none();
+        let _ = child.kill();
+        let _ = child.wait();
+        assert!(
+            running,
+            "the check ran after the child had exited: it shows nothing"
+        );
+        assert!(
+            matches!(reopened, Ok(true)),
+            "the file did not open again while the child ran: {reopened:?}"
+        );
+    }
 
     /// The set-up runs once, on its own thread, which stays.
     #[test]

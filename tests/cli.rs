@@ -4,11 +4,12 @@ use std::path::Path;
 use std::process::{Command, Output};
 
 use hypsogrid::demo::write_demo_cycle;
+use hypsogrid::netcdf_session::NoFileOpen;
 
 fn hypsogrid(args: &[&std::ffi::OsStr]) -> Output {
     Command::new(env!("CARGO_BIN_EXE_hypsogrid"))
         .args(args)
-        .output()
+        .output_with_no_file_open()
         .expect("running the hypsogrid binary")
 }
 

@@ -19,6 +19,7 @@ use hypsogrid::compute::ComputeConfig;
 use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME};
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::metrics::{serve_http, Recorder};
+use hypsogrid::netcdf_session::NoFileOpen;
 use hypsogrid::pb;
 use hypsogrid::pb::height_service_client::HeightServiceClient;
 use hypsogrid::query::LoadedCycle;
@@ -651,7 +652,7 @@ async fn serve_metrics_listen_serves_the_page_of_the_running_server() {
         .arg(dir.path())
         .stdout(Stdio::null())
         .stderr(Stdio::piped())
-        .spawn()
+        .spawn_with_no_file_open()
         .expect("starting hypsogrid serve");
     let stderr = child.stderr.take().expect("stderr is piped");
     let (tx, rx) = std::sync::mpsc::channel();
@@ -680,7 +681,7 @@ async fn serve_metrics_listen_serves_the_page_of_the_running_server() {
     let metrics_addr: SocketAddr = metrics_addr.parse().unwrap();
     let out = Command::new(BIN)
         .args(["catalogue", "--server", &format!("http://{grpc_addr}")])
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert!(
         out.status.success(),

@@ -11,6 +11,7 @@ use std::process::{Command, Output};
 use std::sync::Arc;
 use std::time::{Duration, Instant};
 
+use hypsogrid::netcdf_session::NoFileOpen;
 use hypsogrid::pb;
 use hypsogrid::pb::height_service_client::HeightServiceClient;
 use tonic::transport::{Certificate, Channel, ClientTlsConfig, Identity};
@@ -35,7 +36,8 @@ impl Server {
         if let Some(t) = token {
             cmd.args(["--token", t]);
         }
-        cmd.output().expect("running the catalogue client")
+        cmd.output_with_no_file_open()
+            .expect("running the catalogue client")
     }
 
     /// True when the catalogue call with `token` is served; false when it is refused as
@@ -162,7 +164,7 @@ fn a_non_loopback_address_is_refused_without_tls_tokens_or_an_explicit_yes() {
         .env_remove("HYPSOGRID_ALLOW_INSECURE_REMOTE")
         .env_remove("HYPSOGRID_AUTH_TOKENS")
         .env_remove("HYPSOGRID_TLS_CERT")
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert_eq!(out.status.code(), Some(1));
     let err = String::from_utf8_lossy(&out.stderr);
@@ -230,7 +232,7 @@ fn make_pki(dir: &std::path::Path) -> Option<Pki> {
         Command::new("openssl")
             .args(args)
             .current_dir(dir)
-            .output()
+            .output_with_no_file_open()
             .map(|o| o.status.success())
             .unwrap_or(false)
     };
@@ -418,7 +420,8 @@ async fn tls_client_ca_serves_only_clients_with_a_certificate_from_that_authorit
         if let Some((cert, key)) = identity {
             cmd.args(["--client-cert", &cert, "--client-key", &key]);
         }
-        cmd.output().expect("running the catalogue client")
+        cmd.output_with_no_file_open()
+            .expect("running the catalogue client")
     };
     let cli_runs = tokio::task::spawn_blocking(move || {
         (
@@ -470,7 +473,7 @@ fn tls_client_ca_without_tls_is_refused_in_one_line() {
         ])
         .env_remove("HYPSOGRID_TLS_CERT")
         .env_remove("HYPSOGRID_TLS_KEY")
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert_eq!(out.status.code(), Some(1));
     let err = String::from_utf8_lossy(&out.stderr);

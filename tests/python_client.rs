@@ -14,6 +14,7 @@ use std::sync::mpsc;
 use std::time::{Duration, Instant};
 
 use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME};
+use hypsogrid::netcdf_session::NoFileOpen;
 
 const BIN: &str = env!("CARGO_BIN_EXE_hypsogrid");
 
@@ -34,7 +35,7 @@ fn python() -> PathBuf {
             "-c",
             "import grpc, grpc_tools.protoc, grpc_health.v1.health_pb2, grpc_reflection.v1alpha.reflection_pb2",
         ])
-        .output();
+        .output_with_no_file_open();
     match check {
         Ok(out) if out.status.success() => candidate,
         Ok(out) => panic!(
@@ -70,7 +71,7 @@ impl Server {
             .args(extra)
             .stdout(Stdio::null())
             .stderr(Stdio::piped())
-            .spawn()
+            .spawn_with_no_file_open()
             .expect("starting hypsogrid serve");
         let stderr = child.stderr.take().expect("piped stderr");
         let (tx, rx) = mpsc::channel();
@@ -104,7 +105,7 @@ impl Server {
         while Instant::now() < deadline {
             let ok = Command::new(BIN)
                 .args(["health", "--server", &url])
-                .output()
+                .output_with_no_file_open()
                 .map(|o| o.status.success())
                 .unwrap_or(false);
             if ok {
@@ -162,7 +163,7 @@ fn python_client_checks_health_lists_services_and_queries_catalogue_area_and_pos
             "--stride",
             "1",
         ])
-        .output()
+        .output_with_no_file_open()
         .expect("running client.py");
     let (stdout, stderr) = text(&out);
     assert!(
@@ -249,7 +250,7 @@ with grpc.insecure_channel(sys.argv[1]) as channel:
 "#;
     let out = Command::new(&python)
         .args(["-c", script, &server.address])
-        .output()
+        .output_with_no_file_open()
         .expect("running python");
     let (stdout, stderr) = text(&out);
     assert!(
@@ -289,7 +290,7 @@ fn python_client_fails_with_a_message_when_the_server_refuses() {
         .arg(&client)
         .args(["--target", &server.address])
         .env_remove("HYPSOGRID_TOKEN")
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     let (stdout, stderr) = text(&out);
     assert_eq!(out.status.code(), Some(1), "{stdout}\n{stderr}");
@@ -300,7 +301,7 @@ fn python_client_fails_with_a_message_when_the_server_refuses() {
     let out = Command::new(&python)
         .arg(&client)
         .args(["--target", &server.address, "--token", "python-secret"])
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     let (stdout, stderr) = text(&out);
     assert!(out.status.success(), "{stdout}\n{stderr}");

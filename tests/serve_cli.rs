@@ -10,6 +10,7 @@ use hypsogrid::compute::{compute_heights, ComputeConfig};
 use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME};
 use hypsogrid::ingest::{read_cycle, IngestConfig};
 use hypsogrid::model::Layer;
+use hypsogrid::netcdf_session::NoFileOpen;
 
 mod common;
 
@@ -23,7 +24,7 @@ impl Server {
         all.extend_from_slice(&args[1..]);
         Command::new(BIN)
             .args(&all)
-            .output()
+            .output_with_no_file_open()
             .expect("running a client subcommand")
     }
 
@@ -414,7 +415,7 @@ fn bad_settings_end_with_one_line_naming_them() {
             "--listen",
             "127.0.0.1:0",
         ])
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert_eq!(out.status.code(), Some(1));
     let err = String::from_utf8_lossy(&out.stderr);
@@ -423,7 +424,7 @@ fn bad_settings_end_with_one_line_naming_them() {
 
     let out = Command::new(BIN)
         .args(["serve", "--memory-budget", "lots"])
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert_eq!(out.status.code(), Some(2), "a clap usage error");
     assert!(String::from_utf8_lossy(&out.stderr).contains("lots"));
@@ -437,7 +438,7 @@ fn bad_settings_end_with_one_line_naming_them() {
             "--timeout",
             "2s",
         ])
-        .output()
+        .output_with_no_file_open()
         .unwrap();
     assert_eq!(out.status.code(), Some(1));
     let err = String::from_utf8_lossy(&out.stderr);
@@ -613,7 +614,7 @@ fn the_offices_guidance_settings_are_what_guidance_answers_start_from() {
             .arg(&bad)
             .arg("--data")
             .arg(dir.path())
-            .output()
+            .output_with_no_file_open()
             .unwrap();
         assert_eq!(out.status.code(), Some(1), "{text}");
         let err = String::from_utf8_lossy(&out.stderr);

@@ -14,6 +14,7 @@ use hypsogrid::compute::{compute_heights, ComputeConfig};
 use hypsogrid::demo::{write_demo_cycle, DEMO_FILE_NAME, DEMO_LEAD_HOURS, DEMO_LEVELS_HPA};
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::{Heights, Layer};
+use hypsogrid::netcdf_session::NoFileOpen;
 use hypsogrid::pb;
 use hypsogrid::pb::height_service_client::HeightServiceClient;
 use hypsogrid::query::LoadedCycle;
@@ -580,7 +581,7 @@ fn make_certificates(dir: &std::path::Path) -> Option<(Vec<u8>, TlsFiles)> {
         std::process::Command::new("openssl")
             .args(args)
             .current_dir(dir)
-            .output()
+            .output_with_no_file_open()
             .map(|o| o.status.success())
             .unwrap_or(false)
     };

@@ -18,6 +18,7 @@ use ndarray::s;
 use hypsogrid::compute::ComputeConfig;
 use hypsogrid::ingest::IngestConfig;
 use hypsogrid::model::{Layer, Vertical};
+use hypsogrid::netcdf_session::NoFileOpen;
 use hypsogrid::products::verify::{
     consistency, verify, weighted_scores, ConsistencyRequest, Region, ReportKind, ScoreRow,
     TruthSource, VerifyError, VerifyRequest,
@@ -240,7 +241,7 @@ print(len(f), repr(float(w.sum())), repr(float(bias)), repr(float(rmse)), repr(f
         .arg("-c")
         .arg(script)
         .arg(&data)
-        .output()
+        .output_with_no_file_open()
         .expect("running python");
     assert!(
         out.status.success(),
@@ -924,7 +925,7 @@ fn valid_times_must_match_and_errors_name_both_files() {
             .arg(dir.path().join("fc-2011011012.nc"))
             .arg(dir.path().join("an-2011011100.nc"))
             .args(["--height", "500", "--region", "global", "--time", time])
-            .output()
+            .output_with_no_file_open()
             .expect("running hypsogrid verify")
     };
     for time in ["2011-01-11T00:00:00Z", "12h"] {

@@ -3,6 +3,7 @@
 //! for failure messages, signals sent with kill(2), and a kill on drop if a test fails early.
 #![allow(dead_code)]
 
+use hypsogrid::netcdf_session::NoFileOpen;
 use std::io::{BufRead, BufReader};
 use std::process::{Child, Command, Stdio};
 use std::sync::mpsc;
@@ -80,7 +81,9 @@ impl ServeChild {
         for (k, v) in env {
             cmd.env(k, v);
         }
-        let mut child = cmd.spawn().expect("starting hypsogrid serve");
+        let mut child = cmd
+            .spawn_with_no_file_open()
+            .expect("starting hypsogrid serve");
         let stderr = child.stderr.take().expect("stderr is piped");
         let lines = Arc::new(Mutex::new(Vec::new()));
         let (tx, rx) = mpsc::channel();
