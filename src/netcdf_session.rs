@@ -99,6 +99,21 @@ impl NoFileOpen for Command {
     }
 }
 
+/// Whether another open of `path` holds an exclusive `flock` on it: what HDF5 takes on a
+/// NetCDF-4 file while it is written (from another process, or a descriptor a child
+/// inherited), and why it then refuses to open the file. Asked only once an open has
+/// failed: the shared lock it tries for is released at once.
+pub(crate) fn locked_for_writing(path: &Path) -> bool {
+    use std::os::fd::AsRawFd;
+    let Ok(file) = std::fs::File::open(path) else {
+        return false;
+    };
+    // SAFETY: `flock` on a descriptor this function owns; a lock it takes goes with the
+    // descriptor when `file` is dropped below.
+    let status = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_SH | libc::LOCK_NB) };
+    status != 0 && std::io::Error::last_os_error().raw_os_error() == Some(libc::EWOULDBLOCK)
+}
+
 extern "C" {
     /// The NetCDF-C library's one-time set-up (`netcdf.h`, 4.6.2 and later).
     fn nc_initialize() -> std::os::raw::c_int;

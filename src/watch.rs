@@ -331,7 +331,7 @@ fn survey(
             && !tracked.growth_reported
         {
             let message = format!(
-                "'{}' was still being written after {} s: it will be loaded once its size and modification time stay unchanged for {} s",
+                "'{}' was still being written after {} s: it will be loaded once its size and modification time stay unchanged for {} s and no process holds it locked for writing",
                 path.display(),
                 config.max_wait_for_growth.as_secs_f64(),
                 config.settle.as_secs_f64()
@@ -366,6 +366,8 @@ enum Taken {
 enum LoadFailure {
     /// The store's reason for passing the file over.
     PassedOver(String),
+    /// Locked by a process that has it open for writing: the error, as reported.
+    Locked(String),
     /// The error, as reported.
     Error(String),
 }
@@ -394,6 +396,9 @@ async fn load_one(
             |e| match e {
                 LoadError::Ingest(IngestError::PassedOver { reason, .. }) => {
                     LoadFailure::PassedOver(reason)
+                }
+                LoadError::Ingest(e @ IngestError::Locked { .. }) => {
+                    LoadFailure::Locked(e.to_string())
                 }
                 e => LoadFailure::Error(e.to_string()),
             },
@@ -463,6 +468,15 @@ async fn load_one(
             }
             tracked.status = Status::Loaded;
             report.loaded.push(path.to_path_buf());
+        }
+        Err(LoadFailure::Locked(error)) => {
+            // Still being written by a process that holds it open: not at fault. It waits to
+            // settle again, as a file that grows; one held longer than the wait for growth is
+            // reported then.
+            tracing::info!(file = %path.display(), %error, "cycle file still locked by its writer");
+            tracked.changed_at = Instant::now();
+            tracked.old_when_seen = false;
+            report.waiting.push(path.to_path_buf());
         }
         Err(LoadFailure::Error(error)) if crate::netcdf_session::reads_stopped() => {
             // The process is stopping: the file is not at fault, and is read at the next start.

@@ -358,6 +358,69 @@ async fn a_file_that_never_stops_growing_is_reported_once_and_never_loaded() {
     assert_untouched(&s.store, &good);
 }
 
+// ----- a file its writer still holds locked -----
+
+/// Takes an exclusive `flock` on `path` through a descriptor of its own, as HDF5 does on a
+/// NetCDF-4 file while a process writes it; the lock goes when the returned file is dropped.
+fn lock_as_a_writer(path: &Path) -> std::fs::File {
+    use std::os::fd::AsRawFd;
+    let file = std::fs::File::open(path).expect("open to lock");
+    // SAFETY: flock on a descriptor this function owns (and hands over).
+    let status = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+    assert_eq!(status, 0, "locking {}", path.display());
+    file
+}
+
+/// A complete file that another process still holds open for writing: HDF5 refuses to
+/// open it ("netcdf: hdf error"), which is neither a damaged file nor a failure. The read
+/// names the lock, the watcher keeps the file waiting (no failure recorded, nothing served
+/// changes) and loads it once the lock is released.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_file_locked_by_its_writer_waits_and_is_loaded_once_released() {
+    let mut s = served().await;
+    let good = s.store.find("good.nc").expect("good");
+    let path = s.tmp.path().join("locked.nc");
+    std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
+    set_old_mtime(&path);
+    let lock = lock_as_a_writer(&path);
+
+    let err = hypsogrid::ingest::read_cycle(&path, &IngestConfig::default())
+        .expect_err("a locked file does not open");
+    let text = err.to_string();
+    assert!(
+        matches!(err, hypsogrid::ingest::IngestError::Locked { .. }),
+        "{text}"
+    );
+    assert!(
+        text.contains("locked.nc") && text.contains("open for writing"),
+        "{text}"
+    );
+
+    for _ in 0..3 {
+        let r = scan(&s.store, &mut s.state, &s.config).await;
+        assert!(r.loaded.is_empty() && r.failed.is_empty(), "{r:?}");
+        assert!(r.waiting.contains(&path), "{r:?}");
+        tokio::time::sleep(s.config.poll_interval).await;
+    }
+    let snap = s.store.snapshot();
+    assert!(snap.failures.is_empty(), "{:?}", snap.failures);
+    assert_untouched(&s.store, &good);
+
+    drop(lock);
+    let r = scan_until(
+        &s.store,
+        &mut s.state,
+        &s.config,
+        Duration::from_secs(10),
+        |r| !r.loaded.is_empty(),
+    )
+    .await;
+    assert_eq!(r.loaded, [path], "{r:?}");
+    assert!(s.store.find("locked.nc").is_some());
+    assert!(s.store.snapshot().failures.is_empty());
+    assert_still_served(&s.store, &good);
+}
+
 // ----- an unreadable folder -----
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]

@@ -83,6 +83,13 @@ pub enum IngestError {
         /// The library's message.
         detail: String,
     },
+    /// The file is locked by a process that has it open for writing: HDF5 locks a NetCDF-4
+    /// file while it is written, and refuses to open it meanwhile.
+    #[error("'{file}' is locked by another process that has it open for writing (HDF5 file locking): it can be read once that process closes it")]
+    Locked {
+        /// The file.
+        file: String,
+    },
     /// Reading a variable's values failed.
     #[error("cannot read variable '{variable}' in '{file}' ({detail}): the file may be truncated or damaged")]
     Read {
@@ -305,12 +312,21 @@ fn checked_label(path: &Path) -> Result<String, IngestError> {
 }
 
 /// Opens the file with HDF5's error printing off on this thread (the caller holds the
-/// session lock).
+/// session lock). A file the library refuses while another process holds it locked for
+/// writing is reported as such, not as damaged (the library says only `hdf error`).
 fn open_quietly(path: &Path, label: &str) -> Result<netcdf::File, IngestError> {
     crate::hdf5::quiet_on_this_thread();
-    netcdf::open(path).map_err(|e| IngestError::Damaged {
-        file: label.to_string(),
-        detail: e.to_string().to_lowercase(),
+    netcdf::open(path).map_err(|e| {
+        if crate::netcdf_session::locked_for_writing(path) {
+            IngestError::Locked {
+                file: label.to_string(),
+            }
+        } else {
+            IngestError::Damaged {
+                file: label.to_string(),
+                detail: e.to_string().to_lowercase(),
+            }
+        }
     })
 }
 
