@@ -12,10 +12,11 @@
 //! A multiply-add is fused only where a body asks for it (`f64::mul_add`), and then in every
 //! build: the AVX2 and AVX-512 builds require the processor's FMA instructions, and the
 //! baseline build is compiled a second time with them (and with AVX, which FMA needs: four
-//! `f64` lanes), which runs wherever the processor has them ([`fused_multiply_add`]). Only a processor without FMA (x86-64 from before
-//! about 2013) runs the plain baseline build, where each `mul_add` is a call to the C
-//! library's `fma`: correctly rounded like the instruction, so the same bits, but several
-//! times slower.
+//! `f64` lanes), which runs wherever the processor has them ([`fused_multiply_add`]). Only
+//! a processor without FMA (x86-64 processors from before about 2013, and some low-end
+//! ones since) runs the plain baseline build, where each `mul_add` is a call to a software
+//! `fma` routine: correctly rounded like the instruction, so the same bits, but several
+//! times slower (the kernel at 0.25° took 341 ms that way here, against 34 ms).
 
 /// A build of the inner loops, narrowest first.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -23,7 +24,7 @@ pub enum Lanes {
     /// The target's baseline instruction set (SSE2 on x86-64: two `f64` lanes), with AVX and
     /// FMA where the processor has them ([`fused_multiply_add`]).
     Portable,
-    /// AVX2: four `f64` or eight `f32` lanes.
+    /// AVX2 with FMA: four `f64` or eight `f32` lanes.
     Avx2,
     /// AVX-512 (F, VL, DQ and BW): eight `f64` or sixteen `f32` lanes.
     Avx512,
@@ -168,7 +169,8 @@ mod tests {
             .map(|i| (f64::from(i) * 0.37).sin() * 1e3)
             .collect();
         let start: Vec<f64> = (0..1000).map(|i| (f64::from(i) * 0.11).cos()).collect();
-        // The body called directly: the baseline build, `mul_add` as the C library's `fma`.
+        // The body called directly, compiled for the baseline: `mul_add` is a call to the
+        // software `fma` routine there.
         let mut library = start.clone();
         fused_products(&x, &mut library);
         let unfused: Vec<f64> = (0..1000).map(|i| x[i] * x[i + 1] + start[i]).collect();

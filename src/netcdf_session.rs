@@ -69,7 +69,8 @@ pub fn lock() -> MutexGuard<'static, ()> {
 /// process had a Python process running (74 runs in 80 with the two tests alone). Holding
 /// the session ([`lock`]) while the child starts means that no such descriptor exists at that
 /// moment. This crate's own programs start no children; tests, and programs that use this
-/// crate and start children, do so through these methods.
+/// crate and start children, do so through these methods. They wait for the session, so a
+/// thread that holds it already must not call them (the lock is not reentrant).
 pub trait NoFileOpen {
     /// `Command::spawn`, while no NetCDF file is open in this process.
     ///
