@@ -421,6 +421,56 @@ async fn a_file_locked_by_its_writer_waits_and_is_loaded_once_released() {
     assert_still_served(&s.store, &good);
 }
 
+/// A file held locked past `max_wait_for_growth` is reported once, as a file still being
+/// written, and loaded (the report cleared) once its writer lets go.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_file_locked_past_the_wait_for_growth_is_reported_once_then_loaded() {
+    let mut s = served().await;
+    let good = s.store.find("good.nc").expect("good");
+    let config = WatchConfig {
+        max_wait_for_growth: Duration::from_millis(600),
+        ..s.config.clone()
+    };
+    let path = s.tmp.path().join("held.nc");
+    std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
+    set_old_mtime(&path);
+    let lock = lock_as_a_writer(&path);
+    let started = Instant::now();
+    let mut reports = 0;
+    while started.elapsed() < Duration::from_millis(2000) {
+        let r = scan(&s.store, &mut s.state, &config).await;
+        assert!(r.loaded.is_empty() && r.failed.is_empty(), "{r:?}");
+        if r.still_growing == [path.clone()] {
+            reports += 1;
+            assert!(started.elapsed() >= Duration::from_millis(600));
+        }
+        tokio::time::sleep(config.poll_interval).await;
+    }
+    assert_eq!(reports, 1, "reported once per wait, not once per scan");
+    let snap = s.store.snapshot();
+    assert_eq!(snap.failures.len(), 1, "{:?}", snap.failures);
+    assert_eq!(snap.failures[0].path, path);
+    let error = &snap.failures[0].error;
+    assert!(
+        error.contains("held.nc") && error.contains("locked for writing"),
+        "{error}"
+    );
+    assert_untouched(&s.store, &good);
+
+    drop(lock);
+    let r = scan_until(
+        &s.store,
+        &mut s.state,
+        &config,
+        Duration::from_secs(10),
+        |r| !r.loaded.is_empty(),
+    )
+    .await;
+    assert_eq!(r.loaded, [path], "{r:?}");
+    assert!(s.store.snapshot().failures.is_empty());
+    assert_still_served(&s.store, &good);
+}
+
 // ----- an unreadable folder -----
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
