@@ -107,8 +107,9 @@ const INV_ATANH_COEFFS: [f64; 7] = [
 /// `(t1 − t2)/ln(t1/t2) = ((t1 + t2)/2) · R(u²)` with `R(s) = u/artanh(u)`, the reciprocal of
 /// `S(s) = artanh(u)/u = Σ_{j≥0} s^j/(2j + 1)`. `R` is kept to `s⁶` (`INV_ATANH_COEFFS`),
 /// evaluated by Estrin's scheme with fused multiply-adds (the same bits in every SIMD build
-/// and in scalar code: see [`crate::lanes`]). Taking the reciprocal series instead of dividing by `S`
-/// saves the second of two divisions per point-level, the slowest instruction of the loop.
+/// and in scalar code: see [`crate::lanes`]). Taking the reciprocal series instead of
+/// dividing by `S` saves the second of two divisions per point-level, the slowest
+/// instruction of the loop.
 ///
 /// Truncation bound: `S(s) = ∫₀¹ dt/(1 − s t²)`, and for `|s| ≤ ρ < 1` each `1/(1 − s t²)`
 /// has real part at least `1/(1 + ρ)`, so `S` has no zero in the disc and `|R| ≤ 1 + ρ` on
