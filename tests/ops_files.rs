@@ -304,6 +304,35 @@ async fn a_file_deleted_while_being_read_is_dropped_and_nothing_else_changes() {
 
 // ----- a file that never stops growing -----
 
+/// Scans `s`'s folder for `window` while `path` cannot be loaded yet (still growing, or held
+/// locked by its writer): nothing is loaded or failed, and `path` is reported as still being
+/// written exactly once, not before `config.max_wait_for_growth`. Returns the failure then
+/// recorded for it, the store's only one.
+async fn long_wait_report(
+    s: &mut Served,
+    config: &WatchConfig,
+    path: &Path,
+    window: Duration,
+) -> String {
+    let started = Instant::now();
+    let mut reports = 0;
+    while started.elapsed() < window {
+        let r = scan(&s.store, &mut s.state, config).await;
+        assert!(r.loaded.is_empty() && r.failed.is_empty(), "{r:?}");
+        if r.still_growing == [path.to_path_buf()] {
+            reports += 1;
+            // Not before the longest wait.
+            assert!(started.elapsed() >= config.max_wait_for_growth);
+        }
+        tokio::time::sleep(config.poll_interval).await;
+    }
+    assert_eq!(reports, 1, "reported once per wait, not once per scan");
+    let snap = s.store.snapshot();
+    assert_eq!(snap.failures.len(), 1, "{:?}", snap.failures);
+    assert_eq!(snap.failures[0].path, path);
+    snap.failures[0].error.clone()
+}
+
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
 async fn a_file_that_never_stops_growing_is_reported_once_and_never_loaded() {
     let mut s = served().await;
@@ -329,31 +358,10 @@ async fn a_file_that_never_stops_growing_is_reported_once_and_never_loaded() {
             }
         })
     };
-    let started = Instant::now();
-    let mut reports = 0;
-    while started.elapsed() < Duration::from_millis(2500) {
-        let r = scan(&s.store, &mut s.state, &config).await;
-        assert!(r.loaded.is_empty() && r.failed.is_empty(), "{r:?}");
-        if r.still_growing == [path.clone()] {
-            reports += 1;
-            // Not before the longest wait.
-            assert!(started.elapsed() >= Duration::from_millis(600));
-        }
-        tokio::time::sleep(config.poll_interval).await;
-    }
+    let error = long_wait_report(&mut s, &config, &path, Duration::from_millis(2500)).await;
     stop.store(true, Ordering::SeqCst);
     writer.join().expect("writer");
-    assert_eq!(reports, 1, "reported once per wait, not once per scan");
-    let snap = s.store.snapshot();
-    assert_eq!(snap.failures.len(), 1);
-    assert_eq!(snap.failures[0].path, path);
-    assert!(
-        snap.failures[0]
-            .error
-            .contains("still being written after 0.6 s"),
-        "{}",
-        snap.failures[0].error
-    );
+    assert!(error.contains("still being written after 0.6 s"), "{error}");
     assert!(s.store.find("endless.nc").is_none());
     assert_untouched(&s.store, &good);
 }
@@ -435,22 +443,7 @@ async fn a_file_locked_past_the_wait_for_growth_is_reported_once_then_loaded() {
     std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
     set_old_mtime(&path);
     let lock = lock_as_a_writer(&path);
-    let started = Instant::now();
-    let mut reports = 0;
-    while started.elapsed() < Duration::from_millis(2000) {
-        let r = scan(&s.store, &mut s.state, &config).await;
-        assert!(r.loaded.is_empty() && r.failed.is_empty(), "{r:?}");
-        if r.still_growing == [path.clone()] {
-            reports += 1;
-            assert!(started.elapsed() >= Duration::from_millis(600));
-        }
-        tokio::time::sleep(config.poll_interval).await;
-    }
-    assert_eq!(reports, 1, "reported once per wait, not once per scan");
-    let snap = s.store.snapshot();
-    assert_eq!(snap.failures.len(), 1, "{:?}", snap.failures);
-    assert_eq!(snap.failures[0].path, path);
-    let error = &snap.failures[0].error;
+    let error = long_wait_report(&mut s, &config, &path, Duration::from_millis(2000)).await;
     assert!(
         error.contains("held.nc") && error.contains("locked for writing"),
         "{error}"
