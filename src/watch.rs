@@ -112,6 +112,15 @@ struct Tracked {
     old_when_seen: bool,
 }
 
+impl Tracked {
+    /// The file is still being written (changed during its read, or held by its writer):
+    /// it waits from now to settle again, as a file seen changing.
+    fn settle_again(&mut self) {
+        self.changed_at = Instant::now();
+        self.old_when_seen = false;
+    }
+}
+
 /// What the watcher remembers between scans.
 #[derive(Debug, Default)]
 pub struct WatchState {
@@ -423,8 +432,7 @@ async fn load_one(
         if let Some(fp) = after {
             tracked.fingerprint = fp;
         }
-        tracked.changed_at = Instant::now();
-        tracked.old_when_seen = false;
+        tracked.settle_again();
         report.waiting.push(path.to_path_buf());
         return Taken::Read;
     }
@@ -474,8 +482,7 @@ async fn load_one(
             // settle again, as a file that grows; one held longer than the wait for growth is
             // reported then.
             tracing::info!(file = %path.display(), %error, "cycle file still locked by its writer");
-            tracked.changed_at = Instant::now();
-            tracked.old_when_seen = false;
+            tracked.settle_again();
             report.waiting.push(path.to_path_buf());
         }
         Err(LoadFailure::Error(error)) if crate::netcdf_session::reads_stopped() => {

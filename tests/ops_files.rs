@@ -368,15 +368,41 @@ async fn a_file_that_never_stops_growing_is_reported_once_and_never_loaded() {
 
 // ----- a file its writer still holds locked -----
 
-/// Takes an exclusive `flock` on `path` through a descriptor of its own, as HDF5 does on a
-/// NetCDF-4 file while a process writes it; the lock goes when the returned file is dropped.
-fn lock_as_a_writer(path: &Path) -> std::fs::File {
+/// A good fixture `name` in `s`'s folder, there for a while (read at the first scan), with an
+/// exclusive `flock` on it through a descriptor of its own, as HDF5 takes on a NetCDF-4 file
+/// while a process writes it; the lock goes when the returned file is dropped.
+fn fixture_locked_by_a_writer(s: &Served, name: &str) -> (PathBuf, std::fs::File) {
     use std::os::fd::AsRawFd;
-    let file = std::fs::File::open(path).expect("open to lock");
+    let path = s.tmp.path().join(name);
+    std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
+    set_old_mtime(&path);
+    let file = std::fs::File::open(&path).expect("open to lock");
     // SAFETY: flock on a descriptor this function owns (and hands over).
     let status = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
     assert_eq!(status, 0, "locking {}", path.display());
-    file
+    (path, file)
+}
+
+/// Releases `lock` on `path` and scans until a file is loaded: `path`, with no failure left
+/// and `good` still served.
+async fn loaded_once_released(
+    s: &mut Served,
+    config: &WatchConfig,
+    (path, lock): (PathBuf, std::fs::File),
+    good: &Arc<hypsogrid::query::LoadedCycle>,
+) {
+    drop(lock);
+    let r = scan_until(
+        &s.store,
+        &mut s.state,
+        config,
+        Duration::from_secs(10),
+        |r| !r.loaded.is_empty(),
+    )
+    .await;
+    assert_eq!(r.loaded, [path], "{r:?}");
+    assert!(s.store.snapshot().failures.is_empty());
+    assert_still_served(&s.store, good);
 }
 
 /// A complete file that another process still holds open for writing: HDF5 refuses to
@@ -387,10 +413,7 @@ fn lock_as_a_writer(path: &Path) -> std::fs::File {
 async fn a_file_locked_by_its_writer_waits_and_is_loaded_once_released() {
     let mut s = served().await;
     let good = s.store.find("good.nc").expect("good");
-    let path = s.tmp.path().join("locked.nc");
-    std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
-    set_old_mtime(&path);
-    let lock = lock_as_a_writer(&path);
+    let (path, lock) = fixture_locked_by_a_writer(&s, "locked.nc");
 
     let err = hypsogrid::ingest::read_cycle(&path, &IngestConfig::default())
         .expect_err("a locked file does not open");
@@ -414,19 +437,9 @@ async fn a_file_locked_by_its_writer_waits_and_is_loaded_once_released() {
     assert!(snap.failures.is_empty(), "{:?}", snap.failures);
     assert_untouched(&s.store, &good);
 
-    drop(lock);
-    let r = scan_until(
-        &s.store,
-        &mut s.state,
-        &s.config,
-        Duration::from_secs(10),
-        |r| !r.loaded.is_empty(),
-    )
-    .await;
-    assert_eq!(r.loaded, [path], "{r:?}");
+    let config = s.config.clone();
+    loaded_once_released(&mut s, &config, (path, lock), &good).await;
     assert!(s.store.find("locked.nc").is_some());
-    assert!(s.store.snapshot().failures.is_empty());
-    assert_still_served(&s.store, &good);
 }
 
 /// A file held locked past `max_wait_for_growth` is reported once, as a file still being
@@ -439,29 +452,14 @@ async fn a_file_locked_past_the_wait_for_growth_is_reported_once_then_loaded() {
         max_wait_for_growth: Duration::from_millis(600),
         ..s.config.clone()
     };
-    let path = s.tmp.path().join("held.nc");
-    std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
-    set_old_mtime(&path);
-    let lock = lock_as_a_writer(&path);
+    let (path, lock) = fixture_locked_by_a_writer(&s, "held.nc");
     let error = long_wait_report(&mut s, &config, &path, Duration::from_millis(2000)).await;
     assert!(
         error.contains("held.nc") && error.contains("locked for writing"),
         "{error}"
     );
     assert_untouched(&s.store, &good);
-
-    drop(lock);
-    let r = scan_until(
-        &s.store,
-        &mut s.state,
-        &config,
-        Duration::from_secs(10),
-        |r| !r.loaded.is_empty(),
-    )
-    .await;
-    assert_eq!(r.loaded, [path], "{r:?}");
-    assert!(s.store.snapshot().failures.is_empty());
-    assert_still_served(&s.store, &good);
+    loaded_once_released(&mut s, &config, (path, lock), &good).await;
 }
 
 // ----- an unreadable folder -----
