@@ -565,6 +565,12 @@ def invented_grid(rows, cols, levels, seed=20310114):
         tv = np.maximum(tv0 * (pk / p_msl) ** kappa, tv_trop)
         qk = 0.012 * (1.0 - 0.7 * s2) * np.clip((pk - 30000.0) / 70000.0, 0.0, 1.0) ** 2 + 3e-6
         qk = qk * (1.0 + 0.05 * rng.standard_normal((rows, cols)))
+        # At most 90 % relative humidity (WMO-No. 8 Magnus form over water, at the temperature
+        # of the uncapped humidity; capping warms the air, which only lowers it): the cold
+        # polar columns would otherwise hold three times the vapour saturation allows, which a
+        # reader rightly refuses once the file carries relative humidity (compare.sh RH=1).
+        t_first = (tv / (1.0 + (1.0 / EPS - 1.0) * qk))[np.newaxis]
+        qk = np.fmin(qk, specific_from_relative_humidity(np.array([pk]), t_first, np.full(t_first.shape, 0.9))[0])
         t[k] = tv / (1.0 + (1.0 / EPS - 1.0) * qk)
         q[k] = qk
     return {
@@ -790,8 +796,9 @@ def main(argv=None):
     parser.add_argument("--layers", default=DEFAULT_LAYERS,
                         help="layers for thickness, BOTTOM:TOP in hPa, comma separated; '' for none "
                              f"(default {DEFAULT_LAYERS}, as `hypsogrid compute`)")
-    parser.add_argument("--grid", type=float, choices=(0.25, 0.5),
-                        help="time the compute step alone on an invented in-memory grid of this spacing, degrees")
+    parser.add_argument("--grid", type=float, choices=(0.25, 0.5, 5.0),
+                        help="time the compute step alone on an invented in-memory grid of this spacing, "
+                             "degrees (5 is for smoke runs: 37 x 72 columns)")
     parser.add_argument("--save-grid", metavar="FILE",
                         help="with --grid: also write the invented grid as a NetCDF-4 input file, so that "
                              "`hypsogrid compute` and --input can run on the same data")
