@@ -9,6 +9,14 @@
 #   ZLIB=1 benches/compare.sh     # also the same 0.5° cycle stored zlib-1 compressed (shuffled)
 #   RH=1 benches/compare.sh       # also the same 0.5° cycle with relative humidity (as GFS files
 #                                 # carry it) instead of specific humidity
+#   SMOKE=1 benches/compare.sh    # one pair on an invented 5° grid (37 x 72 x 37, written by
+#                                 # numpy_baseline.py) with the debug build, RH=1 included:
+#                                 # checks the script and the agreement (CI runs it); its times
+#                                 # mean nothing
+#
+# Whatever the mode, the script fails (exit 1) when the two sides' heights, below-ground
+# flags or thicknesses disagree: a ratio between programs that compute different things is
+# no ratio.
 #
 # The synthetic file is the one the compute bench writes (target/bench-data/global_0p5deg.nc);
 # when it is missing, the compute bench's smoke run writes it. The Rust batch runs twice per
@@ -21,20 +29,35 @@ cd "$(dirname "$0")/.."
 PY=${PYTHON:-target/python-venv/bin/python}
 REPEAT=${REPEAT:-3}
 INPUT=target/bench-data/global_0p5deg.nc
+LABEL=0p5
+BIN=target/release/hypsogrid
 TIME=/usr/bin/time
+if [ -n "${SMOKE:-}" ]; then
+    REPEAT=1
+    BIN=target/debug/hypsogrid
+    ZLIB=0
+    QUARTER=0
+    RH=1
+fi
 
 if [ ! -x "$TIME" ]; then
     echo "compare.sh needs GNU time at $TIME (Debian package 'time')" >&2
     exit 1
 fi
-cargo build --release --quiet
+WORK=$(mktemp -d)
+trap 'rm -rf "$WORK"' EXIT
+if [ -n "${SMOKE:-}" ]; then
+    cargo build --quiet --bin hypsogrid
+    INPUT=$WORK/grid_5deg.nc
+    LABEL=5deg
+    "$PY" benches/numpy_baseline.py --grid 5 --repeat 1 --save-grid "$INPUT" >/dev/null
+else
+    cargo build --release --quiet
+fi
 if [ ! -f "$INPUT" ]; then
     echo "writing $INPUT with the compute bench's smoke run" >&2
     cargo bench --quiet --bench compute -- --test compute_parts_0p5deg/read >&2
 fi
-
-WORK=$(mktemp -d)
-trap 'rm -rf "$WORK"' EXIT
 
 # Seconds between two $EPOCHREALTIME readings (GNU time's %e has only 10 ms steps, a tenth
 # of a Rust run).
@@ -50,10 +73,10 @@ rust_run() {
     t0=$EPOCHREALTIME
     if [ "$threads" = all ]; then
         "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
-            target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
+            "$BIN" compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
     else
         RAYON_NUM_THREADS=$threads "$TIME" -o "$WORK/time.txt" -f '%e %U %S %M' \
-            target/release/hypsogrid compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
+            "$BIN" compute "$input" --output "$WORK/rust_$label.nc" >/dev/null
     fi
     t1=$EPOCHREALTIME
     read -r _ user sys rss <"$WORK/time.txt"
@@ -102,7 +125,7 @@ run_grid() {
 }
 
 echo "# $(date -u +%Y-%m-%dT%H:%M:%SZ), load average: $(cut -d' ' -f1-3 /proc/loadavg), $(nproc) cores" >&2
-run_grid 0p5 "$INPUT"
+run_grid "$LABEL" "$INPUT"
 if [ "${ZLIB:-0}" = 1 ]; then
     ZLIB_INPUT=target/bench-data/global_0p5deg_zlib.nc
     if [ ! -f "$ZLIB_INPUT" ]; then
@@ -112,12 +135,12 @@ if [ "${ZLIB:-0}" = 1 ]; then
     run_grid 0p5_zlib "$ZLIB_INPUT"
 fi
 if [ "${RH:-0}" = 1 ]; then
-    RH_INPUT=target/bench-data/global_0p5deg_rh.nc
+    RH_INPUT=${INPUT%.nc}_rh.nc
     if [ ! -f "$RH_INPUT" ]; then
         echo "writing $RH_INPUT from $INPUT (numpy_baseline.py --relative-humidity-copy)" >&2
         "$PY" benches/numpy_baseline.py --relative-humidity-copy "$INPUT" --output "$RH_INPUT" >/dev/null
     fi
-    run_grid 0p5_rh "$RH_INPUT"
+    run_grid "${LABEL}_rh" "$RH_INPUT"
 fi
 if [ "${QUARTER:-0}" = 1 ]; then
     "$PY" benches/numpy_baseline.py --grid 0.25 --repeat "$REPEAT" --save-grid "$WORK/grid_0p25.nc" |
@@ -129,6 +152,34 @@ fi
 import json, statistics, sys
 
 records = [json.loads(line) for line in open(sys.argv[1]) if line.startswith("{")]
+# Both sides compute in f64 by the same method and store f32: their heights differ by the
+# rounding of the last stored step at most (2-4 mm at 30-50 km), and by the order of the
+# humidity conversion's operations with relative humidity (3.9 mm in docs/SPEED.md). A
+# centimetre is far inside the metre a forecaster reads and far outside that rounding.
+TOLERANCE_M = 0.01
+disagreements = []
+
+
+def agreement(label, check):
+    """What makes the two sides' outputs of one grid differ, as lines (none when they agree)."""
+    if not check:
+        return [f"{label}: no comparison of the two outputs was recorded"]
+    found = []
+    fields = {k: v for k, v in check.items() if isinstance(v, dict) and "compared" in v}
+    for name, d in sorted(fields.items()):
+        if not d["compared"]:
+            found.append(f"{label}: {name}: no value compared")
+        elif d["missing_in_one_only"]:
+            found.append(f"{label}: {name}: {d['missing_in_one_only']} values missing on one side only")
+        elif d["max_abs_m"] > TOLERANCE_M:
+            found.append(f"{label}: {name}: max |d| {d['max_abs_m']} m > {TOLERANCE_M} m "
+                         f"(worst at {d.get('worst_at')})")
+    if "geopotential_height" not in fields:
+        found.append(f"{label}: the heights were not compared")
+    if check.get("below_ground_flags_differing"):
+        found.append(f"{label}: {check['below_ground_flags_differing']} below-ground flags differ")
+    return found
+
 
 def median(values):
     return statistics.median(values) if values else float("nan")
@@ -163,4 +214,11 @@ for label in sorted({r.get("grid") or r.get("grid_label") for r in records if r.
           f"Rust whole process (all cores) {spread([rust_all[i]['seconds'] for i in pairs])} s, "
           f"ratio (read+compute+write, all cores) {min(pair_ratios):.1f}-{max(pair_ratios):.1f}")
     print(f"  heights NumPy - Rust: max |d| {diff.get('max_abs_m')} m, rms {diff.get('rms_m')} m over {diff.get('compared')} values")
+    found = agreement(label, check)
+    thick = sorted(k for k, v in check.items() if k != "geopotential_height" and isinstance(v, dict) and "compared" in v)
+    print(f"  agreement within {TOLERANCE_M} m (heights, {len(thick)} thicknesses, below-ground flags): "
+          + ("yes" if not found else "NO"))
+    disagreements += found
+if disagreements:
+    sys.exit("compare.sh: the two sides disagree:\n  " + "\n  ".join(disagreements))
 EOF
