@@ -11,10 +11,12 @@ fn main() -> ExitCode {
     // HDF5 1.10 locks every file it opens (flock). A lock is tied to the open file description,
     // so a process that forks while it has a NetCDF-4 file open hands the lock to the child,
     // and a reader elsewhere then fails to open that file ("netcdf: hdf error"); the same
-    // locks fail outright on some network filesystems. hypsogrid never shares a file between
-    // writer and reader while it is written (the data folder's settle and rename rules see to
-    // that), so it turns HDF5's locking off unless the caller has set it. This runs before
-    // any thread exists.
+    // locks fail outright on some network filesystems, and a read holding its shared lock
+    // makes a producer's write to that file fail. hypsogrid turns HDF5's locking off unless
+    // the caller has set it, and asks for a writer's lock itself before each read of a cycle
+    // file (`ingest::open_quietly`: a file its producer still holds locked waits, unread);
+    // the data folder's settle rules and the fingerprint check after each read cover
+    // producers that take no lock. This runs before any thread exists.
     if std::env::var_os("HDF5_USE_FILE_LOCKING").is_none() {
         std::env::set_var("HDF5_USE_FILE_LOCKING", "FALSE");
     }

@@ -102,8 +102,10 @@ impl NoFileOpen for Command {
 
 /// Whether another open of `path` holds an exclusive `flock` on it: what HDF5 takes on a
 /// NetCDF-4 file while it is written (from another process, or a descriptor a child
-/// inherited), and why it then refuses to open the file. Asked only once an open has
-/// failed: the shared lock it tries for is released at once.
+/// inherited), and why, with its own locking on, it then refuses to open the file. Asked
+/// before every read of a cycle file and again when an open fails: the shared lock it tries
+/// for is released at once (a writer that opens the file in those microseconds is refused by
+/// its HDF5, as it would be throughout a read with HDF5's locking on).
 pub(crate) fn locked_for_writing(path: &Path) -> bool {
     use std::os::fd::AsRawFd;
     let Ok(file) = std::fs::File::open(path) else {

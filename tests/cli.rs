@@ -206,6 +206,44 @@ fn compute_on_a_file_that_is_not_netcdf_fails_with_one_line_and_leaves_nothing()
     );
 }
 
+/// The binary turns HDF5's own file locking off (src/main.rs), so the library no longer
+/// refuses a file that its producer still holds open for writing: the binary must ask for
+/// the writer's lock itself. HDF5 1.10 and later hold an exclusive `flock` on a NetCDF-4
+/// file while they write it (taken here as such a writer would); the file is refused, named,
+/// with the lock as the reason and no output left, and read once the lock is released.
+#[test]
+fn compute_refuses_a_file_its_writer_still_holds_locked_and_reads_it_once_released() {
+    use std::os::fd::AsRawFd;
+    let dir = tempfile::tempdir().unwrap();
+    let input = write_demo_cycle(dir.path()).unwrap();
+    let output = dir.path().join("out.nc");
+    let args = [
+        os("compute"),
+        input.as_os_str(),
+        os("--output"),
+        output.as_os_str(),
+    ];
+    let writer = std::fs::File::open(&input).unwrap();
+    // SAFETY: flock on a descriptor this test owns; the lock goes with it when dropped.
+    let status = unsafe { libc::flock(writer.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+    assert_eq!(status, 0, "locking {}", input.display());
+    let out = hypsogrid(&args);
+    let err = stderr(&out);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(
+        err.contains(&input.display().to_string()) && err.contains("locked"),
+        "names the file and the lock: {err}"
+    );
+    assert!(
+        !output.exists(),
+        "no output while the writer holds the file"
+    );
+    drop(writer);
+    let out = hypsogrid(&args);
+    assert!(out.status.success(), "{}", stderr(&out));
+    assert!(output.exists());
+}
+
 #[test]
 fn compute_into_a_missing_folder_fails_naming_it() {
     let dir = tempfile::tempdir().unwrap();

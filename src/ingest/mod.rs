@@ -312,15 +312,25 @@ fn checked_label(path: &Path) -> Result<String, IngestError> {
 }
 
 /// Opens the file with HDF5's error printing off on this thread (the caller holds the
-/// session lock). A file the library refuses while another process holds it locked for
-/// writing is reported as such, not as damaged (the library says only `hdf error`).
+/// session lock), unless another process holds it locked for writing.
+///
+/// The writer's lock is asked for before the open, not left to the library: the `hypsogrid`
+/// binary turns HDF5's own locking off (`src/main.rs`: so that its reads never make a
+/// producer's write fail), and the library then opens a file whose writer still holds it and
+/// reads whatever part of it is written. Where HDF5's locking is on, a file locked between
+/// this question and the open is refused by the library; that refusal is reported as the
+/// lock too, not as damage (the library says only `hdf error`).
 fn open_quietly(path: &Path, label: &str) -> Result<netcdf::File, IngestError> {
+    let locked = || IngestError::Locked {
+        file: label.to_string(),
+    };
+    if crate::netcdf_session::locked_for_writing(path) {
+        return Err(locked());
+    }
     crate::hdf5::quiet_on_this_thread();
     netcdf::open(path).map_err(|e| {
         if crate::netcdf_session::locked_for_writing(path) {
-            IngestError::Locked {
-                file: label.to_string(),
-            }
+            locked()
         } else {
             IngestError::Damaged {
                 file: label.to_string(),
