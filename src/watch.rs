@@ -106,6 +106,10 @@ struct Tracked {
     status: Status,
     /// Whether the "still growing" failure has been recorded for this wait.
     growth_reported: bool,
+    /// Whether this wait has logged the file as locked by its writer (at INFO once; the
+    /// retries after it at DEBUG, so that a producer holding a file for an hour does not
+    /// fill the log with a line per settle time).
+    lock_logged: bool,
     /// Whether this version of the file had a modification time at least the settle time
     /// old when first seen: stable from the start (a file renamed into place, or there at
     /// start-up).
@@ -318,6 +322,7 @@ fn survey(
             waiting_since: now,
             status: Status::Waiting,
             growth_reported: false,
+            lock_logged: false,
             old_when_seen: old,
         });
         if tracked.fingerprint != *fp {
@@ -328,6 +333,7 @@ fn survey(
                 tracked.status = Status::Waiting;
                 tracked.waiting_since = now;
                 tracked.growth_reported = false;
+                tracked.lock_logged = false;
             }
         }
         if tracked.status != Status::Waiting {
@@ -481,7 +487,12 @@ async fn load_one(
             // Still being written by a process that holds it open: not at fault. It waits to
             // settle again, as a file that grows; one held longer than the wait for growth is
             // reported then.
-            tracing::info!(file = %path.display(), %error, "cycle file still locked by its writer");
+            if tracked.lock_logged {
+                tracing::debug!(file = %path.display(), "cycle file still locked by its writer");
+            } else {
+                tracing::info!(file = %path.display(), %error, "cycle file still locked by its writer");
+                tracked.lock_logged = true;
+            }
             tracked.settle_again();
             report.waiting.push(path.to_path_buf());
         }

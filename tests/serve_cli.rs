@@ -682,6 +682,55 @@ fn sigterm_during_the_startup_scan_ends_it_without_the_files_left() {
     assert_eq!(code, Some(0), "exit code after SIGTERM");
 }
 
+/// The binary as operators run it, with HDF5's own file locking off (src/main.rs): a cycle
+/// whose producer still holds it locked for writing (the exclusive `flock` HDF5 1.10 and
+/// later take while they write, taken here as such a producer would) is not read, is logged
+/// as locked once however many scans it waits through, and is served once released.
+#[test]
+fn a_cycle_locked_by_its_writer_is_logged_once_and_served_once_released() {
+    use std::os::fd::AsRawFd;
+    let dir = tempfile::tempdir().unwrap();
+    let path = write_demo_cycle(dir.path()).unwrap();
+    let an_hour_ago = std::time::SystemTime::now() - Duration::from_secs(3600);
+    let writer = std::fs::File::options().write(true).open(&path).unwrap();
+    writer.set_modified(an_hour_ago).unwrap();
+    // SAFETY: flock on a descriptor this test owns; the lock goes with it when dropped.
+    let status = unsafe { libc::flock(writer.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+    assert_eq!(status, 0, "locking {}", path.display());
+    let data = dir.path().to_string_lossy().into_owned();
+    let server = Server::start(
+        &[
+            "--data",
+            &data,
+            "--listen",
+            "127.0.0.1:0",
+            "--settle",
+            "100ms",
+            "--poll-interval",
+            "50ms",
+        ],
+        &[],
+    );
+    let locked_lines = |log: &str| {
+        log.lines()
+            .filter(|l| l.contains("still locked by its writer"))
+            .count()
+    };
+    // About ten more settle times, each ending in another attempt.
+    std::thread::sleep(Duration::from_millis(1200));
+    let log = server.log();
+    assert_eq!(locked_lines(&log), 1, "logged once:\n{log}");
+    assert!(log.contains(DEMO_FILE_NAME), "{log}");
+    assert!(!log.contains("cycle loaded"), "read while locked:\n{log}");
+    assert!(catalogue_ids(&server).is_empty());
+    drop(writer);
+    server.wait_for_log("cycle loaded");
+    assert_eq!(catalogue_ids(&server), [DEMO_FILE_NAME]);
+    assert_eq!(locked_lines(&server.log()), 1);
+    let (code, _) = server.terminate();
+    assert_eq!(code, Some(0));
+}
+
 /// Sends SIGTERM, waits for the exit and hands the whole log (read after the exit) to
 /// `check`.
 fn server_terminate_keeping_log(
