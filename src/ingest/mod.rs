@@ -84,7 +84,9 @@ pub enum IngestError {
         detail: String,
     },
     /// The file is locked by a process that has it open for writing: HDF5 locks a NetCDF-4
-    /// file while it is written, and refuses to open it meanwhile.
+    /// file while it is written. Asked before every read (where HDF5's own locking is on, the
+    /// library would refuse the file; where it is off, as in the `hypsogrid` binary, it would
+    /// read a part-written file).
     #[error("'{file}' is locked by another process that has it open for writing (HDF5 file locking): it can be read once that process closes it")]
     Locked {
         /// The file.
