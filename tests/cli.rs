@@ -6,6 +6,8 @@ use std::process::{Command, Output};
 use hypsogrid::demo::write_demo_cycle;
 use hypsogrid::netcdf_session::NoFileOpen;
 
+mod common;
+
 fn hypsogrid(args: &[&std::ffi::OsStr]) -> Output {
     Command::new(env!("CARGO_BIN_EXE_hypsogrid"))
         .args(args)
@@ -213,7 +215,6 @@ fn compute_on_a_file_that_is_not_netcdf_fails_with_one_line_and_leaves_nothing()
 /// with the lock as the reason and no output left, and read once the lock is released.
 #[test]
 fn compute_refuses_a_file_its_writer_still_holds_locked_and_reads_it_once_released() {
-    use std::os::fd::AsRawFd;
     let dir = tempfile::tempdir().unwrap();
     let input = write_demo_cycle(dir.path()).unwrap();
     let output = dir.path().join("out.nc");
@@ -223,10 +224,7 @@ fn compute_refuses_a_file_its_writer_still_holds_locked_and_reads_it_once_releas
         os("--output"),
         output.as_os_str(),
     ];
-    let writer = std::fs::File::open(&input).unwrap();
-    // SAFETY: flock on a descriptor this test owns; the lock goes with it when dropped.
-    let status = unsafe { libc::flock(writer.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
-    assert_eq!(status, 0, "locking {}", input.display());
+    let writer = common::writer_lock::held_as_a_writer(&input);
     let out = hypsogrid(&args);
     let err = stderr(&out);
     assert_eq!(out.status.code(), Some(1), "{err}");

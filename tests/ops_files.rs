@@ -372,14 +372,10 @@ async fn a_file_that_never_stops_growing_is_reported_once_and_never_loaded() {
 /// exclusive `flock` on it through a descriptor of its own, as HDF5 takes on a NetCDF-4 file
 /// while a process writes it; the lock goes when the returned file is dropped.
 fn fixture_locked_by_a_writer(s: &Served, name: &str) -> (PathBuf, std::fs::File) {
-    use std::os::fd::AsRawFd;
     let path = s.tmp.path().join(name);
     std::fs::write(&path, fixture_bytes(&FixtureSpec::default())).expect("write");
     set_old_mtime(&path);
-    let file = std::fs::File::open(&path).expect("open to lock");
-    // SAFETY: flock on a descriptor this function owns (and hands over).
-    let status = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
-    assert_eq!(status, 0, "locking {}", path.display());
+    let file = common::writer_lock::held_as_a_writer(&path);
     (path, file)
 }
 

@@ -17,6 +17,24 @@ mod common;
 use common::serve_child::{ServeChild as Server, BIN};
 
 impl Server {
+    /// Starts `hypsogrid serve` on the folder `data` on 127.0.0.1:0 with the watcher's
+    /// `(settle, poll_interval)` and `extra` arguments, as [`Server::start`] does.
+    fn watching(data: &Path, (settle, poll): (&str, &str), extra: &[&str]) -> Server {
+        let data = data.to_string_lossy().into_owned();
+        let mut args = vec![
+            "--data",
+            &data,
+            "--listen",
+            "127.0.0.1:0",
+            "--settle",
+            settle,
+            "--poll-interval",
+            poll,
+        ];
+        args.extend_from_slice(extra);
+        Server::start(&args, &[])
+    }
+
     /// Runs a client subcommand against this server.
     fn client(&self, args: &[&str]) -> Output {
         let url = self.url();
@@ -86,20 +104,7 @@ fn batch_thickness(path: &Path, t: usize, row: usize, col: usize) -> (f64, f64, 
 fn serve_answers_every_client_command_reloads_and_stops_on_sigterm() {
     let dir = tempfile::tempdir().unwrap();
     let demo = write_demo_cycle(dir.path()).unwrap();
-    let data = dir.path().to_string_lossy().into_owned();
-    let server = Server::start(
-        &[
-            "--data",
-            &data,
-            "--listen",
-            "127.0.0.1:0",
-            "--settle",
-            "200ms",
-            "--poll-interval",
-            "100ms",
-        ],
-        &[],
-    );
+    let server = Server::watching(dir.path(), ("200ms", "100ms"), &[]);
     assert!(
         server.address.starts_with("127.0.0.1:"),
         "{}",
@@ -358,24 +363,11 @@ fn tokens_guard_the_queries_and_logs_can_be_json() {
     write_demo_cycle(dir.path()).unwrap();
     let tokens = dir.path().join("tokens.txt");
     std::fs::write(&tokens, "# forecast office tools\nsecret-one\nsecret-two\n").unwrap();
-    let data = dir.path().to_string_lossy().into_owned();
     let tokens_arg = tokens.to_string_lossy().into_owned();
-    let server = Server::start(
-        &[
-            "--data",
-            &data,
-            "--listen",
-            "127.0.0.1:0",
-            "--settle",
-            "100ms",
-            "--poll-interval",
-            "100ms",
-            "--auth-tokens",
-            &tokens_arg,
-            "--log-format",
-            "json",
-        ],
-        &[],
+    let server = Server::watching(
+        dir.path(),
+        ("100ms", "100ms"),
+        &["--auth-tokens", &tokens_arg, "--log-format", "json"],
     );
     // Health stays open for probes.
     server.wait_serving();
@@ -688,29 +680,12 @@ fn sigterm_during_the_startup_scan_ends_it_without_the_files_left() {
 /// as locked once however many scans it waits through, and is served once released.
 #[test]
 fn a_cycle_locked_by_its_writer_is_logged_once_and_served_once_released() {
-    use std::os::fd::AsRawFd;
     let dir = tempfile::tempdir().unwrap();
     let path = write_demo_cycle(dir.path()).unwrap();
     let an_hour_ago = std::time::SystemTime::now() - Duration::from_secs(3600);
-    let writer = std::fs::File::options().write(true).open(&path).unwrap();
+    let writer = common::writer_lock::held_as_a_writer(&path);
     writer.set_modified(an_hour_ago).unwrap();
-    // SAFETY: flock on a descriptor this test owns; the lock goes with it when dropped.
-    let status = unsafe { libc::flock(writer.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
-    assert_eq!(status, 0, "locking {}", path.display());
-    let data = dir.path().to_string_lossy().into_owned();
-    let server = Server::start(
-        &[
-            "--data",
-            &data,
-            "--listen",
-            "127.0.0.1:0",
-            "--settle",
-            "100ms",
-            "--poll-interval",
-            "50ms",
-        ],
-        &[],
-    );
+    let server = Server::watching(dir.path(), ("100ms", "50ms"), &[]);
     let locked_lines = |log: &str| {
         log.lines()
             .filter(|l| l.contains("still locked by its writer"))
