@@ -34,15 +34,22 @@ impl Lanes {
     /// Every build, narrowest first.
     pub const ALL: [Lanes; 3] = [Lanes::Portable, Lanes::Avx2, Lanes::Avx512];
 
-    /// Whether this processor runs the build.
+    /// Whether this processor runs the build (found once, then a load: the dispatch of
+    /// `lane_builds!` asks on every call, which the area answers make once per row).
     pub fn available(self) -> bool {
+        self <= detected().0
+    }
+
+    /// Whether this processor runs the build, asked of the processor (the detection's own
+    /// results are cached too, but each is a load and a test, seven for AVX-512).
+    fn detect(self) -> bool {
         match self {
             Lanes::Portable => true,
             #[cfg(target_arch = "x86_64")]
-            Lanes::Avx2 => std::is_x86_feature_detected!("avx2") && fused_multiply_add(),
+            Lanes::Avx2 => std::is_x86_feature_detected!("avx2") && detect_fused_multiply_add(),
             #[cfg(target_arch = "x86_64")]
             Lanes::Avx512 => {
-                Lanes::Avx2.available()
+                Lanes::Avx2.detect()
                     && std::is_x86_feature_detected!("avx512f")
                     && std::is_x86_feature_detected!("avx512vl")
                     && std::is_x86_feature_detected!("avx512dq")
@@ -60,11 +67,9 @@ impl Lanes {
 
     /// The widest build this processor runs that is no wider than `limit`.
     pub fn widest_up_to(limit: Lanes) -> Lanes {
-        Lanes::ALL
-            .into_iter()
-            .rev()
-            .find(|l| *l <= limit && l.available())
-            .unwrap_or(Lanes::Portable)
+        // Each build needs what the narrower ones need, so the builds this processor runs
+        // are those up to the widest.
+        limit.min(detected().0)
     }
 
     /// A short name for logs and benchmark notes: `portable`, `avx2` or `avx512`.
@@ -81,6 +86,24 @@ impl Lanes {
 /// with AVX and needs it (the baseline build's second compilation enables both); on other
 /// targets `true`, where `f64::mul_add` compiles to the target's own instruction or call.
 pub fn fused_multiply_add() -> bool {
+    detected().1
+}
+
+/// The widest build the processor runs and whether it has FMA, asked of it once.
+fn detected() -> &'static (Lanes, bool) {
+    static DETECTED: std::sync::OnceLock<(Lanes, bool)> = std::sync::OnceLock::new();
+    DETECTED.get_or_init(|| {
+        let widest = Lanes::ALL
+            .into_iter()
+            .rev()
+            .find(|l| l.detect())
+            .unwrap_or(Lanes::Portable);
+        (widest, detect_fused_multiply_add())
+    })
+}
+
+/// [`fused_multiply_add`], asked of the processor.
+fn detect_fused_multiply_add() -> bool {
     #[cfg(target_arch = "x86_64")]
     return std::is_x86_feature_detected!("avx") && std::is_x86_feature_detected!("fma");
     #[cfg(not(target_arch = "x86_64"))]
