@@ -1453,6 +1453,12 @@ impl IsobaricKernel {
         step: StepFields<'_>,
         out: StepOutputs<'_>,
     ) -> Result<(), NotApplicable> {
+        // The promise the callers make, checked where it costs nothing that matters (debug
+        // builds, the tests): a set flag left from an earlier use would stay set.
+        debug_assert!(
+            out.below_ground.iter().all(|&b| b == 0),
+            "run_into_zeroed: below-ground flags that are not all zero"
+        );
         self.run_into_flags(step, out, true)
     }
 
