@@ -176,6 +176,8 @@ def agreement(label, check):
                          f"(worst at {d.get('worst_at')})")
     if "geopotential_height" not in fields:
         found.append(f"{label}: the heights were not compared")
+    if check.get("layers_missing_in_other"):
+        found.append(f"{label}: thickness of {', '.join(check['layers_missing_in_other'])} not in the Rust output")
     if check.get("below_ground_flags_differing"):
         found.append(f"{label}: {check['below_ground_flags_differing']} below-ground flags differ")
     return found

@@ -504,10 +504,16 @@ def compare_with(path, cycle, z, below, thick, layers):
         }
     if below_other is not None:
         record["below_ground_flags_differing"] = int((below_other[:, order] != below).sum())
+    missing = []
     for (bottom_pa, top_pa), (values, _flags) in zip(layers, thick):
         for key, theirs in thick_other.items():
             if abs(key[0] - bottom_pa) <= 1e-6 * bottom_pa and abs(key[1] - top_pa) <= 1e-6 * top_pa:
                 record[layer_name(bottom_pa, top_pa)] = stats(values, theirs)
+                break
+        else:
+            missing.append(layer_name(bottom_pa, top_pa))
+    # A layer the baseline computed that the other file lacks is a difference too.
+    record["layers_missing_in_other"] = missing
     emit(record)
     return record
 
