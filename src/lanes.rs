@@ -136,18 +136,18 @@ macro_rules! lane_builds {
                     $body($($arg),*)
                 }
                 use $crate::lanes::Lanes;
-                if lanes >= Lanes::Avx512 && Lanes::Avx512.available() {
-                    // SAFETY: the processor has just been found to have every feature the
-                    // build enables (the results of the detection are cached: a load).
-                    return unsafe { avx512($($arg),*) };
-                }
-                if lanes >= Lanes::Avx2 && Lanes::Avx2.available() {
+                // The build asked for, or the widest narrower one the processor runs (found
+                // once: a load).
+                match Lanes::widest_up_to(lanes) {
+                    // SAFETY: the processor has every feature the build enables.
+                    Lanes::Avx512 => return unsafe { avx512($($arg),*) },
                     // SAFETY: as above, for AVX2.
-                    return unsafe { avx2($($arg),*) };
-                }
-                if $crate::lanes::fused_multiply_add() {
-                    // SAFETY: as above, for FMA.
-                    return unsafe { baseline_fma($($arg),*) };
+                    Lanes::Avx2 => return unsafe { avx2($($arg),*) },
+                    // SAFETY: as above, for AVX and FMA.
+                    Lanes::Portable if $crate::lanes::fused_multiply_add() => {
+                        return unsafe { baseline_fma($($arg),*) }
+                    }
+                    Lanes::Portable => {}
                 }
             }
             let _ = lanes;
