@@ -160,12 +160,17 @@ TOLERANCE_M = 0.01
 disagreements = []
 
 
+def compared(check):
+    """The fields one comparison covered: the heights and each thickness, with their figures."""
+    return {k: v for k, v in check.items() if isinstance(v, dict) and "compared" in v}
+
+
 def agreement(label, check):
     """What makes the two sides' outputs of one grid differ, as lines (none when they agree)."""
     if not check:
         return [f"{label}: no comparison of the two outputs was recorded"]
     found = []
-    fields = {k: v for k, v in check.items() if isinstance(v, dict) and "compared" in v}
+    fields = compared(check)
     for name, d in sorted(fields.items()):
         if not d["compared"]:
             found.append(f"{label}: {name}: no value compared")
@@ -217,8 +222,8 @@ for label in sorted({r.get("grid") or r.get("grid_label") for r in records if r.
           f"ratio (read+compute+write, all cores) {min(pair_ratios):.1f}-{max(pair_ratios):.1f}")
     print(f"  heights NumPy - Rust: max |d| {diff.get('max_abs_m')} m, rms {diff.get('rms_m')} m over {diff.get('compared')} values")
     found = agreement(label, check)
-    thick = sorted(k for k, v in check.items() if k != "geopotential_height" and isinstance(v, dict) and "compared" in v)
-    print(f"  agreement within {TOLERANCE_M} m (heights, {len(thick)} thicknesses, below-ground flags): "
+    thick = len(set(compared(check)) - {"geopotential_height"})
+    print(f"  agreement within {TOLERANCE_M} m (heights, {thick} thicknesses, below-ground flags): "
           + ("yes" if not found else "NO"))
     disagreements += found
 if disagreements:
