@@ -130,6 +130,34 @@ fn global_cycle(rows: usize, cols: usize) -> Cycle {
     }
 }
 
+/// `cycle` with its specific humidity given as relative humidity (a fraction, over water,
+/// the WMO Magnus form: the settings' default), so that the kernel converts it back.
+fn with_relative_humidity(cycle: &Cycle) -> Cycle {
+    use hypsogrid::physics::humidity::{
+        saturation_vapour_pressure, vapour_pressure_from_specific_humidity, RelativeHumidityPhase,
+        SaturationFormula,
+    };
+    let Vertical::Isobaric { pressure_pa } = &cycle.vertical else {
+        unreachable!("the bench cycle is isobaric")
+    };
+    let eps = cycle.constants.molar_mass_ratio;
+    let mut out = cycle.clone();
+    let h = out.humidity.as_mut().expect("the bench cycle has humidity");
+    h.kind = HumidityKind::RelativeHumidity;
+    Zip::indexed(&mut h.values)
+        .and(&cycle.temperature)
+        .par_for_each(|(_, _, k, _, _), v, &t| {
+            let e = vapour_pressure_from_specific_humidity(f64::from(*v), pressure_pa[k], eps);
+            let es = saturation_vapour_pressure(
+                f64::from(t),
+                SaturationFormula::WmoMagnus,
+                RelativeHumidityPhase::Water,
+            );
+            *v = (e / es) as f32;
+        });
+    out
+}
+
 /// The memory floor: read T and q once, write one `f32` (here T_v) per point-level, rows in
 /// parallel, into `out`.
 fn virtual_temperature_pass(cycle: &Cycle, out: &mut Array5<f32>) {
@@ -198,6 +226,20 @@ fn kernel_0p25deg(c: &mut Criterion) {
     surface_less.surface = None;
     group.bench_function("heights_all_levels_no_surface_fields", |b| {
         b.iter(|| compute_heights(&surface_less, &no_layers, &|_| {}).expect("computing"))
+    });
+    // The same cycle with its humidity as relative humidity (WMO water form): the kernel
+    // forms specific humidity per point-level on its way (a Magnus exponential and two
+    // divisions each).
+    let relative = with_relative_humidity(&cycle);
+    let relative_kernel = IsobaricKernel::with_saturation(
+        &relative,
+        &[],
+        no_layers.saturation_formula,
+        no_layers.rh_phase,
+    )
+    .expect("the kernel applies to relative humidity");
+    group.bench_function("heights_all_levels_relative_humidity", |b| {
+        b.iter(|| relative_kernel.run(&relative, &|_| {}).expect("computing"))
     });
     group.bench_function("heights_and_thickness_1000_500", |b| {
         b.iter(|| layer_kernel.run(&cycle, &|_| {}).expect("computing"))
