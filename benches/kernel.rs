@@ -130,17 +130,17 @@ fn global_cycle(rows: usize, cols: usize) -> Cycle {
     }
 }
 
-/// `cycle` with its specific humidity given as relative humidity (a fraction, over water,
-/// the WMO Magnus form: the settings' default), so that the kernel converts it back.
-fn with_relative_humidity(cycle: &Cycle) -> Cycle {
+/// `cycle` with its specific humidity given as relative humidity (a fraction) under the
+/// saturation settings of `config`, so that the kernel converts it back.
+fn with_relative_humidity(cycle: &Cycle, config: &ComputeConfig) -> Cycle {
     use hypsogrid::physics::humidity::{
-        saturation_vapour_pressure, vapour_pressure_from_specific_humidity, RelativeHumidityPhase,
-        SaturationFormula,
+        relative_humidity_from_vapour_pressure, vapour_pressure_from_specific_humidity,
     };
     let Vertical::Isobaric { pressure_pa } = &cycle.vertical else {
         unreachable!("the bench cycle is isobaric")
     };
     let eps = cycle.constants.molar_mass_ratio;
+    let (formula, phase) = (config.saturation_formula, config.rh_phase);
     let mut out = cycle.clone();
     let h = out.humidity.as_mut().expect("the bench cycle has humidity");
     h.kind = HumidityKind::RelativeHumidity;
@@ -148,12 +148,7 @@ fn with_relative_humidity(cycle: &Cycle) -> Cycle {
         .and(&cycle.temperature)
         .par_for_each(|(_, _, k, _, _), v, &t| {
             let e = vapour_pressure_from_specific_humidity(f64::from(*v), pressure_pa[k], eps);
-            let es = saturation_vapour_pressure(
-                f64::from(t),
-                SaturationFormula::WmoMagnus,
-                RelativeHumidityPhase::Water,
-            );
-            *v = (e / es) as f32;
+            *v = relative_humidity_from_vapour_pressure(e, f64::from(t), formula, phase) as f32;
         });
     out
 }
@@ -227,10 +222,10 @@ fn kernel_0p25deg(c: &mut Criterion) {
     group.bench_function("heights_all_levels_no_surface_fields", |b| {
         b.iter(|| compute_heights(&surface_less, &no_layers, &|_| {}).expect("computing"))
     });
-    // The same cycle with its humidity as relative humidity (WMO water form): the kernel
-    // forms specific humidity per point-level on its way (a Magnus exponential and two
-    // divisions each).
-    let relative = with_relative_humidity(&cycle);
+    // The same cycle with its humidity as relative humidity (the default settings: the WMO
+    // Magnus form over water): the kernel forms specific humidity per point-level on its way
+    // (a Magnus exponential and two divisions each).
+    let relative = with_relative_humidity(&cycle, &no_layers);
     let relative_kernel = IsobaricKernel::with_saturation(
         &relative,
         &[],
